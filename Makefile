@@ -1,0 +1,27 @@
+# Two entry points for a fresh clone (see README): `make demo` and `make test`.
+# Both create .venv, install nearsight with its test extras, then run.
+PYTHON ?= python3
+VENV ?= .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+PYTEST_ARGS ?=
+
+.PHONY: demo test install clean-venv
+
+$(STAMP): pyproject.toml
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet -e ".[test]"
+	touch $(STAMP)
+
+install: $(STAMP)
+
+demo: $(STAMP)
+	$(BIN)/nearsight demo --out nearsight-demo
+
+# pytest exits 5 when a selection (e.g. -k) matches no test: not a failure.
+test: $(STAMP)
+	bash scripts/system-deps.sh
+	$(BIN)/python -m pytest $(PYTEST_ARGS); rc=$$?; if [ $$rc -eq 5 ]; then exit 0; fi; exit $$rc
+
+clean-venv:
+	rm -rf $(VENV)

@@ -1,0 +1,324 @@
+"""The SQLite catalog: every source folder, file and distinct content the store knows.
+
+This module owns the connection, the schema and every SQL statement; no other
+module writes SQL. Writes happen inside `transaction()` (BEGIN IMMEDIATE), so a
+process killed mid-way leaves the last committed state, never a partial one.
+"""
+
+from __future__ import annotations
+
+import json
+import sqlite3
+import time
+from contextlib import contextmanager
+from dataclasses import dataclass
+from importlib import resources
+from pathlib import Path
+from typing import Iterable, Iterator
+
+from .errors import StoreError
+
+SCHEMA_VERSION = 1
+
+
+def _run_sql_file(conn: sqlite3.Connection, name: str) -> None:
+    """Run a bundled .sql file statement by statement, inside the caller's transaction
+    (executescript would commit it first)."""
+    script = resources.files(__package__).joinpath(name).read_text("utf-8")
+    for statement in script.split(";"):
+        if statement.strip() and sqlite3.complete_statement(statement + ";"):
+            conn.execute(statement)
+
+
+def _schema_v1(conn: sqlite3.Connection) -> None:
+    _run_sql_file(conn, "schema.sql")
+
+
+# Ordered migrations: MIGRATIONS[n - 1] brings a catalog from version n - 1 to n.
+MIGRATIONS = (_schema_v1,)
+assert len(MIGRATIONS) == SCHEMA_VERSION  # a developer's invariant, not user input
+
+
+@dataclass(frozen=True)
+class FileRow:
+    id: int
+    source_id: int
+    relpath: str
+    size: int | None
+    mtime_ns: int | None
+    content_id: int | None
+    state: str
+    reason: str | None
+
+
+@dataclass(frozen=True)
+class ContentRow:
+    id: int
+    hash: str
+    size: int
+    state: str
+    reason: str | None
+    width: int | None
+    height: int | None
+    format: str | None
+    thumb: bool
+
+
+class Catalog:
+    """One SQLite file; open it per thread or process (connections are not shared)."""
+
+    def __init__(self, path: Path, *, create: bool = False):
+        self.path = Path(path)
+        if not create and not self.path.exists():
+            raise StoreError(f"no catalog at {self.path}")
+        try:
+            self.conn = sqlite3.connect(self.path, timeout=30, isolation_level=None)
+            self.conn.row_factory = sqlite3.Row
+            self.conn.execute("PRAGMA journal_mode=WAL")
+            self.conn.execute("PRAGMA synchronous=NORMAL")
+            self.conn.execute("PRAGMA foreign_keys=ON")
+            self._migrate()
+        except sqlite3.DatabaseError as exc:
+            raise StoreError(f"cannot open catalog {self.path}: {exc}") from None
+
+    def close(self) -> None:
+        self.conn.close()
+
+    def __enter__(self) -> "Catalog":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    # -- schema -----------------------------------------------------------
+    def schema_version(self) -> int:
+        return self.conn.execute("PRAGMA user_version").fetchone()[0]
+
+    def _migrate(self) -> None:
+        version = self.schema_version()
+        if version > SCHEMA_VERSION:
+            raise StoreError(
+                f"catalog {self.path} has schema version {version}, newer than this "
+                f"nearsight understands ({SCHEMA_VERSION}); upgrade nearsight"
+            )
+        for target in range(version + 1, SCHEMA_VERSION + 1):
+            with self.transaction():
+                MIGRATIONS[target - 1](self.conn)
+                self.conn.execute(f"PRAGMA user_version={target}")
+                self.conn.execute(
+                    "INSERT OR REPLACE INTO meta(key, value) VALUES ('schema_version', ?)",
+                    (str(target),),
+                )
+
+    @contextmanager
+    def transaction(self) -> Iterator[sqlite3.Connection]:
+        """BEGIN IMMEDIATE ... COMMIT, rolled back on any exception."""
+        self.conn.execute("BEGIN IMMEDIATE")
+        try:
+            yield self.conn
+        except BaseException:
+            self.conn.execute("ROLLBACK")
+            raise
+        self.conn.execute("COMMIT")
+
+    # -- sources ----------------------------------------------------------
+    def add_source(self, root: Path) -> int:
+        root_text = str(Path(root))
+        row = self.conn.execute("SELECT id FROM sources WHERE root = ?", (root_text,)).fetchone()
+        if row:
+            return row["id"]
+        with self.transaction():
+            cur = self.conn.execute(
+                "INSERT INTO sources(root, added_at) VALUES (?, ?)", (root_text, time.time())
+            )
+        return cur.lastrowid
+
+    def sources(self) -> list[dict]:
+        rows = self.conn.execute("SELECT id, root, added_at, last_scan_at FROM sources ORDER BY id")
+        return [dict(r) for r in rows]
+
+    def mark_source_scanned(self, source_id: int, when: float) -> None:
+        with self.transaction():
+            self.conn.execute("UPDATE sources SET last_scan_at = ? WHERE id = ?", (when, source_id))
+
+    # -- files and contents ---------------------------------------------------
+    def files_of_source(self, source_id: int) -> dict[str, FileRow]:
+        rows = self.conn.execute(
+            "SELECT id, source_id, relpath, size, mtime_ns, content_id, state, reason "
+            "FROM files WHERE source_id = ?",
+            (source_id,),
+        )
+        return {r["relpath"]: FileRow(**dict(r)) for r in rows}
+
+    def content_by_hash(self, digest: str) -> ContentRow | None:
+        row = self.conn.execute(
+            "SELECT id, hash, size, state, reason, width, height, format, thumb "
+            "FROM contents WHERE hash = ?",
+            (digest,),
+        ).fetchone()
+        return ContentRow(**{**dict(row), "thumb": bool(row["thumb"])}) if row else None
+
+    def add_content(self, conn: sqlite3.Connection, digest: str, size: int, decoded: dict, now: float) -> int:
+        """Insert a content row inside the caller's transaction; return its id."""
+        cur = conn.execute(
+            "INSERT INTO contents(hash, size, state, reason, format, mode, width, height, frames, thumb, first_seen) "
+            "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) "
+            "ON CONFLICT(hash) DO UPDATE SET hash = excluded.hash RETURNING id",
+            (
+                digest,
+                size,
+                decoded["state"],
+                decoded.get("reason"),
+                decoded.get("format"),
+                decoded.get("mode"),
+                decoded.get("width"),
+                decoded.get("height"),
+                decoded.get("frames"),
+                int(bool(decoded.get("thumb"))),
+                now,
+            ),
+        )
+        return cur.fetchone()[0]
+
+    def upsert_file(
+        self,
+        conn: sqlite3.Connection,
+        source_id: int,
+        relpath: str,
+        *,
+        size: int | None,
+        mtime_ns: int | None,
+        content_id: int | None,
+        state: str,
+        reason: str | None,
+        now: float,
+    ) -> int:
+        """Insert or update the row for one path inside the caller's transaction."""
+        cur = conn.execute(
+            "INSERT INTO files(source_id, relpath, size, mtime_ns, content_id, state, reason, first_seen, last_seen) "
+            "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?) "
+            "ON CONFLICT(source_id, relpath) DO UPDATE SET size = excluded.size, "
+            "mtime_ns = excluded.mtime_ns, content_id = excluded.content_id, state = excluded.state, "
+            "reason = excluded.reason, last_seen = excluded.last_seen RETURNING id",
+            (source_id, relpath, size, mtime_ns, content_id, state, reason, now, now),
+        )
+        return cur.fetchone()[0]
+
+    def touch_files(self, conn: sqlite3.Connection, file_ids: Iterable[int], now: float) -> None:
+        conn.executemany("UPDATE files SET last_seen = ? WHERE id = ?", [(now, i) for i in file_ids])
+
+    def mark_missing_removed(self, source_id: int, seen_since: float) -> int:
+        """Files of a source not seen by a scan that started at `seen_since` become removed."""
+        with self.transaction():
+            cur = self.conn.execute(
+                "UPDATE files SET state = 'removed', reason = NULL "
+                "WHERE source_id = ? AND last_seen < ? AND state != 'removed'",
+                (source_id, seen_since),
+            )
+        return cur.rowcount
+
+    def file(self, file_id: int) -> dict | None:
+        row = self.conn.execute(
+            "SELECT f.id, s.root, f.relpath, f.size, f.mtime_ns, f.state, f.reason, f.first_seen, "
+            "f.last_seen, c.hash, c.format, c.width, c.height "
+            "FROM files f JOIN sources s ON s.id = f.source_id "
+            "LEFT JOIN contents c ON c.id = f.content_id WHERE f.id = ?",
+            (file_id,),
+        ).fetchone()
+        return dict(row) if row else None
+
+    def unreadable_files(self, limit: int | None = None) -> list[dict]:
+        sql = (
+            "SELECT f.id, s.root, f.relpath, f.reason FROM files f JOIN sources s ON s.id = f.source_id "
+            "WHERE f.state = 'unreadable' ORDER BY s.root, f.relpath"
+        )
+        params: tuple = ()
+        if limit is not None:
+            sql += " LIMIT ?"
+            params = (limit,)
+        return [dict(r) for r in self.conn.execute(sql, params)]
+
+    def files_with_hashes(self, source_id: int | None = None) -> list[dict]:
+        """Every present file (not removed) with its state and content hash."""
+        sql = (
+            "SELECT f.id, f.source_id, f.relpath, f.state, f.reason, f.size, c.hash FROM files f "
+            "LEFT JOIN contents c ON c.id = f.content_id WHERE f.state != 'removed'"
+        )
+        params: tuple = ()
+        if source_id is not None:
+            sql += " AND f.source_id = ?"
+            params = (source_id,)
+        return [dict(r) for r in self.conn.execute(sql + " ORDER BY f.id", params)]
+
+    def readable_contents(self) -> list[dict]:
+        """One row per distinct readable content with one of its present paths (lowest file id)."""
+        rows = self.conn.execute(
+            "SELECT c.id AS content_id, c.hash, c.width, c.height, c.thumb, "
+            "MIN(f.id) AS file_id, s.root, f.relpath "
+            "FROM contents c JOIN files f ON f.content_id = c.id AND f.state = 'ok' "
+            "JOIN sources s ON s.id = f.source_id "
+            "WHERE c.state = 'ok' GROUP BY c.id ORDER BY c.id"
+        )
+        return [dict(r) for r in rows]
+
+    # -- runs and status ------------------------------------------------------
+    def start_run(self, kind: str) -> int:
+        with self.transaction():
+            cur = self.conn.execute(
+                "INSERT INTO runs(kind, started_at, status) VALUES (?, ?, 'running')", (kind, time.time())
+            )
+        return cur.lastrowid
+
+    def finish_run(self, run_id: int, status: str, summary: dict) -> None:
+        with self.transaction():
+            self.conn.execute(
+                "UPDATE runs SET finished_at = ?, status = ?, summary = ? WHERE id = ?",
+                (time.time(), status, json.dumps(summary, sort_keys=True), run_id),
+            )
+
+    def last_run(self, kind: str | None = None) -> dict | None:
+        sql = "SELECT * FROM runs"
+        params: tuple = ()
+        if kind:
+            sql += " WHERE kind = ?"
+            params = (kind,)
+        row = self.conn.execute(sql + " ORDER BY id DESC LIMIT 1", params).fetchone()
+        if not row:
+            return None
+        out = dict(row)
+        out["summary"] = json.loads(out["summary"]) if out["summary"] else None
+        return out
+
+    def counts(self) -> dict:
+        """Counts for `status`: files by state, unreadable reasons, distinct contents, bytes."""
+        by_state = {
+            r["state"]: r["n"]
+            for r in self.conn.execute("SELECT state, COUNT(*) AS n FROM files GROUP BY state")
+        }
+        reasons = {
+            r["code"]: r["n"]
+            for r in self.conn.execute(
+                "SELECT CASE WHEN instr(reason, ':') > 0 THEN substr(reason, 1, instr(reason, ':') - 1) "
+                "ELSE reason END AS code, COUNT(*) AS n FROM files WHERE state = 'unreadable' "
+                "GROUP BY code ORDER BY n DESC"
+            )
+        }
+        row = self.conn.execute(
+            "SELECT COUNT(DISTINCT content_id) AS contents, COALESCE(SUM(size), 0) AS bytes "
+            "FROM files WHERE state = 'ok'"
+        ).fetchone()
+        dup = self.conn.execute(
+            "SELECT COUNT(*) AS n FROM (SELECT content_id FROM files WHERE state = 'ok' "
+            "GROUP BY content_id HAVING COUNT(*) > 1)"
+        ).fetchone()
+        return {
+            "sources": self.conn.execute("SELECT COUNT(*) FROM sources").fetchone()[0],
+            "files": sum(v for k, v in by_state.items() if k != "removed"),
+            "ok": by_state.get("ok", 0),
+            "unreadable": by_state.get("unreadable", 0),
+            "removed": by_state.get("removed", 0),
+            "unreadable_reasons": reasons,
+            "distinct_contents": row["contents"],
+            "bytes": row["bytes"],
+            "same_bytes_groups": dup["n"],
+        }

@@ -1,0 +1,79 @@
+"""Typed domain errors.
+
+Every error a user can cause or meet carries an exit code for the CLI and an
+HTTP status for the service, so each front end turns it into one clear line or
+one JSON body in exactly one place.
+"""
+
+from __future__ import annotations
+
+
+class NearsightError(Exception):
+    """Base class: a failure that should be reported as one line, not a traceback."""
+
+    exit_code = 1
+    http_status = 500
+    code = "error"
+
+    def __init__(self, message: str):
+        super().__init__(message)
+        self.message = message
+
+    def to_dict(self) -> dict:
+        return {"error": self.code, "message": self.message}
+
+
+class UsageError(NearsightError):
+    """Bad arguments or settings given by the user."""
+
+    exit_code = 2
+    http_status = 400
+    code = "bad_request"
+
+
+class NotFoundError(NearsightError):
+    """A store, image, group or file that does not exist."""
+
+    http_status = 404
+    code = "not_found"
+
+
+class StoreError(NearsightError):
+    """The store cannot be opened or is in a state we cannot work with."""
+
+    code = "store_error"
+
+
+class StoreLockedError(StoreError):
+    """Another run holds the store's lock."""
+
+    exit_code = 3
+    http_status = 409
+    code = "store_locked"
+
+
+class NotReadyError(NearsightError):
+    """A stage needs an artifact that has not been built yet (a model, an index)."""
+
+    exit_code = 1
+    http_status = 409
+    code = "not_ready"
+
+
+class ImageReadError(NearsightError):
+    """A file that could not be decoded as an image.
+
+    `reason` is a short stable code (``truncated``, ``not-image``, ...) stored in
+    the catalog; `detail` is the human explanation.
+    """
+
+    http_status = 422
+    code = "unreadable_image"
+
+    def __init__(self, reason: str, detail: str):
+        super().__init__(f"{reason}: {detail}")
+        self.reason = reason
+        self.detail = detail
+
+    def to_dict(self) -> dict:
+        return {"error": self.code, "reason": self.reason, "message": self.detail}

@@ -1,0 +1,54 @@
+"""Small file-system helpers whose point is crash safety.
+
+A reader must never see a half-written file: we write beside the target,
+fsync, rename over it (atomic on POSIX within one file system) and fsync the
+directory so the rename itself survives a power cut.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import tempfile
+from pathlib import Path
+
+HASH_NAME = "blake2b"
+_CHUNK = 1 << 20
+
+
+def fsync_dir(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY | os.O_DIRECTORY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def atomic_write_bytes(path: Path, data: bytes) -> None:
+    """Replace `path` with `data` so that readers see the old or the new file, never a mix."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    fsync_dir(path.parent)
+
+
+def atomic_write_text(path: Path, text: str) -> None:
+    atomic_write_bytes(path, text.encode("utf-8"))
+
+
+def hash_file(path: Path) -> str:
+    """Content hash of a file (BLAKE2b, 256-bit digest, hex), read in 1 MiB chunks."""
+    digest = hashlib.blake2b(digest_size=32)
+    with open(path, "rb") as fh:
+        while chunk := fh.read(_CHUNK):
+            digest.update(chunk)
+    return digest.hexdigest()

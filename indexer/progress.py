@@ -1,0 +1,48 @@
+"""Progress reporting: a bar on a terminal, plain log lines otherwise."""
+
+from __future__ import annotations
+
+import logging
+import sys
+import time
+
+from tqdm import tqdm
+
+log = logging.getLogger(__name__)
+
+
+class Progress:
+    """Wraps tqdm when stderr is a terminal; otherwise logs a line every `every_s` seconds."""
+
+    def __init__(self, total: int | None, desc: str, *, enabled: bool | None = None, every_s: float = 10.0):
+        self.desc = desc
+        self.total = total
+        self.count = 0
+        self.every_s = every_s
+        self._started = self._last = time.monotonic()
+        tty = sys.stderr.isatty()
+        self._bar = tqdm(total=total, desc=desc, unit="file", dynamic_ncols=True) if (enabled if enabled is not None else tty) else None
+
+    def update(self, n: int = 1, **postfix) -> None:
+        self.count += n
+        if self._bar is not None:
+            self._bar.update(n)
+            if postfix:
+                self._bar.set_postfix(postfix, refresh=False)
+            return
+        now = time.monotonic()
+        if now - self._last >= self.every_s:
+            self._last = now
+            rate = self.count / max(now - self._started, 1e-9)
+            of = f"/{self.total}" if self.total is not None else ""
+            log.info("%s: %d%s (%.1f/s)", self.desc, self.count, of, rate)
+
+    def close(self) -> None:
+        if self._bar is not None:
+            self._bar.close()
+
+    def __enter__(self) -> "Progress":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()

@@ -1,0 +1,23 @@
+#!/usr/bin/env bash
+# System packages the test suite needs beyond Python's own. Installs them with
+# apt-get when they are missing and we may (root, Debian/Ubuntu); otherwise says
+# what is missing and lets the tests that need it skip with that reason.
+set -euo pipefail
+
+needed=()
+# (Browser tests for the review page will add chromium here.)
+
+missing=()
+for pkg in "${needed[@]:-}"; do
+    [ -z "$pkg" ] && continue
+    dpkg -s "$pkg" >/dev/null 2>&1 || missing+=("$pkg")
+done
+if [ ${#missing[@]} -eq 0 ]; then
+    exit 0
+fi
+if [ "$(id -u)" = 0 ] && command -v apt-get >/dev/null; then
+    apt-get update -qq
+    DEBIAN_FRONTEND=noninteractive apt-get install -y -qq --no-install-recommends "${missing[@]}"
+else
+    echo "system-deps: missing ${missing[*]}; tests that need them will be skipped" >&2
+fi

@@ -1,0 +1,1 @@
+"""nearsight's HTTP layer: a thin Flask application over indexer's public functions."""

@@ -1,0 +1,1 @@
+"""nearsight test suite."""

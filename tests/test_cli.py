@@ -1,0 +1,89 @@
+"""The `nearsight` command end to end, in a subprocess, in a temporary folder."""
+
+import json
+import shutil
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from indexer.cli import build_parser
+from indexer.store import Store
+
+
+@pytest.fixture
+def folder(tmp_path):
+    root = tmp_path / "photos"
+    root.mkdir()
+    rng = np.random.default_rng(1)
+    for i in range(3):
+        Image.fromarray(rng.integers(0, 256, (40, 60, 3), dtype=np.uint8)).save(root / f"p{i}.png")
+    shutil.copy(root / "p0.png", root / "p0-again.png")
+    (root / "broken.jpg").write_bytes(b"\xff\xd8\xff\xe0 this is where a JPEG would be")
+    return root
+
+
+def test_index_then_status(run_cli, folder, tmp_path):
+    store = tmp_path / "store"
+    proc = run_cli("index", folder, "--store", store, "--json", check_exit=0)
+    summary = json.loads(proc.stdout)
+    assert {k: summary[k] for k in ("new", "changed", "unchanged", "unreadable", "same_bytes")} == {
+        "new": 5, "changed": 0, "unchanged": 0, "unreadable": 1, "same_bytes": 1,
+    }
+    assert "Traceback" not in proc.stderr
+
+    status = json.loads(run_cli("--store", store, "status", "--json", check_exit=0).stdout)
+    assert (status["files"], status["ok"], status["unreadable"], status["distinct_contents"]) == (5, 4, 1, 3)
+    assert status["source_folders"] == [str(folder.resolve())]
+
+    human = run_cli("status", "--store", store, "--unreadable", check_exit=0).stdout
+    assert "broken.jpg" in human and "unreadable" in human
+
+    again = json.loads(run_cli("index", folder, "--store", store, "--json", check_exit=0).stdout)
+    assert (again["new"], again["unchanged"]) == (0, 5)
+
+
+def test_store_from_the_environment(run_cli, folder, tmp_path):
+    run_cli("index", folder, "-q", env={"NEARSIGHT_STORE": str(tmp_path / "env-store")}, check_exit=0)
+    assert (tmp_path / "env-store" / "catalog.sqlite").is_file()
+
+
+def test_errors_are_one_line_with_exit_codes(run_cli, folder, tmp_path):
+    missing = run_cli("index", tmp_path / "nope", "--store", tmp_path / "s")
+    assert missing.returncode == 1
+    assert missing.stderr.strip().splitlines()[-1] == f"nearsight index: error: folder not found: {tmp_path / 'nope'}"
+    assert "Traceback" not in missing.stderr
+
+    no_store = run_cli("status", "--store", tmp_path / "absent")
+    assert no_store.returncode == 1 and "no nearsight store" in no_store.stderr
+
+    usage = run_cli("index")  # FOLDER missing: argparse's usage error
+    assert usage.returncode == 2 and "usage:" in usage.stderr
+
+    bad_setting = run_cli("index", folder, "--store", tmp_path / "s", env={"NEARSIGHT_WORKERS": "lots"})
+    assert bad_setting.returncode == 2 and "NEARSIGHT_WORKERS" in bad_setting.stderr
+
+    debug = run_cli("index", tmp_path / "nope", "--store", tmp_path / "s", "--debug")
+    assert debug.returncode == 1 and "Traceback" in debug.stderr
+
+
+def test_a_busy_store_exits_3(run_cli, folder, tmp_path):
+    store_dir = tmp_path / "store"
+    with Store.open(store_dir, create=True) as store, store.lock():
+        busy = run_cli("index", folder, "--store", store_dir)
+    assert busy.returncode == 3
+    assert "is busy" in busy.stderr
+
+
+def test_every_command_has_help(run_cli):
+    commands = build_parser()._subparsers._group_actions[0].choices
+    assert {"index", "train", "similar", "groups", "calibrate", "serve", "status", "demo"} <= set(commands)
+    for name in commands:
+        proc = run_cli(name, "--help", check_exit=0)
+        assert proc.stdout.startswith(f"usage: nearsight {name}")
+
+
+def test_settings_lists_values_and_sources(run_cli, tmp_path):
+    out = json.loads(run_cli("settings", "--store", tmp_path, "--json", env={"NEARSIGHT_THUMB_SIDE": "300"}, check_exit=0).stdout)
+    row = next(r for r in out if r["name"] == "thumb_side")
+    assert (row["value"], row["source"]) == (300, "NEARSIGHT_THUMB_SIDE")
