@@ -91,12 +91,6 @@ SETTINGS: tuple[Setting, ...] = (
         _positive_int,
         "Worker processes for hashing and decoding; 0 means one per CPU core.",
     ),
-    Setting(
-        "batch_files",
-        64,
-        _positive_int,
-        "Files handed to a worker process at a time while scanning.",
-    ),
 )
 
 _BY_NAME = {s.name: s for s in SETTINGS}

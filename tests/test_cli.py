@@ -87,3 +87,54 @@ def test_settings_lists_values_and_sources(run_cli, tmp_path):
     out = json.loads(run_cli("settings", "--store", tmp_path, "--json", env={"NEARSIGHT_THUMB_SIDE": "300"}, check_exit=0).stdout)
     row = next(r for r in out if r["name"] == "thumb_side")
     assert (row["value"], row["source"]) == (300, "NEARSIGHT_THUMB_SIDE")
+
+
+def test_index_over_good_and_malformed_files_records_every_file(run_cli, tmp_path):
+    """The issue's malformed corpus (built by test_images) beside good but unusual images."""
+    from .test_images import MALFORMED
+
+    root = tmp_path / "mixed"
+    root.mkdir()
+    expected = {}
+    for name, build, reason in MALFORMED:
+        if name == "missing":  # nothing on disk to find
+            continue
+        folder = root / name
+        folder.mkdir()
+        path = build(folder)
+        if name == "directory":
+            # A folder named like an image is a folder: scanned into, not recorded as a file.
+            Image.new("RGB", (9, 7), "teal").save(path / "inside.png")
+            expected[f"{name}/folder.jpg/inside.png"] = "ok"
+            continue
+        if name == "symlink-loop":
+            expected[f"{name}/b.jpg"] = "symlink-loop"
+        # A FIFO is never opened by the scan: it is not a regular file.
+        expected[path.relative_to(root).as_posix()] = "not-file" if name == "fifo" else reason
+    good = root / "good"
+    good.mkdir()
+    Image.new("CMYK", (30, 20), (0, 128, 255, 0)).save(good / "cmyk.jpg")
+    Image.fromarray(np.arange(600, dtype=np.uint16).reshape(20, 30) * 100).save(good / "deep.png")
+    palette = Image.new("P", (10, 10), 1)
+    palette.putpalette([0, 0, 0, 255, 0, 0] + [0] * 762)
+    palette.save(good / "palette.png", transparency=0)
+    frames = [Image.new("RGB", (16, 16), c) for c in ("red", "blue")]
+    frames[0].save(good / "anim.gif", save_all=True, append_images=frames[1:])
+    Image.new("RGB", (1, 1), "white").save(good / "dot.png")
+    Image.new("RGB", (30000, 10), "gray").save(good / "strip.png")
+    for path in good.iterdir():
+        expected[f"good/{path.name}"] = "ok"
+
+    store_dir = tmp_path / "store"
+    run_cli("index", root, "--store", store_dir, "-q", check_exit=0)
+    with Store.open(store_dir) as store:
+        rows = {r["relpath"]: r for r in store.catalog.files_with_hashes()}
+    assert set(rows) == set(expected)
+    for relpath, code in expected.items():
+        row = rows[relpath]
+        if code == "ok":
+            assert row["state"] == "ok", (relpath, row["reason"])
+        elif code is None:  # scrambled entropy data: corrupt or truncated, both right
+            assert row["reason"].split(":")[0] in {"corrupt", "truncated"}
+        else:
+            assert (row["state"], row["reason"].split(":")[0]) == ("unreadable", code), relpath
