@@ -10,8 +10,11 @@ from __future__ import annotations
 import itertools
 import json
 import logging
+import os
+import shutil
 from pathlib import Path
 
+from .errors import UsageError
 from .pipeline import run_index, store_status
 from .store import Store
 
@@ -32,15 +35,30 @@ def _precision_recall(found: set, planted: set) -> tuple[float, float]:
 
 
 def ensure_archive(out: Path, *, seed: int, originals: int) -> dict:
-    """Generate the archive into `out` unless a previous run left one there; return its truth."""
+    """Generate the archive into `out` unless a previous run left one there; return its truth.
+
+    The archive is generated beside `out` under a temporary name and renamed
+    into place when complete, so an interrupted generation never leaves a
+    half-made archive where the next run would look for one.
+    """
     from demo_data.generate import generate
 
     truth_path = out / TRUTH_FILE
     if truth_path.is_file():
         log.info("reusing the demo archive in %s", out)
         return json.loads(truth_path.read_text(encoding="utf-8"))
+    if out.exists() and (not out.is_dir() or any(out.iterdir())):
+        raise UsageError(f"{out} exists and holds no demo archive; choose another --out")
+    out.parent.mkdir(parents=True, exist_ok=True)
+    for leftover in out.parent.glob(f".{out.name}.partial-*"):
+        shutil.rmtree(leftover, ignore_errors=True)  # ours: an earlier interrupted generation
+    partial = out.parent / f".{out.name}.partial-{os.getpid()}"
     log.info("generating the demo archive into %s (seed %d)", out, seed)
-    return generate(out, seed=seed, originals=originals)
+    truth = generate(partial, seed=seed, originals=originals)
+    if out.exists():
+        out.rmdir()  # empty, checked above
+    os.rename(partial, out)
+    return truth
 
 
 def run_demo(out: Path, *, seed: int = 7, originals: int = 160, progress: bool | None = None) -> dict:
