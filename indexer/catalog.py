@@ -18,7 +18,7 @@ from typing import Iterable, Iterator
 
 from .errors import StoreError
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 
 
 def _run_sql_file(conn: sqlite3.Connection, name: str) -> None:
@@ -34,8 +34,12 @@ def _schema_v1(conn: sqlite3.Connection) -> None:
     _run_sql_file(conn, "schema.sql")
 
 
+def _schema_v2(conn: sqlite3.Connection) -> None:
+    _run_sql_file(conn, "schema_v2.sql")
+
+
 # Ordered migrations: MIGRATIONS[n - 1] brings a catalog from version n - 1 to n.
-MIGRATIONS = (_schema_v1,)
+MIGRATIONS = (_schema_v1, _schema_v2)
 assert len(MIGRATIONS) == SCHEMA_VERSION  # a developer's invariant, not user input
 
 
@@ -260,6 +264,45 @@ class Catalog:
             "WHERE c.state = 'ok' GROUP BY c.id ORDER BY c.id"
         )
         return [dict(r) for r in rows]
+
+    # -- vectors ----------------------------------------------------------------------
+    def contents_missing_vectors(self, model: str) -> list[dict]:
+        """Readable contents of present files that have no vector under `model` yet."""
+        rows = self.conn.execute(
+            "SELECT c.id AS content_id, c.hash, c.thumb, MIN(f.id) AS file_id, s.root, f.relpath "
+            "FROM contents c JOIN files f ON f.content_id = c.id AND f.state = 'ok' "
+            "JOIN sources s ON s.id = f.source_id "
+            "WHERE c.state = 'ok' AND NOT EXISTS "
+            "(SELECT 1 FROM vectors v WHERE v.model = ? AND v.content_id = c.id) "
+            "GROUP BY c.id ORDER BY c.id",
+            (model,),
+        )
+        return [dict(r) for r in rows]
+
+    def put_vectors(self, model: str, content_ids, vectors) -> None:
+        """Store one block of vectors in one transaction (a killed run keeps whole blocks)."""
+        with self.transaction() as conn:
+            conn.executemany(
+                "INSERT OR REPLACE INTO vectors(model, content_id, vector) VALUES (?, ?, ?)",
+                [(model, int(c), v.astype("<f4").tobytes()) for c, v in zip(content_ids, vectors)],
+            )
+
+    def iter_file_vectors(self, model: str, block: int = 65_536):
+        """Yield (file_ids, vectors) blocks for every present readable file with a vector."""
+        import numpy as np
+
+        cur = self.conn.execute(
+            "SELECT f.id, v.vector FROM files f JOIN vectors v ON v.content_id = f.content_id AND v.model = ? "
+            "WHERE f.state = 'ok' ORDER BY f.id",
+            (model,),
+        )
+        while rows := cur.fetchmany(block):
+            ids = np.fromiter((r[0] for r in rows), dtype=np.int64, count=len(rows))
+            xb = np.frombuffer(b"".join(r[1] for r in rows), dtype="<f4").reshape(len(rows), -1)
+            yield ids, np.ascontiguousarray(xb, dtype=np.float32)
+
+    def count_vectors(self, model: str) -> int:
+        return self.conn.execute("SELECT COUNT(*) FROM vectors WHERE model = ?", (model,)).fetchone()[0]
 
     # -- runs and status ------------------------------------------------------
     def start_run(self, kind: str) -> int:

@@ -67,3 +67,40 @@ def test_upsert_keeps_the_file_id(tmp_path):
     assert first == second
     row = catalog.files_of_source(source_id)["a.jpg"]
     assert (row.size, row.reason) == (2, "truncated: x")
+
+
+def test_a_version_1_catalog_is_migrated_keeping_its_rows(tmp_path):
+    """Build a v1 catalog by hand from schema.sql, then open it with the current code."""
+    from importlib import resources
+
+    path = tmp_path / "old.sqlite"
+    conn = sqlite3.connect(path)
+    conn.executescript(resources.files("indexer").joinpath("schema.sql").read_text())
+    conn.execute("PRAGMA user_version=1")
+    conn.execute("INSERT INTO sources(root, added_at) VALUES ('/photos', 0)")
+    conn.commit()
+    conn.close()
+    catalog = Catalog(path)
+    assert catalog.schema_version() == SCHEMA_VERSION
+    assert [s["root"] for s in catalog.sources()] == ["/photos"]
+    columns = {r[1] for r in catalog.conn.execute("PRAGMA table_info(contents)")}
+    assert "pixel_hash" in columns
+
+
+def test_vectors_round_trip_by_content(tmp_path):
+    import numpy as np
+
+    catalog = Catalog(tmp_path / "c.sqlite", create=True)
+    source_id = catalog.add_source(tmp_path)
+    with catalog.transaction() as conn:
+        cid = catalog.add_content(conn, "ab" * 32, 10, {"state": "ok", "width": 4, "height": 3}, 0.0)
+        a = catalog.upsert_file(conn, source_id, "a.jpg", size=10, mtime_ns=1, content_id=cid, state="ok", reason=None, now=0.0)
+        b = catalog.upsert_file(conn, source_id, "b.jpg", size=10, mtime_ns=1, content_id=cid, state="ok", reason=None, now=0.0)
+    assert [r["content_id"] for r in catalog.contents_missing_vectors("m1")] == [cid]
+    vec = np.random.default_rng(0).standard_normal((1, 8)).astype(np.float32)
+    catalog.put_vectors("m1", [cid], vec)
+    assert catalog.contents_missing_vectors("m1") == []
+    assert [r["content_id"] for r in catalog.contents_missing_vectors("m2")] == [cid]
+    (ids, xb), = list(catalog.iter_file_vectors("m1"))
+    assert ids.tolist() == [a, b]  # both files share the content's one vector
+    np.testing.assert_array_equal(xb, np.vstack([vec, vec]))
