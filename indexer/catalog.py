@@ -231,6 +231,44 @@ class Catalog:
         ).fetchone()
         return dict(row) if row else None
 
+    def image_meta(self, file_ids=None) -> dict[int, dict]:
+        """What grouping needs per present readable file: path, hashes, size, format, mtime."""
+        sql = (
+            "SELECT f.id, s.root, f.relpath, f.size, f.mtime_ns, c.hash, c.pixel_hash, c.width, c.height, c.format "
+            "FROM files f JOIN sources s ON s.id = f.source_id JOIN contents c ON c.id = f.content_id "
+            "WHERE f.state = 'ok'"
+        )
+        rows = []
+        if file_ids is None:
+            rows = self.conn.execute(sql).fetchall()
+        else:
+            ids = sorted(set(int(i) for i in file_ids))
+            for start in range(0, len(ids), 500):
+                chunk = ids[start : start + 500]
+                rows += self.conn.execute(sql + f" AND f.id IN ({','.join('?' * len(chunk))})", chunk).fetchall()
+        return {
+            r["id"]: {
+                "path": str(Path(r["root"]) / r["relpath"]), "content_hash": r["hash"], "pixel_hash": r["pixel_hash"],
+                "width": r["width"] or 0, "height": r["height"] or 0, "file_size": r["size"] or 0,
+                "format": r["format"] or "", "mtime": (r["mtime_ns"] or 0) / 1e9,
+            }
+            for r in rows
+        }
+
+    def paths_for(self, file_ids) -> dict[int, str]:
+        """Absolute paths of the given file ids (ids that do not exist are left out)."""
+        ids = sorted(set(int(i) for i in file_ids))
+        out: dict[int, str] = {}
+        for start in range(0, len(ids), 500):
+            chunk = ids[start : start + 500]
+            rows = self.conn.execute(
+                "SELECT f.id, s.root, f.relpath FROM files f JOIN sources s ON s.id = f.source_id "
+                f"WHERE f.id IN ({','.join('?' * len(chunk))})",
+                chunk,
+            )
+            out.update({r["id"]: str(Path(r["root"]) / r["relpath"]) for r in rows})
+        return out
+
     def unreadable_files(self, limit: int | None = None) -> list[dict]:
         sql = (
             "SELECT f.id, s.root, f.relpath, f.reason FROM files f JOIN sources s ON s.id = f.source_id "

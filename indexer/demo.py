@@ -61,15 +61,32 @@ def ensure_archive(out: Path, *, seed: int, originals: int) -> dict:
     return truth
 
 
-def run_demo(out: Path, *, seed: int = 7, originals: int = 160, progress: bool | None = None) -> dict:
-    out = Path(out)
+DUPLICATE_TIERS = ("same-bytes", "same-pixels", "near-duplicate")
+
+
+def _called_pairs(groups: list[dict], relative) -> set[frozenset]:
+    """Pairs the published groups call duplicates: members of a duplicate tier in one group."""
+    sets = []
+    for group in groups:
+        sets.append([relative(m["path"]) for m in group["members"] if m["tier"] in DUPLICATE_TIERS])
+    return _pairs(s for s in sets if len(s) > 1)
+
+
+def run_demo(out: Path, *, seed: int = 7, originals: int = 160, progress: bool | None = None,
+             train_minutes: float = 3.0) -> dict:
+    from .generations import current
+    from .train import TrainConfig
+
+    out = Path(out).absolute()
     truth = ensure_archive(out, seed=seed, originals=originals)
     archive = out / truth["root"]
     store_dir = out / "store"
     with Store.open(store_dir, create=True) as store:
-        summary = run_index(store, [archive], progress=progress)
+        summary = run_index(store, [archive], progress=progress, train_config=TrainConfig(minutes=train_minutes))
         status = store_status(store)
         files = store.catalog.files_with_hashes()
+        gen = current(store)
+        groups = gen.load_groups()["groups"] if gen else []
 
     prefix = truth["root"] + "/"
     # Byte-identical files found by the scan, as pairs of paths relative to the demo folder.
@@ -92,6 +109,15 @@ def run_demo(out: Path, *, seed: int = 7, originals: int = 160, progress: bool |
     sb_precision, sb_recall = _precision_recall(same_bytes_found, same_bytes_planted)
     damaged = set(truth["damaged"])
 
+    def relative(path: str) -> str:
+        return Path(path).relative_to(out).as_posix()
+
+    called = _called_pairs(groups, relative)
+    planted = _pairs(truth["duplicate_groups"])
+    lookalikes = {frozenset(p) for p in truth["lookalike_pairs"]}
+    dup_precision, dup_recall = _precision_recall(called, planted)
+    thresholds = gen.meta["thresholds"] if gen else None
+
     lines = [
         f"demo archive: {archive} ({len(truth['images'])} files, seed {truth['seed']})",
         f"store: {store_dir}",
@@ -101,10 +127,18 @@ def run_demo(out: Path, *, seed: int = 7, originals: int = 160, progress: bool |
         f"matching {len(unreadable_found & damaged)}",
         f"same-bytes pairs: found {len(same_bytes_found)}, planted {len(same_bytes_planted)}; "
         f"precision {sb_precision:.2f}, recall {sb_recall:.2f}",
-        f"planted near-duplicate groups: {len(truth['duplicate_groups'])}; look-alike pairs: {len(truth['lookalike_pairs'])} "
-        "(near-duplicate search needs the encoder and index stages, not in this version yet)",
-        f"next: nearsight status --store {store_dir}",
     ]
+    if gen:
+        lines += [
+            f"generation {gen.name}: {gen.meta['indexed']} images indexed with model {gen.meta['model']}",
+            f"duplicate pairs (threshold {thresholds['near']:.2f}, {thresholds['source']}): called {len(called)}, "
+            f"planted {len(planted)}, correct {len(called & planted)}; "
+            f"precision {dup_precision:.2f}, recall {dup_recall:.2f}",
+            f"look-alike pairs wrongly called duplicates: {len(called & lookalikes)} of {len(lookalikes)}",
+            f"groups: {len(groups)}; report: nearsight groups --store {store_dir} --format html",
+            f"try: nearsight similar {archive / 'scans-1987'} --store {store_dir} -k 3",
+        ]
+    lines.append(f"next: nearsight status --store {store_dir}")
     return {
         "archive": str(archive),
         "store": str(store_dir),
@@ -113,5 +147,8 @@ def run_demo(out: Path, *, seed: int = 7, originals: int = 160, progress: bool |
         "unreadable": {"found": sorted(unreadable_found), "planted": sorted(damaged)},
         "same_bytes": {"found": len(same_bytes_found), "planted": len(same_bytes_planted),
                        "precision": sb_precision, "recall": sb_recall},
+        "duplicates": {"called": len(called), "planted": len(planted), "correct": len(called & planted),
+                       "precision": dup_precision, "recall": dup_recall,
+                       "lookalikes_called": len(called & lookalikes), "thresholds": thresholds},
         "lines": lines,
     }

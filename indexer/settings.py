@@ -49,6 +49,20 @@ def _positive_int(value: Any) -> int:
     return number
 
 
+def _positive_float(value: Any) -> float:
+    number = float(value)
+    if not number > 0:
+        raise ValueError(f"expected a number > 0, got {value!r}")
+    return number
+
+
+def _unit_float(value: Any) -> float:
+    number = float(value)
+    if not -1.0 <= number <= 1.0:
+        raise ValueError(f"expected a cosine similarity between -1 and 1, got {value!r}")
+    return number
+
+
 @dataclass(frozen=True)
 class Setting:
     name: str
@@ -90,6 +104,31 @@ SETTINGS: tuple[Setting, ...] = (
         0,
         _positive_int,
         "Worker processes for hashing and decoding; 0 means one per CPU core.",
+    ),
+    Setting(
+        "train_minutes",
+        10.0,
+        _positive_float,
+        "Training budget in minutes when `index` finds no model in the store.",
+    ),
+    Setting(
+        "near_threshold",
+        0.90,
+        _unit_float,
+        "Cosine similarity at or above which a pair is called a near-duplicate, until a "
+        "calibration exists (see DEVELOPERS.md for how this default was measured).",
+    ),
+    Setting(
+        "similar_threshold",
+        0.80,
+        _unit_float,
+        "Looser cosine similarity for the 'similar' tier of groups, until a calibration exists.",
+    ),
+    Setting(
+        "keep_generations",
+        3,
+        _positive_int,
+        "Published index generations kept on disk (the current one always stays).",
     ),
 )
 

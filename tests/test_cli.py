@@ -138,3 +138,36 @@ def test_index_over_good_and_malformed_files_records_every_file(run_cli, tmp_pat
             assert row["reason"].split(":")[0] in {"corrupt", "truncated"}
         else:
             assert (row["state"], row["reason"].split(":")[0]) == ("unreadable", code), relpath
+
+
+def test_similar_and_groups_from_the_command_line(run_cli, tmp_path):
+    root = tmp_path / "scenes"
+    root.mkdir()
+    rng = np.random.default_rng(5)
+    for i in range(20):
+        small = rng.integers(0, 256, (5, 7, 3), dtype=np.uint8)
+        Image.fromarray(small).resize((140, 100), Image.Resampling.BICUBIC).save(root / f"s{i:02d}.png")
+    shutil.copy(root / "s00.png", root / "s00-copy.png")
+    store = tmp_path / "store"
+    tiny = ["--arch", "tiny", "--size", "32", "--dim", "16", "--batch-size", "8", "--epochs", "1"]
+    summary = json.loads(run_cli("index", root, "--store", store, "--json", *tiny, check_exit=0).stdout)
+    assert summary["indexed"] == 21
+
+    bad = tmp_path / "bad.jpg"
+    bad.write_bytes(b"")
+    proc = run_cli("similar", root / "s03.png", bad, "--store", store, "-k", "2", "--json", check_exit=0)
+    lines = [json.loads(line) for line in proc.stdout.splitlines()]
+    assert [line["query"] for line in lines] == [str(root / "s03.png"), str(bad)]
+    assert set(lines[0]["results"][0]) == {"id", "path", "similarity", "duplicate"}
+    assert len(lines[0]["results"]) == 2 and lines[1]["error"]["reason"] == "empty"
+
+    folder_query = run_cli("similar", root, "--store", store, "-k", "1", "--json", check_exit=0)
+    assert len(folder_query.stdout.splitlines()) == 21
+
+    groups = json.loads(run_cli("groups", "--store", store, "--format", "json", "--threshold", "0.999", check_exit=0).stdout)
+    same = [g for g in groups["groups"] if {m["path"] for m in g["members"]} >= {str(root / "s00.png"), str(root / "s00-copy.png")}]
+    assert len(same) == 1 and same[0]["members"][1]["tier"] == "same-bytes"
+    csv_text = run_cli("groups", "--store", store, "--format", "csv", "--threshold", "0.999", check_exit=0).stdout
+    assert csv_text.splitlines()[0].startswith("gid,")
+    run_cli("groups", "--store", store, "--format", "html", "--out", tmp_path / "r.html", check_exit=0)
+    assert (tmp_path / "r.html").read_text().startswith("<!DOCTYPE html>")

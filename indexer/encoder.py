@@ -1,0 +1,212 @@
+"""The image encoder: a compact, randomly initialised CNN trained on the collection.
+
+Reads top-down, timm style: pooling blocks, backbones, the `Encoder`, the
+training-only `ProjectionHead`, then the `create_encoder` factory and the one
+`preprocess` used by training checks, the held-out check and embedding.
+
+Interface: ``forward_features(x)`` returns the feature map, ``forward_head(f)``
+pools and projects it, ``descriptor(x)`` / ``forward(x)`` return the
+L2-normalised embedding of size ``dim``.
+"""
+
+from __future__ import annotations
+
+from typing import Callable, Sequence
+
+import numpy as np
+import torch
+import torch.nn.functional as F
+from PIL import Image
+from torch import nn
+from torchvision.models import mobilenet_v3_small
+from torchvision.models.resnet import BasicBlock
+
+from .errors import UsageError
+
+# ImageNet channel statistics (common practice). They are kept even though we never
+# use ImageNet weights: any fixed standardisation works, and one set in one place
+# keeps training views, the held-out check and embedding consistent.
+IMAGENET_MEAN = (0.485, 0.456, 0.406)
+IMAGENET_STD = (0.229, 0.224, 0.225)
+
+DEFAULT_ARCH = "resnet_narrow"
+POOLINGS = ("gem", "avg")
+
+
+class GeM(nn.Module):
+    """Generalised-mean pooling (Radenović, Tolias, Chum 2018) with a learnable exponent.
+
+    p = 1 is average pooling and p -> inf approaches max pooling; p starts at 3
+    as in the paper. Inputs are clamped at `eps` because x ** p needs x > 0.
+    """
+
+    def __init__(self, p: float = 3.0, eps: float = 1e-6):
+        super().__init__()
+        self.p = nn.Parameter(torch.tensor(float(p)))
+        self.eps = eps
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        p = self.p.clamp(min=1.0)
+        return x.clamp(min=self.eps).pow(p).mean(dim=(-2, -1)).pow(1.0 / p)
+
+    def extra_repr(self) -> str:
+        return f"p={self.p.item():.3f}, eps={self.eps}"
+
+
+class AvgPool(nn.Module):
+    """Global average pooling, (B, C, H, W) -> (B, C)."""
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return x.mean(dim=(-2, -1))
+
+
+def _conv_bn_relu(c_in: int, c_out: int, stride: int) -> nn.Sequential:
+    return nn.Sequential(
+        nn.Conv2d(c_in, c_out, 3, stride=stride, padding=1, bias=False),
+        nn.BatchNorm2d(c_out),
+        nn.ReLU(inplace=True),
+    )
+
+
+def _tiny_backbone() -> tuple[nn.Module, int]:
+    """Four strided 3x3 convolutions (16-32-64-128 channels); for tests, trains in seconds."""
+    widths = (16, 32, 64, 128)
+    layers, c_in = [], 3
+    for width in widths:
+        layers.append(_conv_bn_relu(c_in, width, stride=2))
+        c_in = width
+    return nn.Sequential(*layers), widths[-1]
+
+
+def _resnet_narrow_backbone(
+    widths: Sequence[int] = (32, 64, 128, 256), depths: Sequence[int] = (1, 1, 1, 1)
+) -> tuple[nn.Module, int]:
+    """A ResNet-10-like stack of torchvision `BasicBlock`s at half the usual width.
+
+    Stem: 3x3 stride-2 conv + 3x3 stride-2 max-pool (total stride 32 with the
+    stages), which keeps a 128 px input at a 4x4 final map.
+    """
+    layers: list[nn.Module] = [_conv_bn_relu(3, widths[0], stride=2), nn.MaxPool2d(3, stride=2, padding=1)]
+    c_in = widths[0]
+    for stage, (width, depth) in enumerate(zip(widths, depths)):
+        for block in range(depth):
+            stride = 2 if (stage > 0 and block == 0) else 1
+            downsample = None
+            if stride != 1 or c_in != width:
+                downsample = nn.Sequential(nn.Conv2d(c_in, width, 1, stride=stride, bias=False), nn.BatchNorm2d(width))
+            layers.append(BasicBlock(c_in, width, stride=stride, downsample=downsample))
+            c_in = width
+    return nn.Sequential(*layers), c_in
+
+
+def _mobilenet_backbone() -> tuple[nn.Module, int]:
+    """torchvision MobileNetV3-Small feature extractor, randomly initialised (576 channels)."""
+    return mobilenet_v3_small(weights=None).features, 576
+
+
+_BACKBONES: dict[str, Callable[[], tuple[nn.Module, int]]] = {
+    "tiny": _tiny_backbone,
+    "resnet_narrow": _resnet_narrow_backbone,
+    "mobilenet_v3_small": _mobilenet_backbone,
+}
+ARCHS = tuple(_BACKBONES)
+
+
+class Encoder(nn.Module):
+    """Backbone -> pooling -> linear -> L2 normalisation.
+
+    The output of `descriptor` is what we index: unit length, so inner product
+    equals cosine similarity and squared distance is 2 - 2 cos.
+    """
+
+    def __init__(self, backbone: nn.Module, num_features: int, dim: int = 128, pooling: str = "gem"):
+        super().__init__()
+        self.backbone = backbone
+        self.num_features = num_features
+        self.dim = dim
+        self.pooling = pooling
+        self.pool = GeM() if pooling == "gem" else AvgPool()
+        self.fc = nn.Linear(num_features, dim)
+
+    def forward_features(self, x: torch.Tensor) -> torch.Tensor:
+        return self.backbone(x)
+
+    def forward_head(self, features: torch.Tensor, normalize: bool = True) -> torch.Tensor:
+        """Pool and project a feature map; `normalize=False` gives the raw vector the projection head reads."""
+        z = self.fc(self.pool(features))
+        return F.normalize(z, dim=-1) if normalize else z
+
+    def descriptor(self, x: torch.Tensor) -> torch.Tensor:
+        return self.forward_head(self.forward_features(x))
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return self.descriptor(x)
+
+
+class ProjectionHead(nn.Module):
+    """The MLP g(.) of SimCLR (Chen et al. 2020), used only while training.
+
+    The contrastive loss is computed on g(h); the descriptor h before the head is
+    what we keep (SimCLR's finding; benchmarks/results/train.md measures it here).
+    """
+
+    def __init__(self, in_dim: int = 128, hidden_dim: int = 512, out_dim: int = 128):
+        super().__init__()
+        self.net = nn.Sequential(
+            nn.Linear(in_dim, hidden_dim),
+            nn.BatchNorm1d(hidden_dim),
+            nn.ReLU(inplace=True),
+            nn.Linear(hidden_dim, out_dim),
+        )
+
+    def forward(self, h: torch.Tensor) -> torch.Tensor:
+        return self.net(h)
+
+
+def create_encoder(arch: str = DEFAULT_ARCH, dim: int = 128, pooling: str = "gem") -> Encoder:
+    """Build a randomly initialised encoder (never downloads weights)."""
+    if arch not in _BACKBONES:
+        raise UsageError(f"unknown encoder architecture {arch!r}; choose one of {', '.join(ARCHS)}")
+    if pooling not in POOLINGS:
+        raise UsageError(f"unknown pooling {pooling!r}; choose one of {', '.join(POOLINGS)}")
+    if not isinstance(dim, int) or dim < 2:
+        raise UsageError(f"embedding dim must be a whole number >= 2, got {dim!r}")
+    backbone, num_features = _BACKBONES[arch]()
+    return Encoder(backbone, num_features, dim=dim, pooling=pooling)
+
+
+def normalize_tensor(x: torch.Tensor) -> torch.Tensor:
+    """Standardise a float (…, 3, H, W) tensor in [0, 1] with the one set of channel statistics."""
+    mean = torch.tensor(IMAGENET_MEAN, dtype=x.dtype).view(3, 1, 1)
+    std = torch.tensor(IMAGENET_STD, dtype=x.dtype).view(3, 1, 1)
+    return (x - mean) / std
+
+
+def _rgb(im: Image.Image) -> Image.Image:
+    return im if im.mode == "RGB" else im.convert("RGB")
+
+
+def _resize_center_crop(im: Image.Image, size: int) -> Image.Image:
+    """Scale the shorter side to `size` (bilinear, antialiased by Pillow) and cut the central square."""
+    w, h = im.size
+    scale = size / min(w, h)
+    new_w, new_h = max(size, round(w * scale)), max(size, round(h * scale))
+    if (new_w, new_h) != (w, h):
+        im = im.resize((new_w, new_h), Image.BILINEAR, reducing_gap=3.0)
+    left, top = (new_w - size) // 2, (new_h - size) // 2
+    return im.crop((left, top, left + size, top + size))
+
+
+def preprocess(images: Sequence[Image.Image], size: int) -> torch.Tensor:
+    """Turn PIL images into one normalised (n, 3, size, size) float batch.
+
+    Choice: resize the shorter side to `size`, then centre-crop a square (common
+    practice for CNN evaluation). Unlike letterboxing, no pixels are spent on
+    padding; the cost is that the outer ends of very wide or tall images are not
+    seen. Training views are random square crops, so the encoder is used to it.
+    """
+    if not images:
+        return torch.empty(0, 3, size, size)
+    batch = np.stack([np.asarray(_resize_center_crop(_rgb(im), size), dtype=np.uint8) for im in images])
+    x = torch.from_numpy(batch).permute(0, 3, 1, 2).float().div_(255.0)
+    return normalize_tensor(x)

@@ -1,0 +1,98 @@
+"""Similarity queries against the current generation: image files in, neighbours out.
+
+Each query is answered on its own: a query file that cannot be read gets an
+error entry and the others still answer.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+from pathlib import Path
+from typing import Iterator, Sequence
+
+import numpy as np
+
+from . import index as faiss_index
+from .embed import embed_images
+from .errors import ImageReadError, NotFoundError
+from .generations import require_current
+from .images import read_image
+from .model import load_model
+from .store import Store
+
+log = logging.getLogger(__name__)
+
+QUERY_BATCH = 32
+
+
+def expand_queries(paths: Sequence[str], extensions: tuple[str, ...]) -> list[str]:
+    """Each PATH as given, or for a folder, the image files under it (sorted)."""
+    out: list[str] = []
+    for given in paths:
+        path = Path(given)
+        if path.is_dir():
+            found = sorted(
+                str(Path(dirpath) / name)
+                for dirpath, _dirs, names in os.walk(path)
+                for name in names
+                if os.path.splitext(name)[1].lower() in extensions
+            )
+            if not found:
+                log.warning("no image files under %s", given)
+            out.extend(found)
+        else:
+            out.append(str(given))
+    return out
+
+
+class Searcher:
+    """The current generation's index and model, loaded once, answering many queries."""
+
+    def __init__(self, store: Store):
+        self.store = store
+        self.generation = require_current(store)
+        self.index = self.generation.load_index()
+        model_dir = store.models_dir / self.generation.meta["model"]
+        self.encoder, self.card = load_model(model_dir)
+        self.size = int(self.card["image_size"])
+        self.threshold = float(self.generation.meta["thresholds"]["near"])
+
+    def vectors_for_images(self, images) -> np.ndarray:
+        return embed_images(self.encoder, images, self.size)
+
+    def neighbours(self, xq: np.ndarray, k: int, threshold: float | None = None) -> list[list[dict]]:
+        """Top-k neighbours for each query vector, as dicts with id, path, similarity, duplicate."""
+        threshold = self.threshold if threshold is None else threshold
+        D, I = faiss_index.search(self.index, np.ascontiguousarray(xq, dtype=np.float32), k)
+        paths = self.store.catalog.paths_for([int(i) for i in I.ravel() if i >= 0])
+        out = []
+        for d_row, i_row in zip(D, I):
+            out.append([
+                {"id": int(i), "path": paths.get(int(i)), "similarity": round(float(d), 6),
+                 "duplicate": bool(d >= threshold)}
+                for d, i in zip(d_row, i_row) if i >= 0
+            ])
+        return out
+
+    def similar_files(self, paths: Sequence[str], k: int, threshold: float | None = None) -> Iterator[dict]:
+        """One result object per query path, in order; unreadable queries carry an error."""
+        max_side = 2 * self.size
+        for start in range(0, len(paths), QUERY_BATCH):
+            block = paths[start : start + QUERY_BATCH]
+            images, good, answers = [], [], {}
+            for given in block:
+                try:
+                    if not Path(given).exists():
+                        raise NotFoundError(f"no such file: {given}")
+                    images.append(read_image(given, max_side=max_side)[0])
+                    good.append(given)
+                except ImageReadError as exc:
+                    answers[given] = {"query": given, "error": exc.to_dict()}
+                except NotFoundError as exc:
+                    answers[given] = {"query": given, "error": exc.to_dict()}
+            if images:
+                for given, results in zip(good, self.neighbours(self.vectors_for_images(images), k, threshold)):
+                    answers[given] = {"query": given, "results": results}
+            for given in block:
+                yield answers[given]

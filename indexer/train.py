@@ -1,0 +1,664 @@
+"""Contrastive self-supervised training of the encoder on the collection itself.
+
+`train` learns from unlabeled images: two random views of one image are a
+positive pair, the other images in the batch (and optionally a queue of earlier
+embeddings) are negatives (SimCLR, Chen et al. 2020; MoCo queue, He et al. 2020).
+Each image is decoded once, at a small size, into an in-memory cache; views are
+made by DataLoader worker processes while the main process trains.
+
+`fine_tune_from_pairs` adjusts a trained model with human verdicts
+("same" / "different" pairs) using a margin or batch-hard triplet loss.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import io
+import logging
+import math
+import os
+import signal
+import threading
+import time
+from contextlib import contextmanager
+from dataclasses import asdict, dataclass, field, fields
+from pathlib import Path
+from typing import Any, Iterator, Sequence
+
+import numpy as np
+import torch
+from PIL import Image
+from torch.utils.data import DataLoader, Dataset
+from tqdm import tqdm
+
+from .embed import decode_files, embed_images
+from .encoder import DEFAULT_ARCH, Encoder, ProjectionHead, create_encoder
+from .errors import UsageError
+from .fsutil import atomic_write_bytes
+from .heldout import heldout_check
+from .losses import koleo, margin_contrastive, nt_xent, triplet_hard
+from .model import load_model, save_model
+from .views import ViewRecipe, make_views
+
+log = logging.getLogger(__name__)
+
+CHECKPOINT_FILE = "checkpoint.pt"
+MIN_TRAIN_IMAGES = 8
+_LOSS_CURVE_POINTS = 200
+
+
+@dataclass(frozen=True)
+class TrainConfig:
+    """Everything that defines a training run; saved in the model card and the checkpoint.
+
+    Defaults follow benchmarks/results/train.md. The budget is whichever of
+    `minutes` (training-loop wall time), `epochs` or `steps` runs out first.
+    """
+
+    arch: str = DEFAULT_ARCH
+    dim: int = 128
+    pooling: str = "gem"
+    size: int = 128  # input side in pixels
+    batch_size: int = 64
+    temperature: float = 0.1
+    queue_len: int = 0  # extra negatives from earlier batches; 0 = in-batch negatives only
+    koleo_weight: float = 0.0
+    proj_dim: int = 128
+    lr: float = 2e-3
+    weight_decay: float = 0.05
+    warmup_steps: int = 30
+    minutes: float | None = 10.0
+    epochs: float | None = None
+    steps: int | None = None
+    seed: int = 0
+    workers: int = 1  # DataLoader processes making views
+    threads: int | None = None  # torch threads of the training process; None = cores left over by the workers
+    checkpoint_every_s: float = 180.0
+    heldout: int = 256  # originals kept out of training for the check ...
+    heldout_fraction: float = 0.2  # ... but at most this fraction of the readable images
+    # A random sample of this many images is used when the collection is larger: the cache
+    # holds ~83 KB per image at 128 px (0.8 GB for 10 000), and a 10-minute CPU run sees
+    # only ~25 000 views anyway (benchmarks/results/train.md).
+    max_images: int = 10_000
+    cache_side: float = 1.5  # images are decoded once with longest side cache_side * size
+    recipe: ViewRecipe = field(default_factory=ViewRecipe)
+
+    def to_dict(self) -> dict[str, Any]:
+        values = asdict(self)
+        values["recipe"] = self.recipe.to_dict()
+        return values
+
+    @classmethod
+    def from_dict(cls, values: dict[str, Any]) -> "TrainConfig":
+        known = {f.name for f in fields(cls)}
+        unknown = set(values) - known
+        if unknown:
+            raise UsageError(f"unknown training settings: {', '.join(sorted(unknown))}")
+        values = dict(values)
+        if isinstance(values.get("recipe"), dict):
+            values["recipe"] = ViewRecipe.from_dict(values["recipe"])
+        return cls(**values)
+
+    def validate(self) -> None:
+        checks = [
+            (self.size >= 32, f"size must be >= 32 pixels, got {self.size}"),
+            (self.batch_size >= 2, f"batch_size must be >= 2, got {self.batch_size}"),
+            (self.temperature > 0, f"temperature must be > 0, got {self.temperature}"),
+            (self.queue_len >= 0, f"queue_len must be >= 0, got {self.queue_len}"),
+            (self.lr > 0, f"lr must be > 0, got {self.lr}"),
+            (self.workers >= 0, f"workers must be >= 0, got {self.workers}"),
+            (0.0 <= self.heldout_fraction < 1.0, f"heldout_fraction must be in [0, 1), got {self.heldout_fraction}"),
+            (self.cache_side >= 1.0, f"cache_side must be >= 1, got {self.cache_side}"),
+            (
+                any(b is not None for b in (self.minutes, self.epochs, self.steps)),
+                "give a budget: minutes, epochs or steps",
+            ),
+        ]
+        for ok, message in checks:
+            if not ok:
+                raise UsageError(message)
+
+
+@dataclass
+class TrainResult:
+    model_dir: Path
+    version: str
+    steps: int
+    stopped_by: str  # "steps", "epochs" or "minutes"
+    images_used: int  # images trained on (held-out ones excluded)
+    skipped: dict[str, str]  # unreadable path -> reason
+    final_loss: float
+    images_per_s: float
+    heldout: dict  # held-out check of the trained encoder
+    heldout_random_init: dict  # the same check for the same architecture at random init
+
+
+class _ImageCache:
+    """Decoded images packed into one uint8 buffer (shared copy-on-write with forked workers)."""
+
+    def __init__(self, arrays: list[np.ndarray]):
+        self.shapes = np.array([a.shape for a in arrays], dtype=np.int64).reshape(-1, 3)
+        sizes = self.shapes.prod(axis=1)
+        self.offsets = np.concatenate([[0], np.cumsum(sizes)])
+        self.pixels = np.concatenate([a.reshape(-1) for a in arrays]) if arrays else np.zeros(0, np.uint8)
+
+    def __len__(self) -> int:
+        return len(self.shapes)
+
+    def image(self, i: int) -> Image.Image:
+        flat = self.pixels[self.offsets[i] : self.offsets[i + 1]]
+        return Image.fromarray(flat.reshape(self.shapes[i]))
+
+
+def _decode_cache(paths: Sequence[Path], max_side: int, workers: int) -> tuple[_ImageCache, list[Path], dict[str, str]]:
+    arrays, kept, skipped = [], [], {}
+    for index, pixels, error in decode_files(paths, max_side, workers):
+        if error is None:
+            arrays.append(pixels)
+            kept.append(paths[index])
+        else:
+            skipped[str(paths[index])] = error
+    return _ImageCache(arrays), kept, skipped
+
+
+def _item_seed(seed: int, epoch: int, index: int) -> int:
+    return ((seed * 1_000_003 + epoch) * 10_000_019 + index) % (2**63)
+
+
+class _PairViews(Dataset):
+    """Item (epoch, i) -> two random views of training image i, seeded by (seed, epoch, i).
+
+    Seeding per item makes the views independent of worker count and of resuming.
+    """
+
+    def __init__(self, cache: _ImageCache, recipe: ViewRecipe, size: int, seed: int):
+        self.cache, self.seed = cache, seed
+        self.views = make_views(recipe, size)
+
+    def __len__(self) -> int:
+        return len(self.cache)
+
+    def __getitem__(self, item: tuple[int, int]) -> tuple[torch.Tensor, torch.Tensor]:
+        epoch, i = item
+        # The CPU generator only: torch.manual_seed would also queue a lazy CUDA seeding call per item.
+        torch.default_generator.manual_seed(_item_seed(self.seed, epoch, i))
+        im = self.cache.image(i)
+        return self.views(im), self.views(im)
+
+
+class _EpochBatches:
+    """Endless batches of (epoch, i); the order depends only on (seed, step), so a resume picks up exactly."""
+
+    def __init__(self, n: int, batch_size: int, seed: int, start_step: int):
+        self.n, self.batch_size, self.seed, self.start_step = n, batch_size, seed, start_step
+        self.steps_per_epoch = n // batch_size
+
+    def __iter__(self) -> Iterator[list[tuple[int, int]]]:
+        step = self.start_step
+        while True:
+            epoch, k = divmod(step, self.steps_per_epoch)
+            order = torch.randperm(self.n, generator=torch.Generator().manual_seed(self.seed * 7919 + epoch))
+            yield [(epoch, int(i)) for i in order[k * self.batch_size : (k + 1) * self.batch_size]]
+            step += 1
+
+
+@contextmanager
+def _deferred_interrupt() -> Iterator[dict]:
+    """Turn Ctrl-C into a flag the loop checks between steps, so no checkpoint holds half a step."""
+    flag = {"set": False}
+    if threading.current_thread() is not threading.main_thread():
+        yield flag
+        return
+
+    def remember(_signum, _frame):
+        flag["set"] = True
+
+    previous = signal.signal(signal.SIGINT, remember)
+    try:
+        yield flag
+    finally:
+        signal.signal(signal.SIGINT, previous)
+
+
+def _ignore_sigint(_worker_id: int) -> None:
+    """DataLoader workers leave Ctrl-C to the main process, which stops at a step boundary."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
+def _init_modules(config: TrainConfig) -> tuple[Encoder, ProjectionHead]:
+    torch.manual_seed(config.seed)
+    encoder = create_encoder(config.arch, config.dim, config.pooling)
+    head = ProjectionHead(config.dim, 4 * config.proj_dim, config.proj_dim)
+    return encoder, head
+
+
+def _lr_factor(config: TrainConfig, step: int, progress: float) -> float:
+    """Linear warm-up, then cosine decay over the budget's progress (0..1), floored at 1 %."""
+    if step < config.warmup_steps:
+        return (step + 1) / config.warmup_steps
+    return max(0.01, 0.5 * (1 + math.cos(math.pi * min(1.0, progress))))
+
+
+def _progress(config: TrainConfig, step: int, elapsed: float, steps_per_epoch: int) -> float:
+    parts = []
+    if config.steps is not None:
+        parts.append(step / config.steps)
+    if config.epochs is not None:
+        parts.append(step / (config.epochs * steps_per_epoch))
+    if config.minutes is not None:
+        parts.append(elapsed / (config.minutes * 60))
+    return max(parts)
+
+
+def _save_checkpoint(out_dir: Path, state: dict) -> None:
+    buf = io.BytesIO()
+    torch.save(state, buf)
+    atomic_write_bytes(out_dir / CHECKPOINT_FILE, buf.getvalue())
+
+
+def _load_checkpoint(out_dir: Path, config: TrainConfig) -> dict | None:
+    path = out_dir / CHECKPOINT_FILE
+    if not path.is_file():
+        log.info("no checkpoint in %s; starting from scratch", out_dir)
+        return None
+    state = torch.load(path, map_location="cpu", weights_only=True)
+    saved = state["config"]
+    for key in ("arch", "dim", "pooling", "proj_dim", "size", "seed"):
+        if saved[key] != getattr(config, key):
+            raise UsageError(f"cannot resume: checkpoint has {key}={saved[key]!r}, this run asks for {getattr(config, key)!r}")
+    return state
+
+
+def _fingerprint(paths: Sequence[Path]) -> str:
+    digest = hashlib.blake2b(digest_size=8)
+    for p in paths:
+        digest.update(str(p).encode("utf-8", "surrogateescape") + b"\0")
+    return digest.hexdigest()
+
+
+def _sample_curve(losses: list[float]) -> list[list[float]]:
+    """(step, mean loss) at most _LOSS_CURVE_POINTS points, each the mean of its window."""
+    if not losses:
+        return []
+    edges = np.unique(np.linspace(0, len(losses), min(len(losses), _LOSS_CURVE_POINTS) + 1).astype(int))
+    return [[int(hi), float(np.mean(losses[lo:hi]))] for lo, hi in zip(edges[:-1], edges[1:])]
+
+
+def split_heldout(paths: Sequence[Path], config: TrainConfig) -> tuple[list[Path], list[Path]]:
+    """(training paths, held-out paths): a seeded random `heldout_fraction` (at most `heldout`) is kept out."""
+    n_held = min(config.heldout, int(len(paths) * config.heldout_fraction))
+    order = np.random.default_rng(config.seed).permutation(len(paths))
+    return [paths[i] for i in np.sort(order[n_held:])], [paths[i] for i in np.sort(order[:n_held])]
+
+
+def _set_threads(config: TrainConfig) -> None:
+    # Oversubscribing the cores (view workers + intra-op threads) slowed training
+    # several-fold in our measurements (benchmarks/results/train.md).
+    threads = config.threads or (os.cpu_count() or 1) - config.workers
+    torch.set_num_threads(max(1, threads))
+
+
+def train(
+    images: Sequence[Path], out_dir: Path, config: TrainConfig, *, resume: bool = False, progress: bool = True
+) -> TrainResult:
+    """Train an encoder on `images` and save it (weights + card) in `out_dir`.
+
+    Unreadable images are skipped and counted. A checkpoint is written every
+    `checkpoint_every_s` seconds and at the end; `resume=True` continues from it.
+    """
+    config.validate()
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    _set_threads(config)
+    started = time.monotonic()
+    paths = [Path(p) for p in images]
+    if len(paths) > config.max_images:
+        pick = np.sort(np.random.default_rng(config.seed).choice(len(paths), config.max_images, replace=False))
+        log.info("using a random sample of %d of %d images", config.max_images, len(paths))
+        paths = [paths[i] for i in pick]
+    train_paths, held_paths = split_heldout(paths, config)
+    cache, kept, skipped = _decode_cache(train_paths, round(config.cache_side * config.size), os.cpu_count() or 1)
+    held_images, held_skipped = _decode_heldout(held_paths, config)
+    skipped.update(held_skipped)
+    log.info("decoded %d images (%d unreadable) in %.1f s", len(kept) + len(held_images), len(skipped),
+             time.monotonic() - started)
+    if len(kept) < MIN_TRAIN_IMAGES:
+        raise UsageError(f"need at least {MIN_TRAIN_IMAGES} readable images to train, got {len(kept)}")
+
+    encoder, head = _init_modules(config)
+    run = _run_loop(cache, encoder, head, config, out_dir, resume=resume, progress=progress, fingerprint=_fingerprint(kept))
+    heldout, heldout_random = _compare_with_random_init(encoder, held_images, config)
+    card = _model_card(config, run, images_given=len(images), trained_on=kept, held_out=len(held_images),
+                       unreadable=len(skipped), heldout=(heldout, heldout_random), wall_s=time.monotonic() - started)
+    version = save_model(out_dir, encoder, card)
+    losses = run["losses"]
+    return TrainResult(out_dir, version, run["step"], run["stopped_by"], len(kept), skipped,
+                       float(np.mean(losses[-20:])) if losses else float("nan"), run["images_per_s"],
+                       heldout, heldout_random)
+
+
+def _model_card(config: TrainConfig, run: dict, *, images_given: int, trained_on: list[Path], held_out: int,
+                unreadable: int, heldout: tuple[dict, dict], wall_s: float) -> dict:
+    """What `save_model` stores about a training run beside the weights."""
+    return {
+        "arch": config.arch,
+        "image_size": config.size,
+        "train_config": config.to_dict(),
+        "recipe": config.recipe.to_dict(),
+        "loss": {"name": "nt_xent", "temperature": config.temperature, "queue_len": config.queue_len,
+                 "koleo_weight": config.koleo_weight, "projection_head": [config.dim, 4 * config.proj_dim, config.proj_dim]},
+        "data": {"images_given": images_given, "unreadable": unreadable, "trained_on": len(trained_on),
+                 "held_out": held_out, "fingerprint": _fingerprint(trained_on)},
+        "steps": run["step"],
+        "epochs": round(run["step"] * min(config.batch_size, len(trained_on)) / len(trained_on), 3),
+        "stopped_by": run["stopped_by"],
+        "loss_curve": _sample_curve(run["losses"]),
+        "train_seconds": round(run["elapsed_s"], 1),
+        "images_per_s": round(run["images_per_s"], 1),
+        "wall_seconds": round(wall_s, 1),
+        "heldout": {"trained": heldout[0], "random_init": heldout[1]},
+    }
+
+
+# Held-out originals are decoded larger than the training cache so that even the
+# strongest "resize" edit (x0.4) leaves the shorter side of a 4:3 copy above the
+# input size, as a resized full-size file would be; otherwise the check would
+# mostly test upscaling. Memory: 256 originals at 512 px are about 150 MB.
+HELDOUT_DECODE_FACTOR = 4
+
+
+def _decode_heldout(paths: list[Path], config: TrainConfig) -> tuple[list[Image.Image], dict[str, str]]:
+    images, skipped = [], {}
+    for index, pixels, error in decode_files(paths, HELDOUT_DECODE_FACTOR * config.size, os.cpu_count() or 1):
+        if error is None:
+            images.append(Image.fromarray(pixels))
+        else:
+            skipped[str(paths[index])] = error
+    return images, skipped
+
+
+def _compare_with_random_init(encoder: Encoder, held_images: list[Image.Image], config: TrainConfig) -> tuple[dict, dict]:
+    if len(held_images) < 2:
+        log.warning("too few images to hold out any for the held-out check")
+        return {}, {}
+    trained = heldout_check(encoder, held_images, config.seed, config.size)
+    random_init, _ = _init_modules(config)
+    baseline = heldout_check(random_init, held_images, config.seed, config.size)
+    log.info(
+        "held-out check on %d originals: recall@1 %.3f (random init %.3f), mean rank %.2f (random init %.2f)",
+        trained["n"], trained["recall_at_1"], baseline["recall_at_1"], trained["mean_rank"], baseline["mean_rank"],
+    )
+    return trained, baseline
+
+
+def _train_step(
+    encoder: Encoder, head: ProjectionHead, optimizer: torch.optim.Optimizer,
+    v1: torch.Tensor, v2: torch.Tensor, queue: torch.Tensor, config: TrainConfig, lr: float,
+) -> tuple[float, torch.Tensor]:
+    """One AdamW step on NT-Xent of the projected views (+ KoLeo on the descriptors); returns (loss, queue)."""
+    for group in optimizer.param_groups:
+        group["lr"] = lr
+    h = encoder.forward_head(encoder.forward_features(torch.cat([v1, v2])), normalize=False)
+    z1, z2 = head(h).chunk(2)
+    loss = nt_xent(z1, z2, config.temperature, queue if config.queue_len else None)
+    if config.koleo_weight:
+        h1, h2 = h.chunk(2)
+        loss = loss + config.koleo_weight * 0.5 * (koleo(h1) + koleo(h2))
+    optimizer.zero_grad(set_to_none=True)
+    loss.backward()
+    optimizer.step()
+    if config.queue_len:
+        queue = torch.cat([torch.nn.functional.normalize(z1.detach(), dim=1), queue])[: config.queue_len]
+    return float(loss.item()), queue
+
+
+def _run_loop(
+    cache: _ImageCache,
+    encoder: Encoder,
+    head: ProjectionHead,
+    config: TrainConfig,
+    out_dir: Path,
+    *,
+    resume: bool,
+    progress: bool,
+    fingerprint: str,
+) -> dict:
+    """The optimisation loop; returns step, losses, elapsed_s, images_per_s, stopped_by."""
+    batch_size = min(config.batch_size, len(cache))
+    params = list(encoder.parameters()) + list(head.parameters())
+    optimizer = torch.optim.AdamW(params, lr=config.lr, weight_decay=config.weight_decay)
+    step, elapsed, losses = 0, 0.0, []
+    queue = torch.zeros(0, config.proj_dim)
+    state = _load_checkpoint(out_dir, config) if resume else None
+    if state is not None:
+        encoder.load_state_dict(state["encoder"])
+        head.load_state_dict(state["head"])
+        optimizer.load_state_dict(state["optimizer"])
+        step, elapsed, losses, queue = state["step"], state["elapsed_s"], list(state["losses"]), state["queue"]
+        if state.get("fingerprint") != fingerprint:
+            log.warning("resuming on a different set of images than the checkpoint was trained on")
+        log.info("resuming from step %d (%.0f s trained)", step, elapsed)
+
+    sampler = _EpochBatches(len(cache), batch_size, config.seed, start_step=step)
+    dataset = _PairViews(cache, config.recipe, config.size, config.seed)
+    loader = DataLoader(dataset, batch_sampler=sampler, num_workers=config.workers,
+                        prefetch_factor=4 if config.workers else None, worker_init_fn=_ignore_sigint)
+
+    def snapshot() -> dict:
+        return {"step": step, "elapsed_s": elapsed, "losses": losses, "queue": queue, "fingerprint": fingerprint,
+                "config": config.to_dict(), "encoder": encoder.state_dict(), "head": head.state_dict(),
+                "optimizer": optimizer.state_dict()}
+
+    def stop_reason() -> str | None:
+        if config.steps is not None and step >= config.steps:
+            return "steps"
+        if config.epochs is not None and step >= config.epochs * sampler.steps_per_epoch:
+            return "epochs"
+        if config.minutes is not None and elapsed >= config.minutes * 60:
+            return "minutes"
+        return None
+
+    encoder.train()
+    head.train()
+    bar = tqdm(total=config.steps, initial=step, desc="train", unit="step", disable=not progress, dynamic_ncols=True)
+    start_step, session_start, last_checkpoint = step, time.monotonic(), time.monotonic()
+    session_elapsed0 = elapsed
+    batches = iter(loader)
+    try:
+        with _deferred_interrupt() as interrupted:
+            while (stopped_by := stop_reason()) is None:
+                if interrupted["set"]:
+                    log.warning("interrupted at step %d; checkpoint saved (resume with resume=True)", step)
+                    _save_checkpoint(out_dir, snapshot())
+                    raise KeyboardInterrupt
+                v1, v2 = next(batches)
+                lr = config.lr * _lr_factor(config, step, _progress(config, step, elapsed, sampler.steps_per_epoch))
+                loss, queue = _train_step(encoder, head, optimizer, v1, v2, queue, config, lr)
+                step += 1
+                losses.append(loss)
+                now = time.monotonic()
+                elapsed = session_elapsed0 + (now - session_start)
+                bar.update(1)
+                rate = (step - start_step) * batch_size / max(now - session_start, 1e-9)
+                bar.set_postfix(loss=f"{loss:.3f}", img_s=f"{rate:.0f}", refresh=False)
+                if now - last_checkpoint >= config.checkpoint_every_s:
+                    _save_checkpoint(out_dir, snapshot())
+                    last_checkpoint = now
+    finally:
+        bar.close()
+        del batches  # shuts the worker processes down
+    _save_checkpoint(out_dir, snapshot())
+    session_s = time.monotonic() - session_start
+    images_per_s = (step - start_step) * batch_size / max(session_s, 1e-9)
+    log.info("trained %d steps (%s budget reached), %.1f images/s", step, stopped_by, images_per_s)
+    encoder.eval()
+    return {"step": step, "losses": losses, "elapsed_s": elapsed, "images_per_s": images_per_s, "stopped_by": stopped_by}
+
+
+# --- fine-tuning from human verdicts ------------------------------------------
+
+VERDICTS = {"same": True, "different": False}
+
+# Mild views for fine-tuning: the pairs carry the signal, the views only keep the
+# encoder from memorising exact pixels.
+FINE_TUNE_RECIPE = ViewRecipe(
+    crop_scale=(0.7, 1.0), rotate_p=0.0, jitter_p=0.3, brightness=0.2, contrast=0.2, saturation=0.2, hue=0.0,
+    grayscale_p=0.0, blur_p=0.1, jpeg_p=0.2, border_p=0.0, overlay_p=0.0,
+)
+
+
+@dataclass(frozen=True)
+class FineTuneConfig:
+    loss: str = "margin"  # "margin" (Hadsell et al. 2006) or "triplet_hard" (batch-hard triplets)
+    margin: float = 1.0  # on unit vectors: same pairs pulled together, different pairs pushed to >= margin
+    steps: int = 200
+    batch_size: int = 32  # pairs per step
+    lr: float = 1e-4
+    weight_decay: float = 1e-4
+    seed: int = 0
+
+
+@dataclass
+class FineTuneResult:
+    model_dir: Path
+    version: str
+    fine_tuned_from: str | None
+    steps: int
+    pairs_used: int
+    pairs_skipped: int
+    before: dict  # mean distance of same / different pairs before fine-tuning
+    after: dict
+
+
+def read_verdicts_csv(path: Path) -> list[tuple[Path, Path, bool]]:
+    """Read a CSV with columns path_a, path_b, verdict (same | different) into (a, b, same) triples."""
+    path = Path(path)
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            reader = csv.DictReader(fh)
+            missing = {"path_a", "path_b", "verdict"} - set(reader.fieldnames or ())
+            if missing:
+                raise UsageError(f"{path}: missing column(s) {', '.join(sorted(missing))}; need path_a,path_b,verdict")
+            pairs = []
+            for line, row in enumerate(reader, start=2):
+                verdict = (row["verdict"] or "").strip().lower()
+                if verdict not in VERDICTS:
+                    raise UsageError(f"{path}, line {line}: verdict must be 'same' or 'different', got {row['verdict']!r}")
+                a, b = (row["path_a"] or "").strip(), (row["path_b"] or "").strip()
+                if not a or not b:
+                    raise UsageError(f"{path}, line {line}: empty path")
+                pairs.append((Path(a), Path(b), VERDICTS[verdict]))
+    except OSError as exc:
+        raise UsageError(f"cannot read verdicts file {path}: {exc}") from exc
+    except (csv.Error, UnicodeDecodeError) as exc:
+        raise UsageError(f"{path} is not a readable CSV file: {exc}") from exc
+    return pairs
+
+
+def _components(n: int, links: list[tuple[int, int]]) -> np.ndarray:
+    """Label of the connected component of each of n nodes (union-find)."""
+    parent = list(range(n))
+
+    def find(i: int) -> int:
+        while parent[i] != i:
+            parent[i] = parent[parent[i]]
+            i = parent[i]
+        return i
+
+    for a, b in links:
+        parent[find(a)] = find(b)
+    return np.array([find(i) for i in range(n)])
+
+
+def _pair_distances(encoder: Encoder, images: list[Image.Image], pairs: np.ndarray, size: int) -> dict:
+    x = embed_images(encoder, images, size)
+    d = np.linalg.norm(x[pairs[:, 0]] - x[pairs[:, 1]], axis=1)
+    same = pairs[:, 2] == 1
+    return {"same_mean_distance": float(d[same].mean()) if same.any() else None,
+            "different_mean_distance": float(d[~same].mean()) if (~same).any() else None}
+
+
+def _freeze_batchnorm(module: torch.nn.Module) -> None:
+    """Keep BatchNorm running statistics fixed: small verdict batches would skew them (common practice)."""
+    for m in module.modules():
+        if isinstance(m, torch.nn.modules.batchnorm._BatchNorm):
+            m.eval()
+
+
+def fine_tune_from_pairs(
+    model_dir: Path,
+    pairs: Sequence[tuple[Path, Path, bool]],
+    *,
+    out_dir: Path | None = None,
+    config: FineTuneConfig = FineTuneConfig(),
+    progress: bool = True,
+) -> FineTuneResult:
+    """Fine-tune the model in `model_dir` on verdict pairs and save it to `out_dir` (default: in place)."""
+    if config.loss not in ("margin", "triplet_hard"):
+        raise UsageError(f"fine-tuning loss must be 'margin' or 'triplet_hard', got {config.loss!r}")
+    encoder, card = load_model(model_dir)
+    size = int(card["image_size"])
+    unique = sorted({str(p) for a, b, _ in pairs for p in (a, b)})
+    position = {p: i for i, p in enumerate(unique)}
+    images: dict[int, Image.Image] = {}
+    for index, pixels, error in decode_files(unique, round(1.5 * size), workers=0):
+        if error is None:
+            images[index] = Image.fromarray(pixels)
+        else:
+            log.warning("skipping %s: %s", unique[index], error)
+    rows = [(position[str(a)], position[str(b)], int(same)) for a, b, same in pairs]
+    usable = np.array([r for r in rows if r[0] in images and r[1] in images], dtype=np.int64).reshape(-1, 3)
+    if len(usable) == 0:
+        raise UsageError("no verdict pair has two readable images")
+    # Re-index to the readable images only.
+    keep = sorted(images)
+    remap = {old: new for new, old in enumerate(keep)}
+    usable[:, 0] = [remap[i] for i in usable[:, 0]]
+    usable[:, 1] = [remap[i] for i in usable[:, 1]]
+    pics = [images[i] for i in keep]
+    labels = torch.as_tensor(_components(len(pics), [(a, b) for a, b, s in usable if s]))
+
+    before = _pair_distances(encoder, pics, usable, size)
+    losses = _fine_tune_loop(encoder, pics, usable, labels, size, config, progress)
+    after = _pair_distances(encoder, pics, usable, size)
+    log.info("fine-tuned on %d pairs: same-pair distance %s -> %s, different-pair distance %s -> %s",
+             len(usable), before["same_mean_distance"], after["same_mean_distance"],
+             before["different_mean_distance"], after["different_mean_distance"])
+
+    new_card = {k: v for k, v in card.items() if k not in ("version", "created", "weights_blake2b", "libraries", "format")}
+    new_card["fine_tuned_from"] = card.get("version")
+    new_card["fine_tune"] = {"config": asdict(config), "pairs_used": int(len(usable)),
+                             "pairs_skipped": len(pairs) - int(len(usable)), "loss_curve": _sample_curve(losses),
+                             "before": before, "after": after}
+    target = Path(out_dir) if out_dir is not None else Path(model_dir)
+    version = save_model(target, encoder, new_card)
+    return FineTuneResult(target, version, card.get("version"), config.steps, int(len(usable)),
+                          len(pairs) - int(len(usable)), before, after)
+
+
+def _fine_tune_loop(encoder: Encoder, pics: list[Image.Image], pairs: np.ndarray, labels: torch.Tensor,
+                    size: int, config: FineTuneConfig, progress: bool) -> list[float]:
+    torch.manual_seed(config.seed)
+    rng = np.random.default_rng(config.seed)
+    views = make_views(FINE_TUNE_RECIPE, size)
+    optimizer = torch.optim.AdamW(encoder.parameters(), lr=config.lr, weight_decay=config.weight_decay)
+    encoder.train()
+    _freeze_batchnorm(encoder)
+    losses = []
+    for _ in tqdm(range(config.steps), desc="fine-tune", unit="step", disable=not progress, dynamic_ncols=True):
+        batch = pairs[rng.choice(len(pairs), size=min(config.batch_size, len(pairs)), replace=False)]
+        xa = torch.stack([views(pics[i]) for i in batch[:, 0]])
+        xb = torch.stack([views(pics[i]) for i in batch[:, 1]])
+        za, zb = encoder(torch.cat([xa, xb])).chunk(2)
+        if config.loss == "margin":
+            y = torch.as_tensor(1 - batch[:, 2])  # Hadsell et al.: y = 0 similar, 1 dissimilar
+            loss = margin_contrastive(za, zb, y, config.margin)
+        else:
+            loss = triplet_hard(torch.cat([za, zb]), torch.cat([labels[batch[:, 0]], labels[batch[:, 1]]]), config.margin)
+        optimizer.zero_grad(set_to_none=True)
+        loss.backward()
+        optimizer.step()
+        losses.append(float(loss.item()))
+    encoder.eval()
+    return losses

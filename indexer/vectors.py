@@ -1,0 +1,44 @@
+"""The embedding stage over a store: vectors for every readable content that lacks one.
+
+Vectors are stored in the catalog per model version and keyed by content, so a
+renamed, moved or byte-identical file is never embedded again, and each block
+is committed on its own: a killed run resumes without repeating finished work.
+"""
+
+from __future__ import annotations
+
+import logging
+import time
+from pathlib import Path
+
+from .embed import iter_embed_files
+from .model import load_model
+from .progress import Progress
+from .store import Store
+
+log = logging.getLogger(__name__)
+
+
+def embed_missing(store: Store, model_dir: Path, *, batch_size: int = 64, workers: int = 0,
+                  progress: bool | None = None) -> dict:
+    """Embed what the current model has not seen; returns counts and timing."""
+    encoder, card = load_model(model_dir)
+    version, size = card["version"], int(card["image_size"])
+    rows = store.catalog.contents_missing_vectors(version)
+    started = time.monotonic()
+    paths = []
+    for row in rows:
+        thumb = store.thumb_path(row["hash"])
+        paths.append(thumb if row["thumb"] and thumb.is_file() else Path(row["root"]) / row["relpath"])
+    embedded, failed = 0, {}
+    with Progress(len(paths), "embed", enabled=progress) as bar:
+        for ids, xb, errors in iter_embed_files(paths, encoder, size, batch_size=batch_size, workers=workers):
+            if len(ids):
+                store.catalog.put_vectors(version, [rows[i]["content_id"] for i in ids], xb)
+            embedded += len(ids)
+            for i, reason in errors.items():
+                failed[str(Path(rows[i]["root"]) / rows[i]["relpath"])] = reason
+            bar.update(len(ids) + len(errors))
+    seconds = time.monotonic() - started
+    log.info("embedded %d contents with %s in %.1f s (%d failed)", embedded, version, seconds, len(failed))
+    return {"model": version, "embedded": embedded, "embed_failed": failed, "seconds": round(seconds, 3)}

@@ -1,0 +1,103 @@
+"""indexer.report: the page parses with the standard library's html.parser, holds one
+section per group, marks keepers, escapes every path and loads nothing from outside."""
+
+import io
+import re
+from html.parser import HTMLParser
+
+import numpy as np
+from PIL import Image
+
+from indexer.groups import ImageMeta, build_groups
+from indexer.report import human_bytes, write_html_report
+
+
+class Collector(HTMLParser):
+    """Records the tags, attributes and text the page really contains."""
+
+    def __init__(self):
+        super().__init__()
+        self.tags, self.text = [], []
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append((tag, dict(attrs)))
+
+    def handle_data(self, data):
+        self.text.append(data)
+
+
+def jpeg(colour):
+    out = io.BytesIO()
+    Image.new("RGB", (32, 24), colour).save(out, "JPEG")
+    return out.getvalue()
+
+
+def make_groups():
+    evil = '/photos/<script>alert("x")</script>&.jpg'
+    paths = {1: "/photos/beach.jpg", 2: evil, 3: "/photos/beach copy.jpg",
+             4: "/photos/cat.png", 5: "/photos/cat (1).png"}
+    meta = {i: ImageMeta(path=p, content_hash=f"c{i}", width=640 - i, height=480, file_size=9000 + i,
+                         format="JPEG", mtime=1.0) for i, p in paths.items()}
+    groups = build_groups(np.array([1, 1, 2, 4]), np.array([2, 3, 3, 5]),
+                          np.array([0.97, 0.96, 0.98, 0.93]), meta, t_near=0.95, t_similar=0.9)
+    return groups, evil
+
+
+def render(tmp_path, thumbnail=None):
+    groups, evil = make_groups()
+    out = tmp_path / "report" / "groups.html"
+    write_html_report(groups, out, thumbnail=thumbnail or (lambda i: jpeg((40 * i, 90, 120))),
+                      title="Groups <in> test", summary={"threshold": 0.9})
+    page = out.read_text("utf-8")
+    parser = Collector()
+    parser.feed(page)
+    parser.close()
+    return groups, evil, page, parser
+
+
+def test_one_section_per_group_and_keeper_marked(tmp_path):
+    groups, _, _, parser = render(tmp_path)
+    sections = [a for t, a in parser.tags if t == "section"]
+    assert [s["id"] for s in sections] == [f"group-{g.gid}" for g in groups]
+    keepers = [a for t, a in parser.tags if t == "figure" and a.get("class") == "keeper"]
+    assert len(keepers) == len(groups)
+    assert sum(t == "figure" for t, _ in parser.tags) == sum(g.size for g in groups)
+    assert "keeper" in "".join(parser.text)
+
+
+def test_text_is_escaped(tmp_path):
+    _, evil, page, parser = render(tmp_path)
+    assert "<script" not in page  # escaped, never a tag
+    assert not any(t == "script" for t, _ in parser.tags)
+    assert evil in "".join(parser.text)  # the parser unescapes it back to the real path
+    assert "Groups <in> test" in "".join(parser.text)
+
+
+def test_images_are_data_uris_and_nothing_external(tmp_path):
+    groups, _, page, parser = render(tmp_path)
+    images = [a["src"] for t, a in parser.tags if t == "img"]
+    assert len(images) == sum(g.size for g in groups)
+    assert all(src.startswith("data:image/jpeg;base64,") for src in images)
+    assert not re.search(r"https?://|//[a-z0-9.-]+\.[a-z]{2,}/", page)
+    assert not any(t in ("link", "script", "iframe") for t, _ in parser.tags)
+
+
+def test_missing_thumbnails_and_summary(tmp_path):
+    def thumbnail(ident):
+        if ident == 2:
+            raise OSError("file vanished")
+        return None if ident == 3 else jpeg((0, 0, 0))
+
+    groups, _, page, parser = render(tmp_path, thumbnail)
+    assert page.count("no preview") == 2
+    text = "".join(parser.text)
+    freed = sum(m.meta.file_size for g in groups for m in g.members if m.id != g.keeper)
+    assert human_bytes(freed) in text and "threshold" in text
+    assert [p.name for p in (tmp_path / "report").iterdir()] == ["groups.html"]  # no temp file left
+
+
+def test_human_bytes():
+    # Binary units (1 KiB = 1024 B, IEC 80000-13).
+    assert human_bytes(512) == "512 B"
+    assert human_bytes(1536) == "1.5 KiB"
+    assert human_bytes(3 * 1024**3) == "3.0 GiB"
