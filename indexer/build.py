@@ -12,6 +12,7 @@ from . import index as faiss_index
 from .groups import build_groups, summarize
 from .model import read_card
 from .store import Store
+from .whiten import fit_whitening
 
 log = logging.getLogger(__name__)
 
@@ -19,7 +20,8 @@ TUNE_QUERIES = 2_000
 
 
 def load_vectors(store: Store, model: str) -> tuple[np.ndarray, np.ndarray]:
-    """(ids, xb) for every present readable file embedded under `model`, read block by block."""
+    """(ids, xb) for every present readable file embedded under `model`, read block by block
+    (raw encoder output: a generation's whitening is applied by the caller)."""
     ids_blocks, xb_blocks = [], []
     for ids, xb in store.catalog.iter_file_vectors(model):
         ids_blocks.append(ids)
@@ -51,6 +53,8 @@ def build_generation(store: Store, model_dir, *, t_near: float, t_similar: float
     if len(ids) == 0:
         log.warning("nothing to index: no embedded readable files")
         return {"generation": None, "indexed": 0}
+    whitening = fit_whitening(xb)
+    xb = whitening.apply(xb)
     index = faiss_index.build_index(xb, ids, index_spec)
     rng = np.random.default_rng(0)
     sample = xb[rng.choice(len(xb), min(TUNE_QUERIES, len(xb)), replace=False)]
@@ -66,12 +70,14 @@ def build_generation(store: Store, model_dir, *, t_near: float, t_similar: float
         "model": model,
         "indexed": int(len(ids)),
         "dim": int(xb.shape[1]),
+        "whitening": "pca-shrunk",
         "index_spec": index_spec or faiss_index.choose_spec(len(ids), xb.shape[1]),
         "search_params": tuning["params"],
         "recall_at_10": tuning["recall"],
         "thresholds": {"near": t_near, "similar": t_similar, "source": threshold_source},
         "groups": group_summary,
     }
-    gen = generations.publish(store, index, meta, {"summary": group_summary, "groups": [g.to_dict() for g in groups]}, keep=keep)
+    gen = generations.publish(store, index, meta, {"summary": group_summary, "groups": [g.to_dict() for g in groups]},
+                              keep=keep, extra={generations.WHITENING_FILE: whitening.to_bytes()})
     return {"generation": gen.name, "indexed": int(len(ids)), "groups": group_summary,
             "stages": {"index": round(index_seconds, 3), "groups": round(groups_seconds, 3)}}

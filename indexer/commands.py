@@ -194,6 +194,7 @@ def cmd_groups(args) -> int:
             from .build import compute_groups, load_vectors
 
             ids, xb = load_vectors(store, gen.meta["model"])
+            xb = gen.load_whitening().apply(xb)
             groups = compute_groups(store, gen.load_index(), ids, xb, t_near=args.threshold, t_similar=args.threshold)
         else:
             groups = [Group.from_dict(g) for g in gen.load_groups()["groups"]]

@@ -23,7 +23,7 @@ import faiss
 
 from . import index as faiss_index
 from .errors import NotReadyError, StoreError
-from .fsutil import atomic_write_text, fsync_dir
+from .fsutil import atomic_write_bytes, atomic_write_text, fsync_dir
 from .store import Store
 
 log = logging.getLogger(__name__)
@@ -32,6 +32,7 @@ POINTER = "generations/CURRENT"
 INDEX_FILE = "index.faiss"
 META_FILE = "meta.json"
 GROUPS_FILE = "groups.json"
+WHITENING_FILE = "whitening.npz"
 
 
 @dataclass(frozen=True)
@@ -42,6 +43,11 @@ class Generation:
 
     def load_index(self, *, mmap: bool = False) -> faiss.Index:
         return faiss_index.load_index(self.path / INDEX_FILE, mmap=mmap, params=self.meta.get("search_params"))
+
+    def load_whitening(self):
+        from .whiten import Whitening
+
+        return Whitening.load(self.path / WHITENING_FILE)
 
     def load_groups(self) -> dict:
         path = self.path / GROUPS_FILE
@@ -62,8 +68,9 @@ def _new_name(store: Store) -> str:
         time.sleep(1e-6)
 
 
-def publish(store: Store, index: faiss.Index, meta: dict, groups: dict, *, keep: int) -> Generation:
-    """Write a complete generation directory, then switch the pointer to it."""
+def publish(store: Store, index: faiss.Index, meta: dict, groups: dict, *, keep: int,
+            extra: dict[str, bytes] | None = None) -> Generation:
+    """Write a complete generation directory (plus `extra` files), then switch the pointer to it."""
     root = store.generations_dir
     root.mkdir(parents=True, exist_ok=True)
     remove_incomplete(store)
@@ -73,6 +80,8 @@ def publish(store: Store, index: faiss.Index, meta: dict, groups: dict, *, keep:
     meta = {**meta, "generation": name, "published_at": time.time()}
     faiss_index.save_index(index, tmp / INDEX_FILE)
     atomic_write_text(tmp / GROUPS_FILE, json.dumps(groups, sort_keys=True))
+    for filename, data in (extra or {}).items():
+        atomic_write_bytes(tmp / filename, data)
     atomic_write_text(tmp / META_FILE, json.dumps(meta, sort_keys=True, indent=2))
     os.rename(tmp, root / name)
     fsync_dir(root)

@@ -53,13 +53,15 @@ class Searcher:
         self.store = store
         self.generation = require_current(store)
         self.index = self.generation.load_index()
+        self.whitening = self.generation.load_whitening()
         model_dir = store.models_dir / self.generation.meta["model"]
         self.encoder, self.card = load_model(model_dir)
         self.size = int(self.card["image_size"])
         self.threshold = float(self.generation.meta["thresholds"]["near"])
 
     def vectors_for_images(self, images) -> np.ndarray:
-        return embed_images(self.encoder, images, self.size)
+        """Query vectors in the generation's space (encoder output, then its whitening)."""
+        return self.whitening.apply(embed_images(self.encoder, images, self.size))
 
     def neighbours(self, xq: np.ndarray, k: int, threshold: float | None = None) -> list[list[dict]]:
         """Top-k neighbours for each query vector, as dicts with id, path, similarity, duplicate."""

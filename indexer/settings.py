@@ -113,14 +113,15 @@ SETTINGS: tuple[Setting, ...] = (
     ),
     Setting(
         "near_threshold",
-        0.90,
+        0.50,
         _unit_float,
-        "Cosine similarity at or above which a pair is called a near-duplicate, until a "
-        "calibration exists (see DEVELOPERS.md for how this default was measured).",
+        "Cosine similarity (of whitened descriptors) at or above which a pair is called a "
+        "near-duplicate, until a calibration exists. Measured on the demo archive after 3 minutes "
+        "of training: pair precision 0.98, recall 0.61 (see DEVELOPERS.md).",
     ),
     Setting(
         "similar_threshold",
-        0.80,
+        0.30,
         _unit_float,
         "Looser cosine similarity for the 'similar' tier of groups, until a calibration exists.",
     ),
