@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import logging
 import time
 
@@ -9,7 +10,9 @@ import numpy as np
 
 from . import generations
 from . import index as faiss_index
+from .errors import ImageReadError
 from .groups import build_groups, summarize
+from .images import read_image
 from .model import read_card
 from .store import Store
 from .whiten import fit_whitening
@@ -31,10 +34,42 @@ def load_vectors(store: Store, model: str) -> tuple[np.ndarray, np.ndarray]:
     return np.concatenate(ids_blocks), np.ascontiguousarray(np.concatenate(xb_blocks))
 
 
+def pixel_hash(path: str) -> str:
+    """Hash of the decoded, upright RGB pixels at full size: equal for the same picture saved twice."""
+    im, _info = read_image(path)
+    digest = hashlib.blake2b(digest_size=32)
+    digest.update(f"{im.width}x{im.height}".encode())
+    digest.update(im.tobytes())
+    return digest.hexdigest()
+
+
+def _add_pixel_hashes(store: Store, meta: dict, a: np.ndarray, b: np.ndarray, sims: np.ndarray, t_near: float) -> None:
+    """Decode in full only the files that could be the same pixels: near pairs of equal size, different bytes."""
+    wanted = set()
+    for i, j, s in zip(a.tolist(), b.tolist(), sims.tolist()):
+        x, y = meta[i], meta[j]
+        if s >= t_near and (x["width"], x["height"]) == (y["width"], y["height"]) and x["content_hash"] != y["content_hash"]:
+            wanted.update(k for k in (i, j) if meta[k]["pixel_hash"] is None)
+    computed: dict[str, str] = {}
+    for k in sorted(wanted):
+        digest = meta[k]["content_hash"]
+        if digest not in computed:
+            try:
+                computed[digest] = pixel_hash(meta[k]["path"])
+            except (ImageReadError, OSError) as exc:  # the file changed since the scan: skip it
+                log.warning("cannot hash pixels of %s: %s", meta[k]["path"], exc)
+                continue
+        meta[k]["pixel_hash"] = computed[digest]
+    if computed:
+        store.catalog.set_pixel_hashes(computed)
+        log.info("hashed the pixels of %d candidate contents", len(computed))
+
+
 def compute_groups(store: Store, index, ids: np.ndarray, xb: np.ndarray, *, t_near: float, t_similar: float) -> list:
     """Candidate pairs from FAISS range search above the looser threshold, then groups that do not chain."""
     a, b, sims = faiss_index.range_pairs(index, xb, ids, t_similar)
     meta = store.catalog.image_meta(ids.tolist())
+    _add_pixel_hashes(store, meta, a, b, sims, t_near)
     row = {int(i): n for n, i in enumerate(ids)}
 
     def vectors(sub_ids: np.ndarray) -> np.ndarray:

@@ -255,6 +255,11 @@ class Catalog:
             for r in rows
         }
 
+    def set_pixel_hashes(self, by_content_hash: dict[str, str]) -> None:
+        with self.transaction() as conn:
+            conn.executemany("UPDATE contents SET pixel_hash = ? WHERE hash = ?",
+                             [(p, c) for c, p in by_content_hash.items()])
+
     def paths_for(self, file_ids) -> dict[int, str]:
         """Absolute paths of the given file ids (ids that do not exist are left out)."""
         ids = sorted(set(int(i) for i in file_ids))

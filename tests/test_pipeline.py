@@ -101,3 +101,21 @@ def test_publish_keeps_the_newest_generations_and_clears_leftovers(folder, tmp_p
         assert store.read_pointer(generations.POINTER) == names[-1]
         meta = json.loads((store.generations_dir / names[-1] / "meta.json").read_text())
         assert meta["generation"] == names[-1]
+
+
+def test_same_pixels_in_another_format_is_its_own_tier(folder, tmp_path):
+    Image.open(folder / "a" / "05.jpg").save(folder / "a" / "05-again.bmp")   # same pixels, other bytes
+    shutil.copy(folder / "a" / "06.jpg", folder / "a" / "06-copy.jpg")         # same bytes
+    # Thresholds so high that only identical pictures group, whatever the tiny encoder learned.
+    with _store(tmp_path, near_threshold=0.9999, similar_threshold=0.9999) as store:
+        run_index(store, [folder], progress=False, train_config=TINY)
+        groups = generations.current(store).load_groups()["groups"]
+    # A member's tier says how it relates to its group's keeper.
+    tier_to_keeper = {}
+    for g in groups:
+        for m in g["members"]:
+            if m["id"] != g["keeper"]:
+                tier_to_keeper[frozenset(x["path"].rsplit("/", 1)[-1] for x in (m, g["members"][0]))] = m["tier"]
+    assert g["members"][0]["id"] == g["keeper"]
+    assert tier_to_keeper[frozenset(("05.jpg", "05-again.bmp"))] == "same-pixels"
+    assert tier_to_keeper[frozenset(("06.jpg", "06-copy.jpg"))] == "same-bytes"
