@@ -1,0 +1,259 @@
+"""Index and grouping speed, memory and recall on synthetic embeddings.
+
+Makes seeded 128-d unit vectors: Gaussian clusters (unrelated images of one
+kind) where 3% of items get 1-3 near copies (the original plus small Gaussian
+noise, renormalised). Then, in the same run:
+
+* groups: choose_spec, build_index, tune_search, range_pairs and build_groups over
+  the whole set; wall time per stage, peak memory (ru_maxrss), planted copy pairs
+  found, pair recall against brute force on a query sample;
+* queries: for 10k, 100k and 1M vectors and each index type (Flat, IVF-SQ8, IVF-PQ,
+  HNSW32): build time, single-query latency for k=10, recall@10 against exact
+  search, bytes per vector on disk.
+
+Writes a Markdown report (default benchmarks/results/index.md). Nothing is
+asserted; numbers depend on the machine. ``--quick`` caps sizes at 100k.
+
+    .venv/bin/python benchmarks/bench_index.py --quick
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import os
+import platform
+import resource
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import faiss
+import numpy as np
+import scipy
+
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+
+from indexer import index as ix  # noqa: E402
+from indexer.groups import ImageMeta, build_groups  # noqa: E402
+
+BLOCK = 100_000
+
+
+def unit_rows(x: np.ndarray) -> np.ndarray:
+    x /= np.linalg.norm(x, axis=1, keepdims=True)
+    return x
+
+
+def synthetic(n: int, dim: int, seed: int, copy_share: float = 0.03):
+    """(xb, ids, planted pairs): clusters plus near copies; built block by block."""
+    rng = np.random.default_rng(seed)
+    centres = unit_rows(rng.standard_normal((1000, dim)).astype(np.float32))
+    # Decaying per-dimension spread: embeddings have a low intrinsic dimension.
+    spread = (0.12 / (1 + np.arange(dim)) ** 0.5).astype(np.float32)
+    spread *= 0.12 / np.sqrt((spread ** 2).mean())
+    # `copy_share` of the originals get 1-3 copies (2 on average).
+    need = int(round(n * 2 * copy_share / (1 + 2 * copy_share)))
+    copies = rng.integers(1, 4, need)
+    count = int(np.searchsorted(np.cumsum(copies), need)) + 1
+    copies = copies[:count]
+    copies[-1] -= copies.sum() - need
+    n_base = n - need
+    sources = rng.choice(n_base, count, replace=False)
+    xb = np.empty((n, dim), np.float32)
+    for start in range(0, n_base, BLOCK):
+        stop = min(n_base, start + BLOCK)
+        members = rng.integers(0, len(centres), stop - start)
+        xb[start:stop] = unit_rows(centres[members] + spread * rng.standard_normal((stop - start, dim),
+                                                                                    dtype=np.float32))
+    origin = np.repeat(sources, copies)
+    for start in range(0, origin.shape[0], BLOCK):
+        part = origin[start:start + BLOCK]
+        noise = 0.02 * rng.standard_normal((part.shape[0], dim), dtype=np.float32)
+        xb[n_base + start:n_base + start + part.shape[0]] = unit_rows(xb[part] + noise)
+    ids = rng.permutation(n).astype(np.int64) + 1  # catalog ids, unrelated to row order
+    planted = np.stack([ids[origin], ids[n_base:]], 1)
+    return xb, ids, planted
+
+
+def near_queries(rng, xb, count):
+    rows = rng.choice(xb.shape[0], count, replace=False)
+    return unit_rows(xb[rows] + 0.05 * rng.standard_normal((count, xb.shape[1]), dtype=np.float32))
+
+
+def peak_mib() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # Linux reports KiB
+
+
+def disk_bytes(index) -> int:
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "i.faiss"
+        ix.save_index(index, path)
+        return path.stat().st_size
+
+
+def exact_pairs_for(xb, ids, rows, threshold):
+    """Brute force (NumPy): all pairs (query id, other id) >= threshold for the sample rows."""
+    found = set()
+    for start in range(0, xb.shape[0], BLOCK):
+        S = xb[rows] @ xb[start:start + BLOCK].T
+        qi, bi = np.nonzero(S >= threshold)
+        for a, b in zip(ids[rows[qi]].tolist(), ids[start + bi].tolist()):
+            if a != b:
+                found.add((min(a, b), max(a, b)))
+    return found
+
+
+def bench_groups(xb, ids, planted, threshold, seed):
+    rng = np.random.default_rng(seed)
+    n, dim = xb.shape
+    spec = ix.choose_spec(n, dim)
+    t0 = time.perf_counter()
+    index = ix.build_index(xb, ids, spec)
+    t_build = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    sample = xb[rng.choice(n, 1000, replace=False)]
+    tuned = ix.tune_search(index, sample, 0.95, 10, xb=xb, ids=ids)
+    t_tune = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    a, b, s = ix.range_pairs(index, xb, ids, threshold)
+    t_pairs = time.perf_counter() - t0
+    mem_pairs = peak_mib()
+    involved = np.unique(np.r_[a, b])
+    meta = {int(i): ImageMeta(path=f"/photos/{i:07d}.jpg", content_hash=f"{i:x}", width=4000,
+                              height=3000, file_size=3_000_000 + int(i) % 997, format="JPEG",
+                              mtime=1.6e9 + int(i)) for i in involved}
+    t0 = time.perf_counter()
+    groups = build_groups(a, b, s, meta, t_near=0.95, t_similar=threshold)
+    t_groups = time.perf_counter() - t0
+    got = set(zip(a.tolist(), b.tolist()))
+    planted_found = sum((min(p, q), max(p, q)) in got for p, q in planted.tolist())
+    rows = rng.choice(n, 500, replace=False)
+    truth = exact_pairs_for(xb, ids, rows, threshold)
+    sample_ids = set(ids[rows].tolist())
+    mine = {p for p in got if p[0] in sample_ids or p[1] in sample_ids}
+    pair_recall = len(mine & truth) / max(1, len(truth))
+    return {
+        "n": n, "spec": spec, "params": tuned["params"], "tuned_recall": tuned["recall"],
+        "t_build": t_build, "t_tune": t_tune, "t_pairs": t_pairs, "t_groups": t_groups,
+        "pairs": len(a), "groups": len(groups), "files": sum(g.size for g in groups),
+        "planted": len(planted), "planted_found": planted_found, "pair_recall": pair_recall,
+        "truth_pairs": len(truth), "mem_pairs": mem_pairs, "mem_total": peak_mib(),
+    }
+
+
+def query_specs(n: int, dim: int) -> dict[str, str]:
+    nlist = ix.ivf_nlist(n)
+    return {"Flat": "IDMap2,Flat", "IVF-SQ8": f"IVF{nlist},SQ8", "IVF-PQ": f"IVF{nlist},PQ{dim // 4}",
+            "HNSW32": "IDMap2,HNSW32"}
+
+
+def bench_queries(xb, ids, seed, nq=300):
+    rng = np.random.default_rng(seed)
+    tune_q, xq = near_queries(rng, xb, 500), near_queries(rng, xb, nq)
+    _, I_ref = faiss.knn(xq, xb, 10, metric=faiss.METRIC_INNER_PRODUCT)
+    I_ref = ids[I_ref]
+    rows = []
+    for name, spec in query_specs(*xb.shape).items():
+        t0 = time.perf_counter()
+        index = ix.build_index(xb, ids, spec)
+        t_build = time.perf_counter() - t0
+        tuned = ix.tune_search(index, tune_q, 0.95, 10, xb=xb, ids=ids)
+        # One thread per query, as a server answers one request per thread: with
+        # shared cores, OpenMP's waiting threads can cost 100x on a single query.
+        threads = faiss.omp_get_max_threads()
+        faiss.omp_set_num_threads(1)
+        try:
+            ix.search(index, xq[:10], 10)  # warm up
+            start = time.perf_counter()
+            I = np.vstack([ix.search(index, xq[i:i + 1], 10)[1] for i in range(nq)])
+            latency = (time.perf_counter() - start) / nq * 1000
+        finally:
+            faiss.omp_set_num_threads(threads)
+        rows.append({"n": xb.shape[0], "index": name, "spec": spec, "params": tuned["params"],
+                     "t_build": t_build, "latency_ms": latency, "recall": ix.knn_recall(I, I_ref),
+                     "bytes": disk_bytes(index) / xb.shape[0]})
+        logging.info("%s", rows[-1])
+        del index
+    return rows
+
+
+def machine() -> str:
+    model = "unknown CPU"
+    try:
+        for line in open("/proc/cpuinfo", encoding="utf-8"):
+            if line.startswith("model name"):
+                model = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    return (f"{model}, {os.cpu_count()} cores, {platform.machine()}, Python {platform.python_version()}, "
+            f"NumPy {np.__version__}, SciPy {scipy.__version__}, FAISS {faiss.__version__}, "
+            f"FAISS threads {faiss.omp_get_max_threads()}")
+
+
+def report(g: dict, queries: list[dict], args) -> str:
+    lines = [
+        "# Index and grouping benchmark", "",
+        f"Machine: {machine()}.", "",
+        f"Synthetic {args.dim}-d unit vectors, seed {args.seed}: 1000 Gaussian clusters "
+        "(decaying per-dimension spread), 3% of items with 1-3 near copies (original + "
+        "N(0, 0.02^2) per dimension, renormalised).", "",
+        f"## groups over {g['n']:,} vectors (threshold {args.threshold})", "",
+        "| stage | value |", "|---|---:|",
+        f"| index (choose_spec) | `{g['spec']}` {g['params']} |",
+        f"| build_index | {g['t_build']:.1f} s |",
+        f"| tune_search (1000 queries, exact reference) | {g['t_tune']:.1f} s, recall@10 {g['tuned_recall']:.3f} |",
+        f"| range_pairs | {g['t_pairs']:.1f} s, {g['pairs']:,} pairs |",
+        f"| build_groups | {g['t_groups']:.1f} s, {g['groups']:,} groups, {g['files']:,} files |",
+        f"| planted copy pairs found | {g['planted_found']:,} / {g['planted']:,} |",
+        f"| pair recall vs brute force (500 query sample, {g['truth_pairs']} true pairs) | {g['pair_recall']:.3f} |",
+        f"| peak RSS after range_pairs / after groups | {g['mem_pairs']:.0f} / {g['mem_total']:.0f} MiB |",
+        "", "Peak RSS is the whole process (ru_maxrss), including the vectors "
+        f"({g['n'] * args.dim * 4 / 2**20:.0f} MiB) and the query benchmark if it ran first.", "",
+        "## k=10 queries", "",
+        "Single-query calls (one vector per search call, one FAISS thread), near queries (database items "
+        "plus noise, not in the database), after tune_search to recall@10 >= 0.95 on a "
+        "separate query sample; recall@10 against faiss.knn exact search; bytes per vector "
+        "= saved index file size / n (includes IVF centroids and codebooks).", "",
+        "| n | index | spec | params | build (s) | latency (ms/query) | recall@10 | bytes/vector |",
+        "|---:|---|---|---|---:|---:|---:|---:|",
+    ]
+    for r in queries:
+        lines.append(f"| {r['n']:,} | {r['index']} | `{r['spec']}` | {r['params']} | {r['t_build']:.1f} "
+                     f"| {r['latency_ms']:.3f} | {r['recall']:.3f} | {r['bytes']:.0f} |")
+    return "\n".join(lines) + "\n"
+
+
+def main(argv: list[str] | None = None) -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    add = parser.add_argument
+    add("--quick", action="store_true", help="sizes up to 100k (a few minutes)")
+    add("--dim", type=int, default=128)
+    add("--threshold", type=float, default=0.9, help="group threshold (cosine)")
+    add("--seed", type=int, default=0)
+    add("--skip-queries", action="store_true", help="only the groups benchmark")
+    add("--out", type=Path, default=Path(__file__).resolve().parent / "results" / "index.md")
+    args = parser.parse_args(argv)
+    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(name)s %(message)s")
+
+    load_start = os.getloadavg()[0]
+    top = 100_000 if args.quick else 1_000_000
+    sizes = [s for s in (10_000, 100_000, 1_000_000) if s <= top]
+    xb, ids, planted = synthetic(top, args.dim, args.seed)
+    g = bench_groups(xb, ids, planted, args.threshold, args.seed)
+    queries = []
+    if not args.skip_queries:
+        for n in sizes:
+            queries += bench_queries(np.ascontiguousarray(xb[:n]), ids[:n], args.seed)
+    text = report(g, queries, args) + (
+        f"\n1-minute load average: {load_start:.1f} at the start, {os.getloadavg()[0]:.1f} at the end "
+        "(other work may share the machine).\n")
+    print(text)
+    args.out.parent.mkdir(parents=True, exist_ok=True)
+    args.out.write_text(text, encoding="utf-8")
+
+
+if __name__ == "__main__":
+    main()
