@@ -100,8 +100,18 @@ def _resnet_narrow_backbone(
 
 
 def _mobilenet_backbone() -> tuple[nn.Module, int]:
-    """torchvision MobileNetV3-Small feature extractor, randomly initialised (576 channels)."""
-    return mobilenet_v3_small(weights=None).features, 576
+    """torchvision MobileNetV3-Small feature extractor, randomly initialised (576 channels).
+
+    torchvision builds its BatchNorm layers with momentum 0.01 (tuned for long
+    ImageNet runs); over a few hundred CPU steps the running statistics would
+    still be mostly their initial values and eval-mode outputs collapse to
+    ~1e-7 (measured), so we use PyTorch's default 0.1.
+    """
+    features = mobilenet_v3_small(weights=None).features
+    for module in features.modules():
+        if isinstance(module, nn.BatchNorm2d):
+            module.momentum = 0.1
+    return features, 576
 
 
 _BACKBONES: dict[str, Callable[[], tuple[nn.Module, int]]] = {

@@ -10,7 +10,6 @@ next run resumes where it stopped.
 
 from __future__ import annotations
 
-import errno
 import logging
 import multiprocessing
 import os
@@ -25,6 +24,7 @@ from typing import Iterator
 from . import images
 from .errors import ImageReadError, NotFoundError, UsageError
 from .fsutil import hash_file
+from .read_errors import os_error_reason
 from .progress import Progress
 from .store import Store
 
@@ -57,19 +57,6 @@ class ScanSummary:
         out["unreadable_reasons"] = dict(self.reasons.most_common())
         out["seconds"] = round(self.seconds, 3)
         return out
-
-
-def os_error_reason(exc: OSError) -> tuple[str, str]:
-    """Map an OSError met while stat-ing or reading a file to (reason code, detail)."""
-    if isinstance(exc, FileNotFoundError):
-        return "missing", "file vanished or is a broken link"
-    if isinstance(exc, PermissionError):
-        return "permission", "permission denied"
-    if isinstance(exc, IsADirectoryError):
-        return "is-directory", "is a directory"
-    if exc.errno == errno.ELOOP:
-        return "symlink-loop", "too many levels of symbolic links"
-    return "io-error", exc.strerror or str(exc)
 
 
 def _walk(root: Path, extensions: tuple[str, ...], skip_hidden: bool, exclude: Path) -> tuple[list[tuple[str, str]], int, int]:
