@@ -13,6 +13,7 @@ import tempfile
 from pathlib import Path
 
 HASH_NAME = "blake2b"
+FILE_MODE = 0o644
 _CHUNK = 1 << 20
 
 
@@ -30,6 +31,7 @@ def atomic_write_bytes(path: Path, data: bytes) -> None:
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
+        os.fchmod(fd, FILE_MODE)  # mkstemp makes 0600; store files are read by the service too
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()

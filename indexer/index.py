@@ -22,7 +22,7 @@ import faiss
 import numpy as np
 
 from .errors import NotFoundError, NotReadyError, StoreError, UsageError
-from .fsutil import fsync_dir
+from .fsutil import FILE_MODE, fsync_dir
 
 log = logging.getLogger(__name__)
 
@@ -506,6 +506,7 @@ def save_index(index: faiss.Index, path: Path) -> None:
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    os.fchmod(fd, FILE_MODE)  # readable by a service running as another user
     os.close(fd)
     try:
         faiss.write_index(index, tmp)

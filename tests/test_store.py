@@ -68,3 +68,10 @@ def test_second_writer_is_refused_and_a_killed_holder_releases_the_lock(tmp_path
     assert (store_dir / "lock").exists()
     with store.lock():
         assert f"pid {os.getpid()}" in (store_dir / "lock").read_text()
+
+
+def test_files_written_atomically_are_readable_by_other_users(tmp_path):
+    """mkstemp creates 0600 files; a service running as another user must still read the store."""
+    store = Store.open(tmp_path / "s", create=True)
+    store.write_pointer("generations/CURRENT", "g-1")
+    assert (tmp_path / "s" / "generations" / "CURRENT").stat().st_mode & 0o777 == 0o644
