@@ -210,7 +210,10 @@ def cmd_groups(args) -> int:
 
             out = Path(args.out or store.reports_dir / f"groups-{gen.name}.html")
             write_html_report(groups, out, thumbnail=_thumbnail_reader(store), title="nearsight: duplicate groups",
-                              summary={"store": str(store.root), "generation": gen.name, **gen.meta["thresholds"]})
+                              summary={"store": str(store.root), "generation": gen.name,
+                                       "near-duplicate threshold": gen.meta["thresholds"]["near"],
+                                       "similar threshold": gen.meta["thresholds"]["similar"],
+                                       "thresholds from": gen.meta["thresholds"]["source"]})
             print(f"wrote {out} ({len(groups)} groups)")
             return 0
         else:

@@ -33,7 +33,7 @@ h1 { font-size: 1.4rem; margin: 0 0 .75rem; }
            margin: 0 0 1.5rem; padding: 0; }
 .summary div { background: #fff; border: 1px solid var(--line); border-radius: 6px; padding: .5rem .75rem; }
 .summary dt { color: var(--muted); font-size: .8rem; }
-.summary dd { margin: 0; font-size: 1.1rem; font-weight: 600; }
+.summary dd { margin: 0; font-size: 1.1rem; font-weight: 600; overflow-wrap: anywhere; }
 section { background: #fff; border: 1px solid var(--line); border-radius: 8px; padding: .75rem;
           margin: 0 0 1rem; }
 section h2 { font-size: 1rem; margin: 0 0 .6rem; font-weight: 600; }
@@ -85,11 +85,12 @@ def _thumbnail(thumbnail: Callable[[int], bytes | None], ident: int) -> bytes | 
 def _member(group: Group, member, thumbnail) -> str:
     m, esc = member.meta, html.escape
     keeper = member.id == group.keeper
-    role = '<span class="badge role">keeper</span>' if keeper else ""
+    # A member's tier says how it relates to the keeper, so the keeper shows its role instead.
+    badge = '<span class="badge role">keeper</span>' if keeper else f'<span class="badge">{esc(member.tier)}</span>'
     return (
         f'<figure class="{"keeper" if keeper else "member"}">'
         f"{_image(_thumbnail(thumbnail, member.id), esc(m.path))}"
-        f"<figcaption>{role}<span class=\"badge\">{esc(member.tier)}</span>"
+        f"<figcaption>{badge}"
         f"<div>{m.width}&times;{m.height} &middot; {esc(human_bytes(m.file_size))} &middot; "
         f"{esc(m.format)}</div>"
         f"<div>similarity {member.similarity:.3f}</div>"
