@@ -37,11 +37,7 @@ def require_model_dir(store: Store) -> Path:
 
 def training_images(store: Store) -> list[Path]:
     """One image per readable content: its cached small copy when there is one, else the file."""
-    paths = []
-    for row in store.catalog.readable_contents():
-        thumb = store.thumb_path(row["hash"])
-        paths.append(thumb if row["thumb"] and thumb.is_file() else Path(row["root"]) / row["relpath"])
-    return paths
+    return [store.pixels_path(row) for row in store.catalog.readable_contents()]
 
 
 def _work_dir(store: Store) -> Path:

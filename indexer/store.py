@@ -85,6 +85,14 @@ class Store:
     def thumb_path(self, digest: str) -> Path:
         return self.thumbs_dir / digest[:2] / f"{digest}.jpg"
 
+    def pixels_path(self, row) -> Path:
+        """Where to read a content's pixels: its cached small copy when there is one, else its file.
+
+        `row` has the catalog's `hash`, `thumb`, `root` and `relpath` columns.
+        """
+        thumb = self.thumb_path(row["hash"])
+        return thumb if row["thumb"] and thumb.is_file() else Path(row["root"]) / row["relpath"]
+
     @property
     def models_dir(self) -> Path:
         return self.root / "models"

@@ -26,10 +26,7 @@ def embed_missing(store: Store, model_dir: Path, *, batch_size: int = 64, worker
     version, size = card["version"], int(card["image_size"])
     rows = store.catalog.contents_missing_vectors(version)
     started = time.monotonic()
-    paths = []
-    for row in rows:
-        thumb = store.thumb_path(row["hash"])
-        paths.append(thumb if row["thumb"] and thumb.is_file() else Path(row["root"]) / row["relpath"])
+    paths = [store.pixels_path(row) for row in rows]
     embedded, failed = 0, {}
     with Progress(len(paths), "embed", enabled=progress) as bar:
         for ids, xb, errors in iter_embed_files(paths, encoder, size, batch_size=batch_size, workers=workers):
