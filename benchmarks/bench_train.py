@@ -30,7 +30,7 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from indexer import train as train_module  # noqa: E402
-from indexer.encoder import ProjectionHead  # noqa: E402
+from indexer.encoder import ARCHS, ProjectionHead  # noqa: E402
 from indexer.heldout import heldout_check  # noqa: E402
 from indexer.model import library_versions, load_model  # noqa: E402
 from indexer.train import CHECKPOINT_FILE, TrainConfig, split_heldout, train  # noqa: E402
@@ -154,16 +154,17 @@ def write_report(results: Path, report: Path, n_images: int) -> None:
         "Held-out check: one synthetic edit (indexer/edits.py) per held-out original; recall@1 / mean rank of the",
         "original among all held-out originals. Random init = same architecture and seed, untrained.",
         "",
-        "| run | changed setting | budget | steps | images/s | final loss | trained recall@1 / mean rank | random init |",
-        "|---|---|---|---|---|---|---|---|",
+        "| run | arch | batch | temperature | pooling | queue | workers / threads | budget | steps | images/s "
+        "| final loss | trained recall@1 / mean rank | random init |",
+        "|---|---|---|---|---|---|---|---|---|---|---|---|---|",
     ]
-    base = TrainConfig().to_dict()
     for r in rows:
-        changed = ", ".join(f"{k}={v}" for k, v in r["config"].items()
-                            if k in base and v != base[k] and k not in ("minutes", "steps", "seed")) or "defaults"
-        budget = f"{r['config']['minutes']:g} min" if r["config"].get("minutes") else f"{r['config']['steps']} steps"
-        lines.append(f"| {r['name']} | {changed} | {budget} | {r['steps']} | {r['images_per_s']:.1f} | {r['final_loss']:.3f} | "
-                     f"{_cell(r, 'trained')} | {_cell(r, 'random_init')} |")
+        c = r["config"]
+        budget = f"{c['minutes']:g} min" if c.get("minutes") else f"{c['steps']} steps"
+        lines.append(f"| {r['name']} | {c['arch']} | {c['batch_size']} | {c['temperature']} | {c['pooling']} "
+                     f"| {c['queue_len']} | {c['workers']} / {c['threads'] or 'auto'} | {budget} | {r['steps']} "
+                     f"| {r['images_per_s']:.1f} | {r['final_loss']:.3f} | {_cell(r, 'trained')} "
+                     f"| {_cell(r, 'random_init')} |")
     heads = [r for r in rows if "before_head" in r]
     if heads:
         lines += ["", "Descriptor before vs after the projection head (same run, same held-out set):", "",
@@ -212,18 +213,18 @@ def main(argv: list[str] | None = None) -> int:
     if "head" in only:
         run(f"default-{n}steps", paths, base, args.work, results, extra=head_extra)
     if "temperature" in only:
-        for t in (0.05, 0.2):
+        for t in (t for t in (0.05, 0.1, 0.2) if t != base.temperature):
             run(f"temperature-{t}-{n}steps", paths, replace(base, temperature=t), args.work, results)
     if "pooling" in only:
         run(f"pooling-avg-{n}steps", paths, replace(base, pooling="avg"), args.work, results)
     if "batch" in only:  # the same number of images seen
-        for b in (32, 128):
-            steps = n * base.batch_size // b
+        for b in (b for b in (32, 64, 128) if b != base.batch_size):
+            steps = max(1, n * base.batch_size // b)
             run(f"batch-{b}-{steps}steps", paths, replace(base, batch_size=b, steps=steps), args.work, results)
     if "queue" in only:
         run(f"queue-1024-{n}steps", paths, replace(base, queue_len=1024), args.work, results)
     if "arch" in only:
-        for arch in ("tiny", "resnet_narrow", "mobilenet_v3_small"):
+        for arch in ARCHS:
             run(f"arch-{arch}-{args.sweep_minutes:g}min", paths, replace(timed, arch=arch), args.work, results)
     if "curve" in only:
         for minutes in [float(m) for m in args.minutes.split(",")]:
