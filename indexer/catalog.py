@@ -16,9 +16,11 @@ from importlib import resources
 from pathlib import Path
 from typing import Iterable, Iterator
 
-from .errors import StoreError
+from .errors import NotFoundError, StoreError, UsageError
 
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
+
+VERDICTS = ("same", "different")
 
 
 def _run_sql_file(conn: sqlite3.Connection, name: str) -> None:
@@ -38,8 +40,12 @@ def _schema_v2(conn: sqlite3.Connection) -> None:
     _run_sql_file(conn, "schema_v2.sql")
 
 
+def _schema_v3(conn: sqlite3.Connection) -> None:
+    _run_sql_file(conn, "schema_v3.sql")
+
+
 # Ordered migrations: MIGRATIONS[n - 1] brings a catalog from version n - 1 to n.
-MIGRATIONS = (_schema_v1, _schema_v2)
+MIGRATIONS = (_schema_v1, _schema_v2, _schema_v3)
 assert len(MIGRATIONS) == SCHEMA_VERSION  # a developer's invariant, not user input
 
 
@@ -373,6 +379,81 @@ class Catalog:
             return None
         out = dict(row)
         out["summary"] = json.loads(out["summary"]) if out["summary"] else None
+        return out
+
+    # -- a person's verdicts on pairs --------------------------------------
+    def file_id_for_path(self, path: str | Path) -> int | None:
+        """The present file at an absolute path (as catalogued), or None."""
+        path = Path(path)
+        for source in self.sources():
+            root = Path(source["root"])
+            try:
+                rel = path.relative_to(root).as_posix()
+            except ValueError:
+                continue
+            row = self.conn.execute(
+                "SELECT id FROM files WHERE source_id = ? AND relpath = ? AND state != 'removed'",
+                (source["id"], rel),
+            ).fetchone()
+            if row:
+                return row["id"]
+        return None
+
+    def add_verdicts(self, pairs: Iterable[dict], *, origin: str, author: str | None = None) -> list[int]:
+        """Store verdicts for pairs of file ids (``file_a``, ``file_b``, ``verdict``, optional
+        ``note``), all or none. A pair must be two present files with different contents."""
+        rows = []
+        now = time.time()
+        for pair in pairs:
+            verdict = str(pair.get("verdict", "")).strip().lower()
+            if verdict not in VERDICTS:
+                raise UsageError(f"verdict must be one of {', '.join(VERDICTS)}, not {pair.get('verdict')!r}")
+            try:
+                a, b = int(pair["file_a"]), int(pair["file_b"])
+            except (KeyError, TypeError, ValueError):
+                raise UsageError("a verdict needs two image ids, file_a and file_b") from None
+            contents = {}
+            for file_id in (a, b):
+                row = self.conn.execute(
+                    "SELECT content_id FROM files WHERE id = ? AND state != 'removed'", (file_id,)
+                ).fetchone()
+                if row is None or row["content_id"] is None:
+                    raise NotFoundError(f"no image with id {file_id}")
+                contents[file_id] = row["content_id"]
+            if contents[a] == contents[b]:
+                raise UsageError(f"images {a} and {b} have the same bytes; a verdict is for two different files' contents")
+            (ca, fa), (cb, fb) = sorted([(contents[a], a), (contents[b], b)])
+            rows.append((ca, cb, fa, fb, verdict, origin, author, pair.get("note"), now))
+        with self.transaction() as conn:
+            ids = [
+                conn.execute(
+                    "INSERT INTO verdicts(content_a, content_b, file_a, file_b, verdict, origin, author, note, "
+                    "created_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                    row,
+                ).lastrowid
+                for row in rows
+            ]
+        return ids
+
+    def latest_verdicts(self) -> list[dict]:
+        """The latest verdict per content pair: content_a < content_b, file ids, verdict, origin, time."""
+        rows = self.conn.execute(
+            "SELECT v.* FROM verdicts v JOIN (SELECT MAX(id) AS id FROM verdicts "
+            "GROUP BY content_a, content_b) last ON last.id = v.id ORDER BY v.id"
+        )
+        return [dict(r) for r in rows]
+
+    def content_ids_of(self, file_ids) -> dict[int, int]:
+        """file id -> content id for the given present files."""
+        ids = sorted(set(int(i) for i in file_ids))
+        out: dict[int, int] = {}
+        for start in range(0, len(ids), 500):
+            chunk = ids[start : start + 500]
+            rows = self.conn.execute(
+                f"SELECT id, content_id FROM files WHERE id IN ({','.join('?' * len(chunk))}) AND content_id IS NOT NULL",
+                chunk,
+            )
+            out.update({r["id"]: r["content_id"] for r in rows})
         return out
 
     def counts(self) -> dict:

@@ -104,3 +104,43 @@ def test_vectors_round_trip_by_content(tmp_path):
     (ids, xb), = list(catalog.iter_file_vectors("m1"))
     assert ids.tolist() == [a, b]  # both files share the content's one vector
     np.testing.assert_array_equal(xb, np.vstack([vec, vec]))
+
+
+def _three_files(tmp_path):
+    """Files a.jpg and c.jpg share bytes; b.jpg is different."""
+    catalog = Catalog(tmp_path / "c.sqlite", create=True)
+    source_id = catalog.add_source(tmp_path)
+    with catalog.transaction() as conn:
+        c1 = catalog.add_content(conn, "11" * 32, 10, {"state": "ok"}, 0.0)
+        c2 = catalog.add_content(conn, "22" * 32, 10, {"state": "ok"}, 0.0)
+        ids = [catalog.upsert_file(conn, source_id, name, size=10, mtime_ns=1, content_id=cid,
+                                   state="ok", reason=None, now=1.0)
+               for name, cid in (("a.jpg", c1), ("b.jpg", c2), ("c.jpg", c1))]
+    return catalog, ids
+
+
+def test_verdicts_are_kept_by_content_and_the_latest_counts(tmp_path):
+    from indexer.errors import NotFoundError, UsageError
+
+    catalog, (a, b, c) = _three_files(tmp_path)
+    catalog.add_verdicts([{"file_a": b, "file_b": a, "verdict": "same"}], origin="csv")
+    catalog.add_verdicts([{"file_a": c, "file_b": b, "verdict": "Different"}], origin="review", author="ines")
+    latest = catalog.latest_verdicts()
+    # a and c share content, so the second verdict replaces the first for the same content pair.
+    assert len(latest) == 1
+    assert latest[0]["verdict"] == "different" and latest[0]["origin"] == "review"
+    assert latest[0]["content_a"] < latest[0]["content_b"]
+    assert catalog.conn.execute("SELECT COUNT(*) FROM verdicts").fetchone()[0] == 2  # history kept
+    with pytest.raises(UsageError, match="same bytes"):
+        catalog.add_verdicts([{"file_a": a, "file_b": c, "verdict": "same"}], origin="api")
+    with pytest.raises(UsageError, match="verdict must be"):
+        catalog.add_verdicts([{"file_a": a, "file_b": b, "verdict": "maybe"}], origin="api")
+    with pytest.raises(NotFoundError, match="no image with id 999"):
+        catalog.add_verdicts([{"file_a": a, "file_b": 999, "verdict": "same"}], origin="api")
+    # A failing batch stores nothing.
+    with pytest.raises(NotFoundError):
+        catalog.add_verdicts([{"file_a": a, "file_b": b, "verdict": "same"},
+                              {"file_a": a, "file_b": 998, "verdict": "same"}], origin="api")
+    assert catalog.conn.execute("SELECT COUNT(*) FROM verdicts").fetchone()[0] == 2
+    assert catalog.file_id_for_path(tmp_path / "b.jpg") == b
+    assert catalog.file_id_for_path(tmp_path / "zzz.jpg") is None
