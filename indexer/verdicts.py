@@ -1,0 +1,90 @@
+"""A person's verdicts on pairs: importing them, and what they say about a threshold.
+
+Verdicts live in the catalog (`Catalog.add_verdicts`). Calibration maps
+similarity to the probability that a person says "same" with isotonic
+regression (monotone, no shape assumed) and measures the precision of the
+judged pairs above a threshold, with its Wilson interval, beside the synthetic
+estimate.
+"""
+
+from __future__ import annotations
+
+import csv
+from pathlib import Path
+
+import numpy as np
+
+from .errors import UsageError
+from .rates import wilson_interval
+from .store import Store
+
+MIN_EACH = 5  # verdicts of each kind needed before the isotonic fit means anything
+MIN_ABOVE = 5  # judged pairs above a threshold needed to state a precision there
+
+
+def _file_id(store: Store, value: str, line: int) -> int:
+    value = (value or "").strip()
+    if value.isdigit():
+        return int(value)
+    file_id = store.catalog.file_id_for_path(Path(value).resolve()) if value else None
+    if file_id is None:
+        raise UsageError(f"line {line}: {value!r} is neither an image id nor a catalogued path")
+    return file_id
+
+
+def import_csv(store: Store, path: Path, *, author: str | None = None) -> int:
+    """Store the verdicts of a CSV file with columns ``a``, ``b`` (image ids or paths), ``verdict``
+    (same / different) and an optional ``note``; all rows or none. Returns how many were stored."""
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            reader = csv.DictReader(fh)
+            missing = {"a", "b", "verdict"} - set(reader.fieldnames or [])
+            if missing:
+                raise UsageError(f"{path}: the header must name the columns a, b and verdict (missing {', '.join(sorted(missing))})")
+            pairs = [
+                {"file_a": _file_id(store, row["a"], n), "file_b": _file_id(store, row["b"], n),
+                 "verdict": row["verdict"], "note": row.get("note") or None}
+                for n, row in enumerate(reader, start=2)
+            ]
+    except OSError as exc:
+        raise UsageError(f"cannot read {path}: {exc.strerror or exc}") from None
+    except UnicodeDecodeError:
+        raise UsageError(f"{path} is not UTF-8 text") from None
+    return len(store.catalog.add_verdicts(pairs, origin="csv", author=author))
+
+
+def verdict_report(sims: np.ndarray, same: np.ndarray, grid: np.ndarray, target: float, min_verdicts: int) -> dict | None:
+    """Isotonic P(same | similarity), precision of judged pairs above each threshold and the
+    lowest threshold whose judged precision reaches `target`; None when there are too few verdicts."""
+    from sklearn.isotonic import IsotonicRegression
+
+    from .generations import threshold_for_precision
+
+    n, n_same = len(sims), int(np.sum(same))
+    counts = {"verdicts": n, "same": n_same, "different": n - n_same}
+    if n < min_verdicts or n_same < MIN_EACH or n - n_same < MIN_EACH:
+        return {**counts, "used": False, "reason": f"needs {min_verdicts} verdicts with at least {MIN_EACH} of each kind",
+                "precision_at": lambda t: None}
+    iso = IsotonicRegression(increasing=True, y_min=0.0, y_max=1.0, out_of_bounds="clip").fit(sims, same)
+    order = np.argsort(-sims)
+    s_sorted, y_sorted = sims[order], same[order]
+
+    def precision_at(t: float) -> dict:
+        above = s_sorted >= t
+        k, m = int(y_sorted[above].sum()), int(above.sum())
+        lo, hi = wilson_interval(k, m)
+        return {"threshold": float(t), "judged_pairs": m, "same": k,
+                "precision": round(k / m, 4) if m else None, "interval": [round(float(lo), 4), round(float(hi), 4)]}
+
+    curve = [precision_at(t) for t in grid]
+    precisions = [c["precision"] if c["judged_pairs"] >= MIN_ABOVE else None for c in curve]
+    try:
+        threshold = threshold_for_precision(list(grid), precisions, target)
+    except UsageError:
+        threshold = None
+    return {
+        **counts, "used": True, "threshold": threshold,
+        "isotonic": [[round(float(t), 4), round(float(p), 4)] for t, p in zip(grid, iso.predict(grid))],
+        "precision_curve": [[c["threshold"], c["precision"]] for c in curve],
+        "precision_at": precision_at,
+    }
