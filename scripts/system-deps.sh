@@ -4,8 +4,8 @@
 # what is missing and lets the tests that need it skip with that reason.
 set -euo pipefail
 
-needed=()
-# (Browser tests for the review page will add chromium here.)
+# chromium + chromium-driver: tests/test_service_browser.py drives the review page headless with Selenium.
+needed=(chromium chromium-driver)
 
 missing=()
 for pkg in "${needed[@]:-}"; do

@@ -34,3 +34,7 @@ def run_cli(tmp_path):
         return proc
 
     return run
+
+
+# The HTTP service tests share one small store and one server per session (tests/service_support.py).
+from .service_support import live_server, service_store  # noqa: E402,F401

@@ -1,0 +1,76 @@
+"""What one service instance is configured with: the store, its settings and the HTTP policy.
+
+Values come from the store's settings (defaults < settings.toml < NEARSIGHT_* < flags),
+and `create_app(config)` may override any of them by name.
+"""
+
+from __future__ import annotations
+
+import ipaddress
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Mapping
+
+from indexer.errors import UsageError
+from indexer.settings import Settings, load_settings
+from indexer.store import resolve_store_path
+
+# Config names create_app takes beside "store" and "settings", and the setting each defaults to.
+FROM_SETTINGS = {
+    "host": "serve_host",
+    "api_key": "api_key",
+    "cors_origins": "cors_origins",
+    "max_upload_bytes": "max_upload_bytes",
+    "max_upload_pixels": "max_upload_pixels",
+    "max_pixels": "max_pixels",
+    "reload_s": "serve_reload_s",
+}
+
+
+def is_loopback(host: str) -> bool:
+    """True for localhost and the loopback ranges (127.0.0.0/8, ::1); names other than localhost count as not."""
+    host = host.strip().strip("[]").lower()
+    if host == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
+
+
+@dataclass(frozen=True)
+class ServiceConfig:
+    store: Path
+    settings: Settings
+    host: str
+    api_key: str
+    cors_origins: tuple[str, ...]
+    max_upload_bytes: int
+    max_upload_pixels: int
+    max_pixels: int
+    reload_s: float
+    watch: bool = True  # run the thread that swaps in newly published generations
+
+    @property
+    def reads_need_key(self) -> bool:
+        """Beyond loopback every request (but health probes and the page's static files) needs the key."""
+        return not is_loopback(self.host)
+
+
+def resolve_config(config: Mapping[str, Any] | None) -> ServiceConfig:
+    given = dict(config or {})
+    store = resolve_store_path(given.pop("store", None)).absolute()
+    settings = given.pop("settings", None) or load_settings(store_dir=store)
+    values = {name: given.pop(name, settings[setting]) for name, setting in FROM_SETTINGS.items()}
+    watch = bool(given.pop("watch", True))
+    if given:
+        raise UsageError(f"unknown service config: {', '.join(sorted(given))}")
+    values["api_key"] = values["api_key"] or ""
+    values["cors_origins"] = tuple(values["cors_origins"] or ())
+    if values["reload_s"] <= 0:
+        raise UsageError("reload_s must be > 0 seconds")
+    cfg = ServiceConfig(store=store, settings=settings, watch=watch, **values)
+    if cfg.reads_need_key and not cfg.api_key:
+        raise UsageError(f"serving on {cfg.host}, beyond loopback, needs an API key: set api_key in "
+                         f"{store / 'settings.toml'} or NEARSIGHT_API_KEY")
+    return cfg

@@ -1,0 +1,197 @@
+"""The generation being served, and the swap to a newly published one.
+
+A `Snapshot` is one generation loaded whole: index, whitening, model, groups and
+calibration are read once, so a request that took a snapshot answers from it to the
+end even if the nightly job publishes (and prunes) generations meanwhile. A
+`LiveGeneration` watches ``generations/CURRENT``; when it names another generation,
+it loads that one beside the old and then replaces the reference in one assignment.
+Requests take the reference once, at their start: in-flight requests finish on the
+old snapshot, later ones get the new one, and none waits for the load.
+"""
+
+from __future__ import annotations
+
+import logging
+import threading
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable
+
+from indexer.errors import NearsightError, NotFoundError, StoreError, UsageError
+from indexer.generations import POINTER, Generation
+from indexer.groups import TIERS as GROUP_TIERS
+from indexer.query import Searcher
+from indexer.settings import Settings
+from indexer.store import Store
+
+log = logging.getLogger(__name__)
+
+RETRY_FAILED_S = 10.0  # a generation that failed to load is tried again after this long
+
+
+@dataclass(frozen=True)
+class PinnedGeneration(Generation):
+    """A generation whose calibration was read once, at load: answers stay the same even if
+    its folder is pruned while requests still use it."""
+
+    calibration: dict | None = None
+
+    def load_calibration(self) -> dict | None:
+        return self.calibration
+
+
+class _NoSharedCatalog:
+    """Stands in for the loading thread's catalog: SQLite connections belong to one thread, so a
+    request must pass its own catalog to the Searcher; using this one is a programming error."""
+
+    def __getattr__(self, name):
+        raise RuntimeError("the served Searcher has no shared catalog: pass the request thread's catalog")
+
+
+def _reader_store(root: Path, settings: Settings) -> Store:
+    return Store(root, _NoSharedCatalog(), settings)
+
+
+class Snapshot:
+    """One generation, fully loaded: what a request answers from, start to finish."""
+
+    def __init__(self, searcher: Searcher, generation: PinnedGeneration, groups: list[dict]):
+        self.searcher = searcher
+        self.generation = generation
+        self.name = generation.name
+        self.groups = groups
+        self.by_gid = {g["gid"]: g for g in groups}
+        self.gid_of = {m["id"]: g["gid"] for g in groups for m in g["members"]}
+        self.loaded_at = time.time()
+
+    @classmethod
+    def load(cls, root: Path, settings: Settings) -> "Snapshot":
+        searcher = Searcher(_reader_store(root, settings))
+        gen = searcher.generation
+        calibration = gen.load_calibration()
+        groups = gen.load_groups()["groups"]
+        if not (gen.path / "meta.json").is_file():
+            # Pruned while we read it: load_groups would have returned no groups rather than fail.
+            raise StoreError(f"generation {gen.name} was removed while it was being loaded")
+        pinned = PinnedGeneration(gen.name, gen.path, gen.meta, calibration)
+        searcher.generation = pinned
+        return cls(searcher, pinned, groups)
+
+    # -- what requests ask of it --------------------------------------------------------
+    @property
+    def model(self) -> str:
+        return self.generation.meta["model"]
+
+    @property
+    def size(self) -> int:
+        return int(self.searcher.index.ntotal)
+
+    def threshold(self, threshold: float | None, precision: float | None) -> tuple[float, str]:
+        """The duplicate threshold for one request and where it came from."""
+        if threshold is not None and precision is not None:
+            raise UsageError("give threshold or precision, not both")
+        if threshold is not None:
+            return threshold, "request"
+        if precision is not None:
+            return self.generation.threshold("near", precision), "precision"
+        return self.searcher.threshold, "generation"
+
+    def thresholds(self) -> dict:
+        return {"near": self.searcher.threshold, "similar": self.generation.threshold("similar"),
+                "source": self.generation.meta.get("thresholds", {}).get("source")}
+
+    def calibration_summary(self):
+        calibration = self.generation.calibration
+        return calibration.get("summary") if isinstance(calibration, dict) else None
+
+    def group(self, gid: str) -> dict:
+        try:
+            return self.by_gid[gid]
+        except KeyError:
+            raise NotFoundError(f"no group {gid!r} in generation {self.name}") from None
+
+    def find_groups(self, *, tier: str | None, min_size: int, max_size: int | None) -> list[dict]:
+        if tier is not None and tier not in GROUP_TIERS:
+            raise UsageError(f"tier must be one of {', '.join(GROUP_TIERS)}, not {tier!r}")
+        return [g for g in self.groups
+                if (tier is None or g["tier"] == tier) and g["size"] >= min_size
+                and (max_size is None or g["size"] <= max_size)]
+
+
+class LiveGeneration:
+    """Holds the snapshot being served and swaps in a newly published generation."""
+
+    def __init__(self, root: Path, settings: Settings, *, reload_s: float,
+                 on_swap: Callable[[Snapshot], None] | None = None,
+                 on_failure: Callable[[], None] | None = None):
+        self.root = Path(root)
+        self.settings = settings
+        self.reload_s = reload_s
+        self._on_swap = on_swap or (lambda snapshot: None)
+        self._on_failure = on_failure or (lambda: None)
+        self._snapshot: Snapshot | None = None
+        self._load_lock = threading.Lock()
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+        self._failed: tuple[str, float] | None = None  # (generation, when) of the last failed load
+        self.swaps = 0
+        self.load_failures = 0
+        self.last_error: str | None = None
+
+    def current(self) -> Snapshot | None:
+        """The snapshot to answer from (one reference read: a swap never shows half-done)."""
+        return self._snapshot
+
+    def published(self) -> str | None:
+        """The generation the store's pointer names now (may be ahead of the one served)."""
+        return _reader_store(self.root, self.settings).read_pointer(POINTER)
+
+    def refresh(self) -> bool:
+        """Load the published generation if it is not the one served; True when it swapped."""
+        with self._load_lock:
+            name = self.published()
+            current = self._snapshot
+            if name is None or (current is not None and current.name == name):
+                return False
+            if self._failed and self._failed[0] == name and time.monotonic() - self._failed[1] < RETRY_FAILED_S:
+                return False
+            started = time.monotonic()
+            try:
+                snapshot = Snapshot.load(self.root, self.settings)
+            except (NearsightError, OSError, RuntimeError, ValueError, KeyError) as exc:
+                self._failed = (name, time.monotonic())
+                self.load_failures += 1
+                self.last_error = f"{name}: {exc}"
+                self._on_failure()
+                log.warning("cannot load generation %s (still serving %s): %s", name,
+                            current.name if current else "nothing", exc)
+                return False
+            self._snapshot = snapshot
+            self._failed = None
+            if current is not None:
+                self.swaps += 1
+            self._on_swap(snapshot)
+            log.info("serving generation %s (%d images; loaded in %.1f s)%s", snapshot.name, snapshot.size,
+                     time.monotonic() - started, f", replacing {current.name}" if current else "")
+            return True
+
+    def start(self) -> None:
+        """Watch the pointer every `reload_s` seconds in a daemon thread."""
+        if self._thread is not None:
+            return
+        self._thread = threading.Thread(target=self._watch, name="nearsight-reload", daemon=True)
+        self._thread.start()
+
+    def stop(self) -> None:
+        self._stop.set()
+        if self._thread is not None:
+            self._thread.join(timeout=5)
+            self._thread = None
+
+    def _watch(self) -> None:
+        while not self._stop.wait(self.reload_s):
+            try:
+                self.refresh()
+            except Exception:  # the watcher must outlive any one failure
+                log.exception("checking for a new generation failed")

@@ -1,0 +1,334 @@
+"""The OpenAPI 3.0 description of the JSON API, kept beside the routes it describes.
+
+tests/test_service_api.py checks that its paths and methods are exactly the application's
+routes, and the property tests (schemathesis) check the answers against these schemas.
+"""
+
+from __future__ import annotations
+
+from .params import MAX_K
+
+TIER_NAMES = ["same-bytes", "same-pixels", "near-duplicate", "similar"]
+ERROR_STATUSES = {
+    "400": "The request is malformed: a parameter out of range, a bad body",
+    "401": "The API key is missing or wrong (header Authorization: Bearer <key>)",
+    "403": "This server refuses the request in every case (e.g. writing with no API key configured)",
+    "404": "No such image or group",
+    "409": "Not ready: no generation is served yet, or the image has no vector, or no calibration for a precision",
+    "413": "The upload is larger than max_upload_bytes",
+    "415": "The body is not of a media type this endpoint takes",
+    "422": "The upload is not a readable image, or has more pixels than allowed",
+}
+
+
+def _ref(name: str) -> dict:
+    return {"$ref": f"#/components/schemas/{name}"}
+
+
+def _json(schema: dict, description: str) -> dict:
+    return {"description": description, "content": {"application/json": {"schema": schema}}}
+
+
+def _errors(*codes: str) -> dict:
+    return {code: {"$ref": f"#/components/responses/E{code}"} for code in codes}
+
+
+def _int_param(name: str, where: str, description: str, minimum: int, maximum: int | None = None,
+               default: int | None = None, required: bool = False) -> dict:
+    schema: dict = {"type": "integer", "minimum": minimum}
+    if maximum is not None:
+        schema["maximum"] = maximum
+    if default is not None:
+        schema["default"] = default
+    return {"name": name, "in": where, "required": required, "description": description, "schema": schema}
+
+
+IMAGE_ID = _int_param("image_id", "path", "Catalog id of an image file", 1, 2**63 - 1, required=True)
+SEARCH_PARAMS = [
+    _int_param("k", "query", "Neighbours to return", 1, MAX_K, default=10),
+    {"name": "threshold", "in": "query", "required": False,
+     "description": "Cosine similarity at or above which a neighbour is called a duplicate (default: the "
+                    "generation's calibrated or default threshold). Not together with precision.",
+     "schema": {"type": "number", "minimum": -1, "maximum": 1}},
+    {"name": "precision", "in": "query", "required": False,
+     "description": "Instead of a threshold: the calibrated threshold that reaches this precision "
+                    "(409 when the generation has no calibration).",
+     "schema": {"type": "number", "exclusiveMinimum": True, "minimum": 0, "exclusiveMaximum": True, "maximum": 1}},
+]
+NULLABLE_NUMBER = {"type": "number", "nullable": True}
+NULLABLE_INT = {"type": "integer", "nullable": True}
+NULLABLE_STRING = {"type": "string", "nullable": True}
+
+SCHEMAS = {
+    "Error": {
+        "type": "object", "required": ["error", "message"],
+        "properties": {"error": {"type": "string", "description": "stable code, e.g. not_found"},
+                       "message": {"type": "string", "description": "what went wrong and what to do"},
+                       "reason": {"type": "string", "description": "for unreadable images: not-image, too-large, ..."}},
+    },
+    "Neighbour": {
+        "type": "object", "required": ["id", "path", "similarity", "duplicate"],
+        "properties": {"id": {"type": "integer"}, "path": NULLABLE_STRING,
+                       "similarity": {"type": "number", "description": "cosine of whitened descriptors, higher is closer"},
+                       "duplicate": {"type": "boolean", "description": "similarity >= threshold"}},
+    },
+    "SearchResult": {
+        "type": "object", "required": ["generation", "model", "k", "threshold", "threshold_from", "query", "results"],
+        "properties": {
+            "generation": {"type": "string"}, "model": {"type": "string"}, "k": {"type": "integer"},
+            "threshold": {"type": "number"},
+            "threshold_from": {"type": "string", "enum": ["generation", "request", "precision"]},
+            "query": {"type": "object", "description": "the uploaded image's size and format, or the image id asked about"},
+            "results": {"type": "array", "items": _ref("Neighbour")},
+        },
+    },
+    "Image": {
+        "type": "object", "required": ["id", "path", "state"],
+        "properties": {
+            "id": {"type": "integer"}, "path": {"type": "string"},
+            "state": {"type": "string", "description": "ok, unreadable, removed, quarantined"},
+            "reason": NULLABLE_STRING, "size": NULLABLE_INT, "mtime": NULLABLE_NUMBER,
+            "width": NULLABLE_INT, "height": NULLABLE_INT, "format": NULLABLE_STRING,
+            "content_hash": NULLABLE_STRING, "first_seen": NULLABLE_NUMBER, "last_seen": NULLABLE_NUMBER,
+            "group": {"type": "string", "nullable": True, "description": "gid of its group in the served generation"},
+            "generation": NULLABLE_STRING,
+        },
+    },
+    "MemberBrief": {
+        "type": "object", "required": ["id", "tier", "similarity"],
+        "properties": {"id": {"type": "integer"}, "tier": {"type": "string", "enum": TIER_NAMES},
+                       "similarity": {"type": "number", "description": "cosine to the group's keeper"},
+                       "path": NULLABLE_STRING, "width": NULLABLE_INT, "height": NULLABLE_INT,
+                       "file_size": NULLABLE_INT},
+    },
+    "GroupBrief": {
+        "type": "object", "required": ["gid", "tier", "size", "keeper", "members"],
+        "properties": {"gid": {"type": "string"}, "tier": {"type": "string", "enum": TIER_NAMES},
+                       "size": {"type": "integer"}, "keeper": {"type": "integer"},
+                       "reclaimable_bytes": {"type": "integer"}, "best_similarity": NULLABLE_NUMBER,
+                       "members": {"type": "array", "items": _ref("MemberBrief")}},
+    },
+    "GroupPage": {
+        "type": "object", "required": ["generation", "total", "offset", "limit", "groups"],
+        "properties": {"generation": {"type": "string"}, "total": {"type": "integer"},
+                       "offset": {"type": "integer"}, "limit": {"type": "integer"},
+                       "groups": {"type": "array", "items": _ref("GroupBrief")}},
+    },
+    "Plan": {
+        "type": "object", "required": ["generation", "tier", "rules", "summary", "total", "offset", "limit", "groups"],
+        "properties": {
+            "generation": {"type": "string"}, "tier": {"type": "string"}, "rules": {"type": "object"},
+            "summary": {"type": "object", "properties": {
+                "groups": {"type": "integer"}, "files": {"type": "integer"}, "bytes_freed": {"type": "integer"},
+                "kept": {"type": "integer"}, "skipped": {"type": "integer"},
+                "similar_groups_ignored": {"type": "integer"}}},
+            "total": {"type": "integer"}, "offset": {"type": "integer"}, "limit": {"type": "integer"},
+            "groups": {"type": "array", "items": {"type": "object", "required": ["gid", "tier", "keeper", "moves"],
+                                                  "properties": {"gid": {"type": "string"}, "tier": {"type": "string"},
+                                                                 "keeper": {"type": "object"},
+                                                                 "moves": {"type": "array", "items": {"type": "object"}},
+                                                                 "bytes_freed": {"type": "integer"}}}},
+        },
+    },
+    "Group": {
+        "type": "object", "required": ["generation", "gid", "tier", "keeper", "size", "members", "verdicts"],
+        "properties": {
+            "generation": {"type": "string"}, "gid": {"type": "string"},
+            "tier": {"type": "string", "enum": TIER_NAMES}, "keeper": {"type": "integer"},
+            "size": {"type": "integer"}, "reclaimable_bytes": {"type": "integer"},
+            "members": {"type": "array", "items": {
+                "type": "object", "required": ["id", "tier", "similarity", "path"],
+                "properties": {"id": {"type": "integer"}, "tier": {"type": "string", "enum": TIER_NAMES},
+                               "similarity": {"type": "number"}, "path": {"type": "string"},
+                               "content_hash": {"type": "string"}, "pixel_hash": NULLABLE_STRING,
+                               "width": {"type": "integer"}, "height": {"type": "integer"},
+                               "file_size": {"type": "integer"}, "format": {"type": "string"},
+                               "mtime": {"type": "number"}}}},
+            "verdicts": {"type": "array", "description": "the latest verdict on each judged pair of members",
+                         "items": {"type": "object", "required": ["a", "b", "verdict"],
+                                   "properties": {"a": {"type": "integer"}, "b": {"type": "integer"},
+                                                  "verdict": {"type": "string", "enum": ["same", "different"]},
+                                                  "origin": {"type": "string"}, "created_at": {"type": "number"},
+                                                  "id": {"type": "integer"}}}},
+        },
+    },
+    "VerdictIn": {
+        "type": "object", "required": ["file_a", "file_b", "verdict"], "additionalProperties": False,
+        "properties": {"file_a": {"type": "integer", "minimum": 1}, "file_b": {"type": "integer", "minimum": 1},
+                       "verdict": {"type": "string", "enum": ["same", "different"]},
+                       "note": {"type": "string", "maxLength": 2000}},
+    },
+    "VerdictsIn": {
+        "type": "object", "required": ["verdicts"],
+        "properties": {"verdicts": {"type": "array", "minItems": 1, "maxItems": 1000, "items": _ref("VerdictIn")},
+                       "origin": {"type": "string", "enum": ["api", "review"], "default": "api"},
+                       "author": {"type": "string", "maxLength": 200}},
+    },
+    "VerdictsStored": {
+        "type": "object", "required": ["stored", "verdicts"],
+        "properties": {"stored": {"type": "integer"}, "at": {"type": "number"},
+                       "verdicts": {"type": "array", "items": {
+                           "type": "object", "required": ["id", "file_a", "file_b", "verdict"],
+                           "properties": {"id": {"type": "integer"}, "file_a": {"type": "integer"},
+                                          "file_b": {"type": "integer"},
+                                          "verdict": {"type": "string", "enum": ["same", "different"]}}}}},
+    },
+    "VerdictPage": {
+        "type": "object", "required": ["total", "offset", "limit", "verdicts"],
+        "properties": {"total": {"type": "integer"}, "offset": {"type": "integer"}, "limit": {"type": "integer"},
+                       "verdicts": {"type": "array", "items": {
+                           "type": "object", "required": ["id", "file_a", "file_b", "verdict", "origin", "created_at"],
+                           "properties": {"id": {"type": "integer"}, "file_a": NULLABLE_INT, "file_b": NULLABLE_INT,
+                                          "verdict": {"type": "string", "enum": ["same", "different"]},
+                                          "origin": {"type": "string"}, "author": NULLABLE_STRING,
+                                          "note": NULLABLE_STRING, "created_at": {"type": "number"}}}}},
+    },
+    "Status": {
+        "type": "object", "required": ["files", "ok", "unreadable", "removed", "model", "generation", "thresholds",
+                                       "calibration", "service"],
+        "properties": {
+            "files": {"type": "integer"}, "ok": {"type": "integer"}, "unreadable": {"type": "integer"},
+            "removed": {"type": "integer"}, "distinct_contents": {"type": "integer"},
+            "model": NULLABLE_STRING,
+            "generation": {"type": "object", "nullable": True, "description": "the generation being served",
+                           "properties": {"name": {"type": "string"}, "model": {"type": "string"},
+                                          "indexed": {"type": "integer"}, "groups": {"type": "integer"}}},
+            "published_generation": {"type": "string", "nullable": True,
+                                     "description": "the generation the store names now (swapped in shortly if newer)"},
+            "thresholds": {"type": "object", "nullable": True},
+            "calibration": {"type": "object", "nullable": True, "description": "the calibration's summary, or null"},
+            "service": {"type": "object"},
+        },
+    },
+}
+
+BINARY = {"schema": {"type": "string", "format": "binary"}}
+
+
+def _paths() -> dict:
+    read_errors = ("401",)
+    return {
+        "/healthz": {"get": {
+            "operationId": "healthz", "summary": "Liveness: the process answers", "security": [],
+            "responses": {"200": _json({"type": "object", "required": ["status"],
+                                        "properties": {"status": {"type": "string"}}}, "Alive")}}},
+        "/readyz": {"get": {
+            "operationId": "readyz", "summary": "Readiness: a generation is loaded and queries can be answered",
+            "security": [],
+            "responses": {"200": _json({"type": "object", "required": ["status", "generation"],
+                                        "properties": {"status": {"type": "string"},
+                                                       "generation": {"type": "string"}}}, "Ready"),
+                          "503": _json({"type": "object", "required": ["status", "message"],
+                                        "properties": {"status": {"type": "string"}, "message": {"type": "string"}}},
+                                       "No generation loaded yet")}}},
+        "/metrics": {"get": {
+            "operationId": "metrics", "summary": "Prometheus metrics (text exposition format)",
+            "responses": {"200": {"description": "Metrics", "content": {"text/plain": {"schema": {"type": "string"}}}},
+                          **_errors(*read_errors)}}},
+        "/v1/openapi.json": {"get": {
+            "operationId": "openapi", "summary": "This document",
+            "responses": {"200": _json({"type": "object"}, "OpenAPI 3.0 document"), **_errors(*read_errors)}}},
+        "/v1/status": {"get": {
+            "operationId": "status", "summary": "Counts, model, served generation, thresholds, calibration summary",
+            "responses": {"200": _json(_ref("Status"), "Status"), **_errors(*read_errors)}}},
+        "/v1/search": {"post": {
+            "operationId": "search", "summary": "Images similar to an uploaded image, best first",
+            "description": "Send the image as the raw body (Content-Type image/... or application/octet-stream) "
+                           "or as the multipart/form-data file field `image` (k, threshold and precision may "
+                           "then also be form fields). The file name of an upload is ignored.",
+            "parameters": SEARCH_PARAMS,
+            "requestBody": {"required": True, "content": {
+                "image/jpeg": BINARY, "image/png": BINARY, "image/webp": BINARY, "application/octet-stream": BINARY,
+                "multipart/form-data": {"schema": {
+                    "type": "object", "required": ["image"],
+                    "properties": {"image": {"type": "string", "format": "binary"},
+                                   "k": {"type": "integer", "minimum": 1, "maximum": MAX_K},
+                                   "threshold": {"type": "number", "minimum": -1, "maximum": 1},
+                                   "precision": {"type": "number", "exclusiveMinimum": True, "minimum": 0,
+                                                 "exclusiveMaximum": True, "maximum": 1}}}}}},
+            "responses": {"200": _json(_ref("SearchResult"), "Neighbours of the uploaded image"),
+                          **_errors("400", *read_errors, "409", "413", "415", "422")}}},
+        "/v1/images/{image_id}": {"get": {
+            "operationId": "image", "summary": "One catalogued image file", "parameters": [IMAGE_ID],
+            "responses": {"200": _json(_ref("Image"), "The image"), **_errors(*read_errors, "404")}}},
+        "/v1/images/{image_id}/similar": {"get": {
+            "operationId": "similar", "summary": "Images similar to a catalogued image (itself left out)",
+            "parameters": [IMAGE_ID, *SEARCH_PARAMS],
+            "responses": {"200": _json(_ref("SearchResult"), "Neighbours of the image"),
+                          **_errors("400", *read_errors, "404", "409")}}},
+        "/v1/images/{image_id}/thumbnail": {"get": {
+            "operationId": "thumbnail", "summary": "The small JPEG copy of a catalogued image",
+            "parameters": [IMAGE_ID],
+            "responses": {"200": {"description": "JPEG", "content": {"image/jpeg": BINARY}},
+                          "304": {"description": "Not modified (If-None-Match matched the content hash)"},
+                          **_errors(*read_errors, "404", "422")}}},
+        "/v1/images/{image_id}/preview": {"get": {
+            "operationId": "preview", "summary": "A catalogued image at up to `side` pixels, as JPEG",
+            "parameters": [IMAGE_ID, _int_param("side", "query", "Longest side in pixels", 16, 4096, default=1600)],
+            "responses": {"200": {"description": "JPEG", "content": {"image/jpeg": BINARY}},
+                          **_errors("400", *read_errors, "404", "422")}}},
+        "/v1/groups": {"get": {
+            "operationId": "groups", "summary": "Duplicate groups of the served generation, largest first",
+            "parameters": [
+                {"name": "tier", "in": "query", "required": False, "description": "Only groups of this tier",
+                 "schema": {"type": "string", "enum": TIER_NAMES}},
+                _int_param("min_size", "query", "Only groups of at least this many files", 1, 10**9, default=2),
+                _int_param("max_size", "query", "Only groups of at most this many files", 1, 10**9),
+                _int_param("limit", "query", "Groups per page", 1, 200, default=20),
+                _int_param("offset", "query", "Groups to skip", 0, 10**9, default=0),
+            ],
+            "responses": {"200": _json(_ref("GroupPage"), "One page of groups"),
+                          **_errors("400", *read_errors, "409")}}},
+        "/v1/groups/{gid}": {"get": {
+            "operationId": "group", "summary": "One group with every member and the verdicts on its pairs",
+            "parameters": [{"name": "gid", "in": "path", "required": True, "schema": {"type": "string"}}],
+            "responses": {"200": _json(_ref("Group"), "The group"), **_errors(*read_errors, "404", "409")}}},
+        "/v1/plan": {"get": {
+            "operationId": "plan",
+            "summary": "The quarantine dry run: per group, the keeper and the files `nearsight quarantine --apply` "
+                       "would move (read-only; moving happens only from the command line)",
+            "parameters": [
+                {"name": "tier", "in": "query", "required": False,
+                 "description": "The weakest tier acted on (default near-duplicate)",
+                 "schema": {"type": "string", "enum": ["same-bytes", "same-pixels", "near-duplicate"]}},
+                _int_param("limit", "query", "Groups per page", 1, 200, default=20),
+                _int_param("offset", "query", "Groups to skip", 0, 10**9, default=0),
+            ],
+            "responses": {"200": _json(_ref("Plan"), "One page of the plan"),
+                          **_errors("400", *read_errors, "409")}}},
+        "/v1/verdicts": {
+            "get": {
+                "operationId": "verdicts", "summary": "The latest verdict on each judged pair, newest first",
+                "parameters": [_int_param("limit", "query", "Verdicts per page", 1, 1000, default=100),
+                               _int_param("offset", "query", "Verdicts to skip", 0, 10**9, default=0)],
+                "responses": {"200": _json(_ref("VerdictPage"), "One page of verdicts"),
+                              **_errors("400", *read_errors)}},
+            "post": {
+                "operationId": "add_verdicts",
+                "summary": "Store a person's same / different verdicts on pairs of images (needs the API key)",
+                "description": "One verdict object, or {\"verdicts\": [...]} with optional origin and author. "
+                               "A pair must be two present files with different contents. All or none are stored.",
+                "requestBody": {"required": True, "content": {"application/json": {
+                    "schema": {"oneOf": [_ref("VerdictIn"), _ref("VerdictsIn")]}}}},
+                "responses": {"201": _json(_ref("VerdictsStored"), "Stored"),
+                              **_errors("400", "401", "403", "404", "415")}},
+        },
+    }
+
+
+def openapi_document(version: str) -> dict:
+    return {
+        "openapi": "3.0.3",
+        "info": {"title": "nearsight", "version": version,
+                 "description": "Similarity and duplicate-group queries over one nearsight store. Writing "
+                                "endpoints need the API key as a bearer token; beyond loopback every endpoint "
+                                "but /healthz and /readyz does. Answers computed from the index carry the "
+                                "generation's name (field `generation`, header X-Nearsight-Generation)."},
+        "paths": _paths(),
+        "components": {
+            "schemas": SCHEMAS,
+            "securitySchemes": {"bearer": {"type": "http", "scheme": "bearer"}},
+            "responses": {f"E{code}": _json(_ref("Error"), text) for code, text in ERROR_STATUSES.items()},
+        },
+        "security": [{"bearer": []}, {}],
+    }

@@ -1,0 +1,152 @@
+"""Reading what a request asks for: numbers from the query string or form, the uploaded image,
+a JSON body. Every problem becomes a typed error with a message that says what to send instead.
+
+No value from a request is ever used as a filesystem path: images are named by catalog id,
+and an upload's file name is ignored.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any, Mapping
+
+from indexer.errors import NotFoundError, PayloadTooLargeError, UnsupportedMediaError, UsageError
+
+MAX_ID = 2**63 - 1  # SQLite INTEGER
+MAX_K = 100
+MULTIPART_SLACK = 64 * 1024  # multipart framing and form fields beside the image
+RAW_IMAGE_TYPES = ("application/octet-stream", "")
+
+
+def check_id(value: int) -> int:
+    """An image id from a route: ids beyond SQLite's INTEGER cannot exist (and must not reach SQLite)."""
+    if not 0 < value <= MAX_ID:
+        raise NotFoundError(f"no image with id {value}")
+    return value
+
+
+def int_arg(source: Mapping[str, Any], name: str, default: int | None, lo: int, hi: int) -> int | None:
+    raw = source.get(name)
+    if raw is None or raw == "":
+        return default
+    try:
+        value = int(str(raw).strip())
+    except ValueError:
+        raise UsageError(f"{name} must be a whole number from {lo} to {hi}, not {str(raw)[:40]!r}") from None
+    if not lo <= value <= hi:
+        raise UsageError(f"{name} must be from {lo} to {hi}, not {value}")
+    return value
+
+
+def float_arg(source: Mapping[str, Any], name: str, lo: float, hi: float, *, open_range: bool = False) -> float | None:
+    raw = source.get(name)
+    if raw is None or raw == "":
+        return None
+    try:
+        value = float(str(raw).strip())
+    except ValueError:
+        value = math.nan
+    inside = (lo < value < hi) if open_range else (lo <= value <= hi)
+    if not (math.isfinite(value) and inside):
+        bounds = f"between {lo} and {hi}" + (" (exclusive)" if open_range else "")
+        raise UsageError(f"{name} must be a number {bounds}, not {str(raw)[:40]!r}")
+    return value
+
+
+def search_args(source: Mapping[str, Any]) -> dict:
+    """k, threshold and precision, as every search endpoint takes them."""
+    return {
+        "k": int_arg(source, "k", 10, 1, MAX_K),
+        "threshold": float_arg(source, "threshold", -1.0, 1.0),
+        "precision": float_arg(source, "precision", 0.0, 1.0, open_range=True),
+    }
+
+
+def upload(request, limit: int) -> tuple[bytes, Mapping[str, Any]]:
+    """The image of a search request and the form fields beside it (empty for a raw body).
+
+    Raw body: Content-Type image/* or application/octet-stream (or none). Multipart: the file
+    field ``image`` (or the only file field). Anything else is 415.
+    """
+    mimetype = (request.mimetype or "").lower()
+    if request.content_length is not None and request.content_length > limit + MULTIPART_SLACK:
+        raise PayloadTooLargeError(_too_large(request.content_length, limit))
+    if mimetype == "multipart/form-data":
+        files = request.files
+        field = files.get("image") or (next(iter(files.values())) if len(files) == 1 else None)
+        if field is None:
+            raise UsageError("the multipart body has no image: send it as the file field 'image'")
+        data = field.read(limit + 1)
+        params = request.form
+    elif mimetype.startswith("image/") or mimetype in RAW_IMAGE_TYPES:
+        data = request.get_data(cache=False)
+        params = {}
+    else:
+        raise UnsupportedMediaError(
+            f"a search takes an image: send its bytes as the body (Content-Type image/... or "
+            f"application/octet-stream) or as the multipart/form-data field 'image', not {mimetype}")
+    if len(data) > limit:
+        raise PayloadTooLargeError(_too_large(len(data), limit))
+    if not data:
+        raise UsageError("the request carries no image: send the image's bytes as the body")
+    return data, params
+
+
+def _too_large(size: int, limit: int) -> str:
+    return f"the upload is {size} bytes; this server takes images up to {limit} bytes (setting max_upload_bytes)"
+
+
+def json_body(request) -> Any:
+    if (request.mimetype or "").lower() != "application/json":
+        raise UnsupportedMediaError(f"send a JSON body (Content-Type application/json), not {request.mimetype or 'none'}")
+    body = request.get_json(silent=True)
+    if body is None:
+        raise UsageError("the body is not valid JSON")
+    return body
+
+
+VERDICT_KEYS = {"file_a", "file_b", "verdict", "note"}
+MAX_VERDICTS = 1000
+
+
+def verdicts_body(body: Any) -> tuple[list[dict], str, str | None]:
+    """Pairs, origin and author from a POST /v1/verdicts body: one verdict object, or
+    {"verdicts": [...]} with optional "origin" ("api" or "review") and "author"."""
+    if not isinstance(body, dict):
+        raise UsageError("the body must be a JSON object: a verdict, or {\"verdicts\": [...]}")
+    body = dict(body)
+    origin = body.pop("origin", "api")
+    author = body.pop("author", None)
+    if origin not in ("api", "review"):
+        raise UsageError(f"origin must be 'api' or 'review', not {str(origin)[:40]!r}")
+    if author is not None and (not isinstance(author, str) or len(author) > 200):
+        raise UsageError("author must be text of at most 200 characters")
+    if "verdicts" in body:
+        items = body.pop("verdicts")
+        if body:
+            raise UsageError(f"unexpected fields beside verdicts: {', '.join(sorted(map(str, body)))}")
+        if not isinstance(items, list) or not 1 <= len(items) <= MAX_VERDICTS:
+            raise UsageError(f"verdicts must be a list of 1 to {MAX_VERDICTS} verdict objects")
+    else:
+        items = [body]
+    return [_verdict(item, n) for n, item in enumerate(items)], origin, author
+
+
+def _verdict(item: Any, n: int) -> dict:
+    where = f"verdict {n}: " if n else ""
+    if not isinstance(item, dict):
+        raise UsageError(f"{where}a verdict is an object with file_a, file_b and verdict")
+    unknown = set(item) - VERDICT_KEYS
+    if unknown:
+        raise UsageError(f"{where}unexpected fields {', '.join(sorted(map(str, unknown)))}; "
+                         f"a verdict has {', '.join(sorted(VERDICT_KEYS))}")
+    for key in ("file_a", "file_b"):
+        value = item.get(key)
+        if isinstance(value, bool) or not isinstance(value, int) or not 0 < value <= MAX_ID:
+            raise UsageError(f"{where}{key} must be an image id (a positive whole number)")
+    if item.get("verdict") not in ("same", "different"):
+        raise UsageError(f"{where}verdict must be 'same' or 'different'")
+    note = item.get("note")
+    if note is not None and (not isinstance(note, str) or len(note) > 2000):
+        raise UsageError(f"{where}note must be text of at most 2000 characters")
+    return {"file_a": item["file_a"], "file_b": item["file_b"], "verdict": item["verdict"], "note": note}

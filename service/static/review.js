@@ -1,0 +1,394 @@
+// nearsight review page: browse duplicate groups, compare pairs, mark same / different, search.
+// Plain JavaScript, no build step. Every piece of data comes from the JSON API under /v1.
+"use strict";
+
+(function () {
+  const $ = (id) => document.getElementById(id);
+  const PAGE_SIZE = 24;
+  const KEY_STORE = "nearsight-api-key";
+  const state = {
+    key: sessionStorage.getItem(KEY_STORE) || "",
+    page: 0,
+    tier: "",
+    minSize: 2,
+    group: null,       // the group being reviewed (from GET /v1/groups/<gid>)
+    pairs: [],         // [keeper, member] pairs of that group
+    pairIndex: 0,
+    retry: null,       // what to do again once a key is given
+  };
+
+  // -- talking to the API ------------------------------------------------------------------
+  function headers(extra) {
+    const h = Object.assign({}, extra || {});
+    if (state.key) h["Authorization"] = "Bearer " + state.key;
+    return h;
+  }
+
+  async function api(path, options) {
+    options = options || {};
+    const response = await fetch(path, Object.assign({}, options, { headers: headers(options.headers) }));
+    let body = null;
+    try { body = await response.json(); } catch (e) { body = null; }
+    if (!response.ok) {
+      const message = (body && body.message) || ("HTTP " + response.status);
+      const error = new Error(message);
+      error.status = response.status;
+      if (response.status === 401 || response.status === 403) askForKey(message);
+      throw error;
+    }
+    return body;
+  }
+
+  // Thumbnails: a plain <img src> when no key is needed; with a key, fetched with it and shown as a blob.
+  function showImage(img, url, alt) {
+    img.alt = alt || "";
+    img.decoding = "async";
+    if (!state.key) { img.loading = "lazy"; img.src = url; return; }
+    fetch(url, { headers: headers() })
+      .then((r) => (r.ok ? r.blob() : Promise.reject(new Error("HTTP " + r.status))))
+      .then((blob) => { img.src = URL.createObjectURL(blob); })
+      .catch(() => { img.alt = (alt || "image") + " (could not be loaded)"; });
+  }
+
+  function thumb(id) { return "/v1/images/" + encodeURIComponent(id) + "/thumbnail"; }
+  function preview(id) { return "/v1/images/" + encodeURIComponent(id) + "/preview?side=1600"; }
+
+  function askForKey(why) {
+    $("key-why").textContent = why;
+    $("key-form").hidden = false;
+    $("key-input").focus();
+  }
+
+  $("key-form").addEventListener("submit", (event) => {
+    event.preventDefault();
+    state.key = $("key-input").value.trim();
+    sessionStorage.setItem(KEY_STORE, state.key);
+    $("key-form").hidden = true;
+    toast("Key saved for this tab.");
+    const again = state.retry;
+    state.retry = null;
+    if (again) again(); else route();
+  });
+
+  // -- small helpers -----------------------------------------------------------------------
+  let toastTimer = null;
+  function toast(text, isError) {
+    const el = $("toast");
+    el.textContent = text;
+    el.classList.toggle("error", !!isError);
+    el.classList.add("show");
+    clearTimeout(toastTimer);
+    toastTimer = setTimeout(() => el.classList.remove("show"), 4000);
+  }
+
+  function el(tag, attrs, children) {
+    const node = document.createElement(tag);
+    for (const [k, v] of Object.entries(attrs || {})) {
+      if (k === "text") node.textContent = v;
+      else if (k === "class") node.className = v;
+      else node.setAttribute(k, v);
+    }
+    for (const child of children || []) node.append(child);
+    return node;
+  }
+
+  function basename(path) { return (path || "").split(/[\\/]/).pop(); }
+  function bytes(n) {
+    if (n == null) return "";
+    const units = ["B", "KB", "MB", "GB"];
+    let i = 0;
+    while (n >= 1024 && i < units.length - 1) { n /= 1024; i++; }
+    return (i ? n.toFixed(1) : n) + " " + units[i];
+  }
+  function tierName(t) { return { "same-bytes": "same bytes", "same-pixels": "same pixels" }[t] || t; }
+
+  function showView(name) {
+    for (const view of document.querySelectorAll(".view")) view.hidden = view.id !== "view-" + name;
+    for (const [link, views] of [["nav-groups", ["groups", "group", "pair"]], ["nav-search", ["search"]]]) {
+      if (views.includes(name)) $(link).setAttribute("aria-current", "page");
+      else $(link).removeAttribute("aria-current");
+    }
+    const heading = document.querySelector("#view-" + name + " h1");
+    if (heading) heading.focus({ preventScroll: false });
+  }
+
+  // -- status line ---------------------------------------------------------------------------
+  async function loadStatus() {
+    try {
+      const s = await api("/v1/status");
+      const gen = s.generation;
+      $("status-line").textContent = gen
+        ? `${s.ok} images · ${gen.groups} groups · generation ${gen.name}`
+        : `${s.ok} images · no index yet`;
+    } catch (e) {
+      $("status-line").textContent = "Status unavailable: " + e.message;
+    }
+  }
+
+  // -- groups --------------------------------------------------------------------------------
+  async function renderGroups() {
+    showView("groups");
+    const list = $("group-list");
+    list.replaceChildren();
+    $("groups-summary").textContent = "Loading groups…";
+    const q = new URLSearchParams({ limit: PAGE_SIZE, offset: state.page * PAGE_SIZE, min_size: state.minSize });
+    if (state.tier) q.set("tier", state.tier);
+    let page;
+    try {
+      page = await api("/v1/groups?" + q);
+    } catch (e) {
+      $("groups-summary").textContent = e.message;
+      state.retry = renderGroups;
+      return;
+    }
+    const pages = Math.max(1, Math.ceil(page.total / PAGE_SIZE));
+    $("groups-summary").textContent = page.total
+      ? `${page.total} groups in generation ${page.generation}. The keeper is outlined.`
+      : "No groups match.";
+    $("page-label").textContent = `Page ${state.page + 1} of ${pages}`;
+    $("prev-page").disabled = state.page === 0;
+    $("next-page").disabled = state.page + 1 >= pages;
+    for (const g of page.groups) {
+      const thumbs = el("div", { class: "thumbs" });
+      for (const m of g.members.slice(0, 8)) {
+        const img = el("img", { class: m.id === g.keeper ? "keeper" : "" });
+        showImage(img, thumb(m.id), basename(m.path));
+        thumbs.append(img);
+      }
+      if (g.size > 8) thumbs.append(el("span", { class: "more", text: `+${g.size - 8}` }));
+      const card = el("a", { class: "group-card", href: "#/group/" + encodeURIComponent(g.gid),
+                             "aria-label": `${tierName(g.tier)} group of ${g.size} files, keeper ${basename(g.members[0].path)}` }, [
+        el("div", { class: "head" }, [
+          el("span", { class: "tier", text: tierName(g.tier) }),
+          el("span", { class: "muted", text: `${g.size} files · ${bytes(g.reclaimable_bytes)} reclaimable` }),
+        ]),
+        thumbs,
+      ]);
+      list.append(el("li", {}, [card]));
+    }
+  }
+
+  $("group-filters").addEventListener("submit", (event) => {
+    event.preventDefault();
+    state.tier = $("filter-tier").value;
+    state.minSize = Math.max(2, parseInt($("filter-min").value, 10) || 2);
+    state.page = 0;
+    renderGroups();
+  });
+  $("prev-page").addEventListener("click", () => { state.page = Math.max(0, state.page - 1); renderGroups(); });
+  $("next-page").addEventListener("click", () => { state.page += 1; renderGroups(); });
+
+  // -- one group -----------------------------------------------------------------------------
+  async function loadGroup(gid) {
+    if (state.group && state.group.gid === gid) return state.group;
+    const group = await api("/v1/groups/" + encodeURIComponent(gid));
+    const keeper = group.members.find((m) => m.id === group.keeper) || group.members[0];
+    state.group = group;
+    state.pairs = group.members.filter((m) => m.id !== keeper.id).map((m) => [keeper, m]);
+    return group;
+  }
+
+  function verdictOf(a, b) {
+    const found = (state.group.verdicts || []).filter(
+      (v) => (v.a === a && v.b === b) || (v.a === b && v.b === a));
+    return found.length ? found[found.length - 1].verdict : null;
+  }
+
+  async function renderGroup(gid) {
+    showView("group");
+    const list = $("pair-list");
+    list.replaceChildren();
+    let group;
+    try {
+      group = await loadGroup(gid);
+    } catch (e) {
+      $("group-title").textContent = "Group not found";
+      $("group-facts").textContent = e.message;
+      state.retry = () => renderGroup(gid);
+      return;
+    }
+    $("group-title").textContent = `${tierName(group.tier)} group of ${group.size} files`;
+    $("group-facts").textContent = `Keep ${basename(state.pairs.length ? state.pairs[0][0].path : "")}; ` +
+      `${bytes(group.reclaimable_bytes)} reclaimable. Generation ${group.generation}.`;
+    state.pairs.forEach(([keeper, member], i) => {
+      const img = el("img");
+      showImage(img, thumb(member.id), basename(member.path));
+      const verdict = verdictOf(keeper.id, member.id);
+      const facts = el("div", { class: "facts" }, [
+        el("div", { text: basename(member.path) }),
+        el("div", { class: "muted", text: `${tierName(member.tier)} · similarity ${member.similarity.toFixed(3)} · ` +
+                                          `${member.width}×${member.height} · ${bytes(member.file_size)}` }),
+      ]);
+      if (verdict) facts.append(el("span", { class: "badge " + verdict, text: "marked " + verdict }));
+      const open = el("button", { type: "button", class: "compare", text: "Compare" });
+      open.addEventListener("click", () => { location.hash = `#/pair/${encodeURIComponent(gid)}/${i}`; });
+      list.append(el("li", {}, [img, facts, open]));
+    });
+    if (!state.pairs.length) list.append(el("li", { text: "This group has no pair to compare." }));
+  }
+
+  // -- one pair, side by side ---------------------------------------------------------------------
+  async function renderPair(gid, index) {
+    showView("pair");
+    try {
+      await loadGroup(gid);
+    } catch (e) {
+      $("pair-state").textContent = e.message;
+      return;
+    }
+    if (!state.pairs.length) { location.hash = "#/group/" + encodeURIComponent(gid); return; }
+    index = Math.min(Math.max(0, index), state.pairs.length - 1);
+    state.pairIndex = index;
+    const [a, b] = state.pairs[index];
+    $("pair-back").href = "#/group/" + encodeURIComponent(gid);
+    $("pair-title").textContent = `Pair ${index + 1} of ${state.pairs.length}: are these the same picture?`;
+    const verdict = verdictOf(a.id, b.id);
+    $("pair-state").textContent = `Similarity ${b.similarity.toFixed(3)} (${tierName(b.tier)}). ` +
+      (verdict ? `Marked ${verdict} already; marking again replaces it.` : "Not judged yet.");
+    showImage($("img-a"), preview(a.id), "kept: " + basename(a.path));
+    showImage($("img-b"), preview(b.id), "copy: " + basename(b.path));
+    $("cap-a").textContent = `Keep · #${a.id} · ${a.width}×${a.height} · ${bytes(a.file_size)} · ${a.path}`;
+    $("cap-b").textContent = `#${b.id} · ${b.width}×${b.height} · ${bytes(b.file_size)} · ${b.path}`;
+    $("pair-prev").disabled = index === 0;
+    $("pair-next").disabled = index + 1 >= state.pairs.length;
+  }
+
+  function movePair(step) {
+    if (!state.group) return;
+    const next = state.pairIndex + step;
+    if (next < 0 || next >= state.pairs.length) return;
+    location.hash = `#/pair/${encodeURIComponent(state.group.gid)}/${next}`;
+  }
+
+  async function mark(verdict) {
+    if (!state.group || !state.pairs.length) return;
+    const [a, b] = state.pairs[state.pairIndex];
+    const send = async () => {
+      try {
+        const body = await api("/v1/verdicts", {
+          method: "POST",
+          headers: { "Content-Type": "application/json" },
+          body: JSON.stringify({ file_a: a.id, file_b: b.id, verdict: verdict, origin: "review" }),
+        });
+        state.group.verdicts = (state.group.verdicts || []).concat(
+          [{ a: a.id, b: b.id, verdict: verdict, id: body.verdicts[0].id }]);
+        toast(`Marked ${verdict}: #${a.id} and #${b.id}`);
+        if (state.pairIndex + 1 < state.pairs.length) movePair(1);
+        else renderPair(state.group.gid, state.pairIndex);
+      } catch (e) {
+        toast("Not stored: " + e.message, true);
+        if (e.status === 401 || e.status === 403) state.retry = send;
+      }
+    };
+    await send();
+  }
+
+  $("mark-same").addEventListener("click", () => mark("same"));
+  $("mark-different").addEventListener("click", () => mark("different"));
+  $("pair-next").addEventListener("click", () => movePair(1));
+  $("pair-prev").addEventListener("click", () => movePair(-1));
+
+  // Each image is shown at its own size (up to the screen's width); "same width" scales both to fill.
+  function toggleFit() {
+    const fit = $("side-by-side").classList.toggle("fit");
+    $("pair-fit").setAttribute("aria-pressed", String(fit));
+  }
+  $("pair-fit").addEventListener("click", toggleFit);
+
+  document.addEventListener("keydown", (event) => {
+    if ($("view-pair").hidden || event.altKey || event.ctrlKey || event.metaKey) return;
+    const tag = (event.target.tagName || "").toLowerCase();
+    if (tag === "input" || tag === "select" || tag === "textarea") return;
+    const key = event.key.toLowerCase();
+    if (key === "s") { event.preventDefault(); mark("same"); }
+    else if (key === "d") { event.preventDefault(); mark("different"); }
+    else if (key === "n" || key === "arrowright") { event.preventDefault(); movePair(1); }
+    else if (key === "p" || key === "arrowleft") { event.preventDefault(); movePair(-1); }
+    else if (key === "f") { event.preventDefault(); toggleFit(); }
+    else if (key === "escape" && state.group) { location.hash = "#/group/" + encodeURIComponent(state.group.gid); }
+  });
+
+  // -- search by image -------------------------------------------------------------------------------
+  function renderSearch() { showView("search"); }
+
+  function renderResults(answer, heading) {
+    const list = $("search-results");
+    list.replaceChildren();
+    const dups = answer.results.filter((r) => r.duplicate).length;
+    $("search-summary").textContent = `${heading}: ${answer.results.length} similar images, ` +
+      `${dups} at or above the duplicate threshold ${answer.threshold.toFixed(3)} (generation ${answer.generation}).`;
+    for (const r of answer.results) {
+      const img = el("img");
+      showImage(img, thumb(r.id), basename(r.path));
+      const again = el("button", { type: "button", text: "Similar to this" });
+      again.addEventListener("click", () => searchById(r.id, basename(r.path)));
+      list.append(el("li", { class: "result" }, [
+        img,
+        el("div", { class: "facts" }, [
+          el("div", { class: r.duplicate ? "dup" : "", text: `${r.similarity.toFixed(3)}${r.duplicate ? " · duplicate" : ""}` }),
+          el("div", { class: "name", text: basename(r.path) || "#" + r.id }),
+          el("div", { class: "path", text: r.path || "" }),
+        ]),
+        again,
+      ]));
+    }
+  }
+
+  function k() { return Math.min(100, Math.max(1, parseInt($("search-k").value, 10) || 12)); }
+
+  async function searchFile(file) {
+    if (!file) return;
+    $("search-summary").textContent = `Searching for ${file.name}…`;
+    try {
+      const answer = await api("/v1/search?k=" + k(), {
+        method: "POST",
+        headers: { "Content-Type": file.type || "application/octet-stream" },
+        body: file,
+      });
+      renderResults(answer, file.name);
+    } catch (e) {
+      $("search-summary").textContent = "Search failed: " + e.message;
+      state.retry = () => searchFile(file);
+    }
+  }
+
+  async function searchById(id, name) {
+    $("search-summary").textContent = `Searching for images like ${name}…`;
+    try {
+      renderResults(await api(`/v1/images/${encodeURIComponent(id)}/similar?k=${k()}`), name);
+      $("search-title").focus();
+    } catch (e) {
+      $("search-summary").textContent = "Search failed: " + e.message;
+    }
+  }
+
+  $("search-file").addEventListener("change", (event) => searchFile(event.target.files[0]));
+  const zone = $("drop-zone");
+  zone.addEventListener("dragover", (event) => { event.preventDefault(); zone.classList.add("over"); });
+  zone.addEventListener("dragleave", () => zone.classList.remove("over"));
+  zone.addEventListener("drop", (event) => {
+    event.preventDefault();
+    zone.classList.remove("over");
+    searchFile(event.dataTransfer.files[0]);
+  });
+
+  // -- routing -----------------------------------------------------------------------------------------
+  function route() {
+    const hash = location.hash || "#/groups";
+    const parts = hash.replace(/^#\/?/, "").split("/").map(decodeURIComponent);
+    if (parts[0] === "group" && parts[1]) renderGroup(parts[1]);
+    else if (parts[0] === "pair" && parts[1]) renderPair(parts[1], parseInt(parts[2], 10) || 0);
+    else if (parts[0] === "search") renderSearch();
+    else renderGroups();
+  }
+
+  // `nearsight serve` prints the page's address with #key=...: keep the key for this tab, drop it from the URL.
+  if (location.hash.startsWith("#key=")) {
+    state.key = decodeURIComponent(location.hash.slice(5));
+    sessionStorage.setItem(KEY_STORE, state.key);
+    history.replaceState(null, "", location.pathname + "#/groups");
+  }
+  window.addEventListener("hashchange", route);
+  loadStatus();
+  route();
+})();

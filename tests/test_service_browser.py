@@ -1,0 +1,144 @@
+"""The review page in a real browser: Debian's headless Chromium driven by Selenium through
+Debian's chromedriver (packages chromium and chromium-driver, installed by scripts/system-deps.sh).
+
+Keyboard only: the page is reached with Tab and Enter, a pair is marked with the S key, and the
+catalog is then read directly to see the verdict stored. Search by choosing a file finds the
+photo a transformed upload came from. Screenshots (desktop and a 390 px phone width) are saved
+under test-artifacts/ (git-ignored) and their paths printed.
+"""
+
+import shutil
+import time
+from pathlib import Path
+
+import pytest
+
+from indexer.catalog import Catalog
+
+from .service_support import API_KEY, COPIED, artifacts_dir, transformed
+
+CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
+CHROMEDRIVER = shutil.which("chromedriver") or ("/usr/bin/chromedriver" if Path("/usr/bin/chromedriver").exists() else None)
+
+pytestmark = pytest.mark.skipif(
+    not (CHROMIUM and CHROMEDRIVER),
+    reason="headless Chromium is not installed (Debian packages chromium and chromium-driver; "
+           "`bash scripts/system-deps.sh` as root installs them)",
+)
+
+
+@pytest.fixture(scope="module")
+def browser():
+    from selenium import webdriver  # in the test extra: a missing selenium is an install error, not a skip
+    from selenium.webdriver.chrome.service import Service
+
+    options = webdriver.ChromeOptions()
+    options.binary_location = CHROMIUM
+    for arg in ("--headless=new", "--no-sandbox", "--disable-dev-shm-usage", "--disable-gpu",
+                "--window-size=1280,900", "--disable-extensions", "--no-first-run"):
+        options.add_argument(arg)
+    driver = webdriver.Chrome(service=Service(executable_path=CHROMEDRIVER), options=options)
+    driver.set_page_load_timeout(60)
+    yield driver
+    driver.quit()
+
+
+def _wait(predicate, timeout=30, what="condition"):
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        try:
+            value = predicate()
+        except Exception:  # the page may be between renders
+            value = None
+        if value:
+            return value
+        time.sleep(0.1)
+    raise AssertionError(f"timed out waiting for {what}")
+
+
+def _tab_to(driver, css_class, limit=60):
+    """Press Tab until the focused element has `css_class` (keyboard only, as a person would)."""
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.keys import Keys
+
+    for _ in range(limit):
+        ActionChains(driver).send_keys(Keys.TAB).perform()
+        if css_class in (driver.switch_to.active_element.get_attribute("class") or "").split():
+            return driver.switch_to.active_element
+    raise AssertionError(f"Tab never reached an element of class {css_class}")
+
+
+def _press(driver, key):
+    from selenium.webdriver.common.action_chains import ActionChains
+
+    ActionChains(driver).send_keys(key).perform()
+
+
+def test_review_a_pair_with_the_keyboard_and_the_verdict_is_stored(browser, live_server):
+    from selenium.webdriver.common.keys import Keys
+
+    driver = browser
+    # The address `nearsight serve` prints: the key travels in the fragment, never to the server.
+    driver.get(live_server.base + "/#key=" + API_KEY)
+    _wait(lambda: driver.find_elements("css selector", ".group-card"), what="group cards")
+    assert "#key=" not in driver.current_url            # the page drops the key from the address
+    _wait(lambda: "generation" in driver.find_element("id", "status-line").text, what="status line")
+
+    card = _tab_to(driver, "group-card")
+    gid = card.get_attribute("href").rsplit("/", 1)[1]
+    _press(driver, Keys.ENTER)
+    _wait(lambda: driver.find_elements("css selector", "#pair-list button.compare"), what="pair list")
+    _tab_to(driver, "compare")
+    _press(driver, Keys.ENTER)
+    _wait(lambda: driver.find_element("id", "view-pair").is_displayed(), what="pair view")
+    _wait(lambda: driver.execute_script(
+        "const a = document.getElementById('img-a'), b = document.getElementById('img-b');"
+        "return a.complete && b.complete && a.naturalWidth > 0 && b.naturalWidth > 0;"), what="both previews")
+    shot = artifacts_dir() / "review-pair.png"
+    driver.save_screenshot(str(shot))
+    print(f"screenshot: {shot}")
+
+    caption_a = driver.find_element("id", "cap-a").text
+    caption_b = driver.find_element("id", "cap-b").text
+    a, b = (int(text.split("#", 1)[1].split(" ", 1)[0]) for text in (caption_a, caption_b))
+    _press(driver, "s")
+    _wait(lambda: "Marked same" in driver.find_element("id", "toast").text, what="confirmation")
+
+    with Catalog(live_server.store / "catalog.sqlite") as catalog:
+        stored = [v for v in catalog.latest_verdicts() if {v["file_a"], v["file_b"]} == {a, b}]
+    assert [(v["verdict"], v["origin"]) for v in stored] == [("same", "review")]
+
+    # The group page now shows the pair as judged.
+    driver.get(f"{live_server.base}/#/group/{gid}")
+    _wait(lambda: "marked same" in driver.find_element("id", "pair-list").text, what="verdict badge")
+
+
+def test_search_by_choosing_a_file_finds_the_original(browser, live_server, service_store, tmp_path):
+    name = next(n for n in service_store.originals if n not in COPIED)
+    query = transformed(service_store.originals[name], tmp_path / f"query-{name}.jpg")
+    driver = browser
+    driver.get(live_server.base + "/#/search")
+    chooser = _wait(lambda: driver.find_element("id", "search-file"), what="file input")
+    chooser.send_keys(str(query))
+    _wait(lambda: driver.find_elements("css selector", "#search-results li"), what="results")
+    first = driver.find_element("css selector", "#search-results li .path").text
+    assert first == str(service_store.originals[name])
+    shot = artifacts_dir() / "review-search.png"
+    driver.save_screenshot(str(shot))
+    print(f"screenshot: {shot}")
+
+
+def test_the_page_fits_a_phone_width(browser, live_server):
+    driver = browser
+    driver.set_window_size(390, 844)
+    try:
+        driver.get(live_server.base + "/#/groups")
+        _wait(lambda: driver.find_elements("css selector", ".group-card"), what="group cards")
+        overflow = driver.execute_script(
+            "return document.documentElement.scrollWidth - document.documentElement.clientWidth;")
+        assert overflow <= 0, f"the page is {overflow} px wider than a 390 px screen"
+        shot = artifacts_dir() / "review-phone.png"
+        driver.save_screenshot(str(shot))
+        print(f"screenshot: {shot}")
+    finally:
+        driver.set_window_size(1280, 900)
