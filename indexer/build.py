@@ -1,8 +1,15 @@
-"""Build and publish a generation: the index over every embedded file, and its groups."""
+"""Build and publish a generation from scratch: the index over every embedded file, and its groups.
+
+`build_generation` is the full build (whitening fitted, index built and tuned,
+calibration, every pair, every group); `refresh.py` updates a previous generation
+instead when that is cheaper, and shares the calibration, grouping and publishing
+steps defined here.
+"""
 
 from __future__ import annotations
 
 import hashlib
+import json
 import logging
 import time
 
@@ -10,10 +17,11 @@ import numpy as np
 
 from . import generations
 from . import index as faiss_index
-from .errors import ImageReadError
+from .errors import ImageReadError, NotReadyError
 from .groups import build_groups, summarize
 from .images import read_image
 from .model import read_card
+from .pause import pause_at
 from .store import Store
 from .whiten import fit_whitening
 
@@ -65,9 +73,17 @@ def _add_pixel_hashes(store: Store, meta: dict, a: np.ndarray, b: np.ndarray, si
         log.info("hashed the pixels of %d candidate contents", len(computed))
 
 
-def compute_groups(store: Store, index, ids: np.ndarray, xb: np.ndarray, *, t_near: float, t_similar: float) -> list:
-    """Candidate pairs from FAISS range search above the looser threshold, then groups that do not chain."""
+def compute_pairs(index, ids: np.ndarray, xb: np.ndarray, t_similar: float):
+    """Every pair of `ids` at or above `t_similar` (FAISS range search, exact cosines from `xb`)."""
     a, b, sims = faiss_index.range_pairs(index, xb, ids, t_similar)
+    # An index read back from a generation may hold files quarantined or removed since: drop their pairs.
+    known = np.isin(a, ids) & np.isin(b, ids)
+    return a[known], b[known], sims[known]
+
+
+def groups_from_pairs(store: Store, ids: np.ndarray, xb: np.ndarray, a, b, sims, *, t_near: float,
+                      t_similar: float) -> list:
+    """Groups that do not chain over the files `ids` (rows of `xb`) and their pairs."""
     meta = store.catalog.image_meta(ids.tolist())
     _add_pixel_hashes(store, meta, a, b, sims, t_near)
     row = {int(i): n for n, i in enumerate(ids)}
@@ -78,9 +94,23 @@ def compute_groups(store: Store, index, ids: np.ndarray, xb: np.ndarray, *, t_ne
     return build_groups(a, b, sims, meta, t_near=t_near, t_similar=t_similar, vectors=vectors)
 
 
+def compute_groups(store: Store, index, ids: np.ndarray, xb: np.ndarray, *, t_near: float, t_similar: float) -> list:
+    """Candidate pairs from FAISS range search above the looser threshold, then groups that do not chain."""
+    a, b, sims = compute_pairs(index, ids, xb, t_similar)
+    return groups_from_pairs(store, ids, xb, a, b, sims, t_near=t_near, t_similar=t_similar)
+
+
+def indexed_items(store: Store, index) -> tuple[np.ndarray, np.ndarray]:
+    """(file ids, content ids) of everything the index holds, sorted by id: what the next run diffs against."""
+    ids = np.sort(faiss_index.stored_ids(index))
+    contents = store.catalog.content_ids_of(ids.tolist())
+    return ids, np.array([contents.get(int(i), -1) for i in ids], np.int64)
+
+
 def build_generation(store: Store, model_dir, *, t_near: float, t_similar: float, index_spec: str | None = None,
-                     keep: int = 3, threshold_source: str = "default") -> dict:
-    """Index every embedded file, group, publish; returns the generation's summary."""
+                     keep: int = 3, threshold_source: str = "default", calibration=None,
+                     reason: str = "full build") -> dict:
+    """Index every embedded file, calibrate (when `calibration` is a CalibrationConfig), group, publish."""
     card = read_card(model_dir)
     model = card["version"]
     started = time.monotonic()
@@ -94,25 +124,100 @@ def build_generation(store: Store, model_dir, *, t_near: float, t_similar: float
     rng = np.random.default_rng(0)
     sample = xb[rng.choice(len(xb), min(TUNE_QUERIES, len(xb)), replace=False)]
     tuning = faiss_index.tune_search(index, sample, xb=xb, ids=ids)
-    index_seconds = time.monotonic() - started
-
-    started = time.monotonic()
-    groups = compute_groups(store, index, ids, xb, t_near=t_near, t_similar=t_similar)
-    group_summary = summarize(groups)
-    groups_seconds = time.monotonic() - started
-
+    stages = {"index": round(time.monotonic() - started, 3)}
+    pause_at("index")
+    n = int(len(ids))
     meta = {
         "model": model,
-        "indexed": int(len(ids)),
+        "indexed": n,
         "dim": int(xb.shape[1]),
         "whitening": "pca-shrunk",
         "index_spec": index_spec or faiss_index.choose_spec(len(ids), xb.shape[1]),
         "search_params": tuning["params"],
         "recall_at_10": tuning["recall"],
-        "thresholds": {"near": t_near, "similar": t_similar, "source": threshold_source},
-        "groups": group_summary,
+        "build": {"kind": "full", "reason": reason, "since_full": {"indexed": n, "changes": 0}},
     }
+    thresholds, extra = calibrate_thresholds(store, model_dir, index, ids, xb, whitening, meta, stages,
+                                             t_near=t_near, t_similar=t_similar, threshold_source=threshold_source,
+                                             calibration=calibration)
+    extra[generations.WHITENING_FILE] = whitening.to_bytes()
+    started = time.monotonic()
+    a, b, sims = compute_pairs(index, ids, xb, thresholds["similar"])
+    groups = groups_from_pairs(store, ids, xb, a, b, sims, t_near=thresholds["near"], t_similar=thresholds["similar"])
+    stages["groups"] = round(time.monotonic() - started, 3)
+    return publish_generation(store, index, meta, thresholds, groups, items=indexed_items(store, index),
+                              pairs=(a, b, sims), extra=extra, stages=stages, keep=keep)
+
+
+def calibrate_thresholds(store, model_dir, index, ids, xb, whitening, meta, stages, *, t_near, t_similar,
+                         threshold_source, calibration, required: bool = False) -> tuple[dict, dict]:
+    """The generation's thresholds: calibrated when `calibration` is given and the collection allows,
+    else those given. Returns (thresholds, calibration files for the generation); records the outcome
+    in `meta` (``calibration``, and ``build.since_calibration`` for the nightly reuse rule)."""
+    extra: dict[str, bytes] = {}
+    if calibration is not None:
+        from .calibrate import calibrate
+        from .calibration_report import plot_png
+
+        started = time.monotonic()
+        meta.setdefault("build", {})["since_calibration"] = {"indexed": int(len(ids)), "changes": 0}
+        try:
+            result = calibrate(store, model_dir=model_dir, index=index, ids=ids, xb=xb, whitening=whitening,
+                               config=calibration)
+        except NotReadyError as exc:
+            if required:
+                raise
+            log.warning("not calibrated: %s", exc)
+            meta["calibration"] = {"skipped": str(exc)}
+        else:
+            t_near, t_similar = result["tiers"]["near"]["threshold"], result["tiers"]["similar"]["threshold"]
+            threshold_source = "calibrated"
+            meta["calibration"] = {"summary": result["summary"]["headline"]}
+            extra[generations.CALIBRATION_FILE] = json.dumps(result, sort_keys=True).encode()
+            extra["calibration.png"] = plot_png(result)
+            extra["calibration.txt"] = ("\n".join(result["summary"]["lines"]) + "\n").encode()
+        stages["calibrate"] = round(time.monotonic() - started, 3)
+    return {"near": t_near, "similar": t_similar, "source": threshold_source}, extra
+
+
+def publish_generation(store: Store, index, meta: dict, thresholds: dict, groups: list, *, items, pairs,
+                       extra: dict, stages: dict, keep: int, links: dict | None = None) -> dict:
+    """Publish the generation with its groups, item list and pairs; the run summary's part."""
+    started = time.monotonic()
+    group_summary = summarize(groups)
+    meta = {**meta, "thresholds": thresholds, "groups": group_summary}
+    extra = {**extra,
+             generations.ITEMS_FILE: generations.npz_bytes(ids=items[0], contents=items[1]),
+             generations.PAIRS_FILE: generations.npz_bytes(a=pairs[0], b=pairs[1], sims=pairs[2])}
     gen = generations.publish(store, index, meta, {"summary": group_summary, "groups": [g.to_dict() for g in groups]},
-                              keep=keep, extra={generations.WHITENING_FILE: whitening.to_bytes()})
-    return {"generation": gen.name, "indexed": int(len(ids)), "groups": group_summary,
-            "stages": {"index": round(index_seconds, 3), "groups": round(groups_seconds, 3)}}
+                              keep=keep, extra=extra, links=links)
+    stages["publish"] = round(time.monotonic() - started, 3)
+    return {"generation": gen.name, "indexed": int(meta["indexed"]), "groups": group_summary,
+            "thresholds": thresholds, "calibration": meta.get("calibration"), "build": meta.get("build"),
+            "stages": stages}
+
+
+def recalibrate(store: Store, config, *, keep: int = 3) -> dict:
+    """Calibrate the current generation's index and publish it again with the calibrated thresholds and groups."""
+    gen = generations.require_current(store)
+    model_dir = store.models_dir / gen.meta["model"]
+    index = gen.load_index()
+    ids, xb = load_vectors(store, gen.meta["model"])
+    indexed = np.isin(ids, faiss_index.stored_ids(index))
+    whitening = gen.load_whitening()
+    ids, xb = ids[indexed], whitening.apply(xb[indexed])
+    meta = {k: v for k, v in gen.meta.items()
+            if k not in ("thresholds", "groups", "calibration", "generation", "published_at")}
+    meta["indexed"] = int(len(ids))
+    meta["calibrated_from"] = gen.name
+    meta["build"] = {**gen.meta.get("build", {}), "kind": "recalibrated", "reason": "nearsight calibrate"}
+    stages: dict = {}
+    thresholds, extra = calibrate_thresholds(
+        store, model_dir, index, ids, xb, whitening, meta, stages, t_near=gen.meta["thresholds"]["near"],
+        t_similar=gen.meta["thresholds"]["similar"], threshold_source=gen.meta["thresholds"].get("source", "default"),
+        calibration=config, required=True)
+    extra[generations.WHITENING_FILE] = whitening.to_bytes()
+    a, b, sims = compute_pairs(index, ids, xb, thresholds["similar"])
+    groups = groups_from_pairs(store, ids, xb, a, b, sims, t_near=thresholds["near"], t_similar=thresholds["similar"])
+    return publish_generation(store, index, meta, thresholds, groups, items=indexed_items(store, index),
+                              pairs=(a, b, sims), extra=extra, stages=stages, keep=keep)

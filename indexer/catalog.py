@@ -18,7 +18,7 @@ from typing import Iterable, Iterator
 
 from .errors import NotFoundError, StoreError, UsageError
 
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 
 VERDICTS = ("same", "different")
 
@@ -44,8 +44,12 @@ def _schema_v3(conn: sqlite3.Connection) -> None:
     _run_sql_file(conn, "schema_v3.sql")
 
 
+def _schema_v4(conn: sqlite3.Connection) -> None:
+    _run_sql_file(conn, "schema_v4.sql")
+
+
 # Ordered migrations: MIGRATIONS[n - 1] brings a catalog from version n - 1 to n.
-MIGRATIONS = (_schema_v1, _schema_v2, _schema_v3)
+MIGRATIONS = (_schema_v1, _schema_v2, _schema_v3, _schema_v4)
 assert len(MIGRATIONS) == SCHEMA_VERSION  # a developer's invariant, not user input
 
 
@@ -209,10 +213,31 @@ class Catalog:
             "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?) "
             "ON CONFLICT(source_id, relpath) DO UPDATE SET size = excluded.size, "
             "mtime_ns = excluded.mtime_ns, content_id = excluded.content_id, state = excluded.state, "
-            "reason = excluded.reason, last_seen = excluded.last_seen RETURNING id",
+            "reason = excluded.reason, last_seen = excluded.last_seen, quarantine_path = NULL, "
+            "quarantine_manifest = NULL, quarantined_at = NULL RETURNING id",
             (source_id, relpath, size, mtime_ns, content_id, state, reason, now, now),
         )
         return cur.fetchone()[0]
+
+    def vanished_with_content(self, content_id: int) -> list[dict]:
+        """Present rows (ok or unreadable) holding `content_id`, with their source root and path:
+        the rows a file with these bytes at a new path may have moved from (the scan checks the old
+        path is gone). Removed and quarantined rows are never candidates."""
+        rows = self.conn.execute(
+            "SELECT f.id, f.source_id, s.root, f.relpath FROM files f JOIN sources s ON s.id = f.source_id "
+            "WHERE f.content_id = ? AND f.state IN ('ok', 'unreadable') ORDER BY f.id",
+            (content_id,),
+        )
+        return [dict(r) for r in rows]
+
+    def move_file(self, conn: sqlite3.Connection, file_id: int, source_id: int, relpath: str, *,
+                  size: int | None, mtime_ns: int | None, now: float) -> None:
+        """A file found at a new path (same bytes, old path gone) keeps its row and id, inside the
+        caller's transaction."""
+        conn.execute(
+            "UPDATE files SET source_id = ?, relpath = ?, size = ?, mtime_ns = ?, last_seen = ? WHERE id = ?",
+            (source_id, relpath, size, mtime_ns, now, file_id),
+        )
 
     def touch_files(self, conn: sqlite3.Connection, file_ids: Iterable[int], now: float) -> None:
         conn.executemany("UPDATE files SET last_seen = ? WHERE id = ?", [(now, i) for i in file_ids])
@@ -222,7 +247,7 @@ class Catalog:
         with self.transaction():
             cur = self.conn.execute(
                 "UPDATE files SET state = 'removed', reason = NULL "
-                "WHERE source_id = ? AND last_seen < ? AND state != 'removed'",
+                "WHERE source_id = ? AND last_seen < ? AND state NOT IN ('removed', 'quarantined')",
                 (source_id, seen_since),
             )
         return cur.rowcount
@@ -306,7 +331,7 @@ class Catalog:
     def readable_contents(self) -> list[dict]:
         """One row per distinct readable content with one of its present paths (lowest file id)."""
         rows = self.conn.execute(
-            "SELECT c.id AS content_id, c.hash, c.width, c.height, c.thumb, "
+            "SELECT c.id AS content_id, c.hash, c.width, c.height, c.thumb, c.first_seen, "
             "MIN(f.id) AS file_id, s.root, f.relpath "
             "FROM contents c JOIN files f ON f.content_id = c.id AND f.state = 'ok' "
             "JOIN sources s ON s.id = f.source_id "
@@ -350,6 +375,35 @@ class Catalog:
             xb = np.frombuffer(b"".join(r[1] for r in rows), dtype="<f4").reshape(len(rows), -1)
             yield ids, np.ascontiguousarray(xb, dtype=np.float32)
 
+    def indexable_items(self, model: str):
+        """(file ids, content ids), sorted by file id, of every present readable file with a vector
+        under `model`: what a generation of that model indexes."""
+        import numpy as np
+
+        rows = self.conn.execute(
+            "SELECT f.id, f.content_id FROM files f JOIN vectors v ON v.content_id = f.content_id AND v.model = ? "
+            "WHERE f.state = 'ok' ORDER BY f.id",
+            (model,),
+        ).fetchall()
+        pairs = np.array([(r[0], r[1]) for r in rows], dtype=np.int64).reshape(-1, 2)
+        return np.ascontiguousarray(pairs[:, 0]), np.ascontiguousarray(pairs[:, 1])
+
+    def file_vectors(self, file_ids, model: str) -> dict:
+        """file id -> its content's stored vector under `model` (float32), for present readable files."""
+        import numpy as np
+
+        ids = sorted(set(int(i) for i in file_ids))
+        out: dict = {}
+        for start in range(0, len(ids), 500):
+            chunk = ids[start : start + 500]
+            rows = self.conn.execute(
+                "SELECT f.id, v.vector FROM files f JOIN vectors v ON v.content_id = f.content_id AND v.model = ? "
+                f"WHERE f.state = 'ok' AND f.id IN ({','.join('?' * len(chunk))})",
+                (model, *chunk),
+            )
+            out.update({r[0]: np.frombuffer(r[1], dtype="<f4").astype(np.float32) for r in rows})
+        return out
+
     def count_vectors(self, model: str) -> int:
         return self.conn.execute("SELECT COUNT(*) FROM vectors WHERE model = ?", (model,)).fetchone()[0]
 
@@ -360,6 +414,15 @@ class Catalog:
                 "INSERT INTO runs(kind, started_at, status) VALUES (?, ?, 'running')", (kind, time.time())
             )
         return cur.lastrowid
+
+    def close_abandoned_runs(self, kind: str) -> int:
+        """Runs of `kind` still 'running' belong to a process that died (the caller holds the lock):
+        mark them 'interrupted'."""
+        with self.transaction():
+            cur = self.conn.execute(
+                "UPDATE runs SET status = 'interrupted' WHERE kind = ? AND status = 'running'", (kind,)
+            )
+        return cur.rowcount
 
     def finish_run(self, run_id: int, status: str, summary: dict) -> None:
         with self.transaction():
@@ -443,6 +506,22 @@ class Catalog:
         )
         return [dict(r) for r in rows]
 
+    def latest_verdicts_among(self, file_ids) -> list[dict]:
+        """The latest verdict per content pair whose two contents both belong to the given files
+        (e.g. the members of one group), oldest first."""
+        ids = sorted(set(int(i) for i in file_ids))
+        if not ids:
+            return []
+        marks = ",".join("?" * len(ids))
+        rows = self.conn.execute(
+            f"WITH c AS (SELECT DISTINCT content_id FROM files WHERE id IN ({marks}) AND content_id IS NOT NULL) "
+            "SELECT v.* FROM verdicts v JOIN (SELECT MAX(id) AS id FROM verdicts "
+            "WHERE content_a IN (SELECT content_id FROM c) AND content_b IN (SELECT content_id FROM c) "
+            "GROUP BY content_a, content_b) last ON last.id = v.id ORDER BY v.id",
+            ids,
+        )
+        return [dict(r) for r in rows]
+
     def content_ids_of(self, file_ids) -> dict[int, int]:
         """file id -> content id for the given present files."""
         ids = sorted(set(int(i) for i in file_ids))
@@ -455,6 +534,50 @@ class Catalog:
             )
             out.update({r["id"]: r["content_id"] for r in rows})
         return out
+
+    # -- quarantine ---------------------------------------------------------------
+    def file_rows(self, file_ids) -> dict[int, dict]:
+        """id -> source id and root, relpath, size, mtime_ns, state, content and pixel hash, quarantine
+        path, for the given files (any state; ids that do not exist are left out)."""
+        ids = sorted(set(int(i) for i in file_ids))
+        out: dict[int, dict] = {}
+        for start in range(0, len(ids), 500):
+            chunk = ids[start : start + 500]
+            rows = self.conn.execute(
+                "SELECT f.id, f.source_id, s.root, f.relpath, f.size, f.mtime_ns, f.state, f.quarantine_path, "
+                "c.hash, c.pixel_hash FROM files f JOIN sources s ON s.id = f.source_id "
+                f"LEFT JOIN contents c ON c.id = f.content_id WHERE f.id IN ({','.join('?' * len(chunk))})",
+                chunk,
+            )
+            out.update({r["id"]: dict(r) for r in rows})
+        return out
+
+    def mark_quarantined(self, file_id: int, path: str, manifest: str) -> None:
+        """A file now lives at `path` in a quarantine folder; `manifest` recorded the move."""
+        with self.transaction():
+            self.conn.execute(
+                "UPDATE files SET state = 'quarantined', reason = NULL, quarantine_path = ?, "
+                "quarantine_manifest = ?, quarantined_at = ? WHERE id = ?",
+                (path, manifest, time.time(), file_id),
+            )
+
+    def mark_restored(self, file_id: int) -> bool:
+        """A quarantined file is back at its path: it is 'ok' again (True if the row changed)."""
+        with self.transaction():
+            cur = self.conn.execute(
+                "UPDATE files SET state = 'ok', reason = NULL, quarantine_path = NULL, quarantine_manifest = NULL, "
+                "quarantined_at = NULL WHERE id = ? AND state = 'quarantined'",
+                (file_id,),
+            )
+        return cur.rowcount > 0
+
+    def add_quarantine_dir(self, path: str | Path) -> None:
+        with self.transaction():
+            self.conn.execute("INSERT OR IGNORE INTO quarantine_dirs(path, first_used) VALUES (?, ?)",
+                              (str(path), time.time()))
+
+    def quarantine_dirs(self) -> list[str]:
+        return [r["path"] for r in self.conn.execute("SELECT path FROM quarantine_dirs ORDER BY path")]
 
     def counts(self) -> dict:
         """Counts for `status`: files by state, unreadable reasons, distinct contents, bytes."""
@@ -480,10 +603,11 @@ class Catalog:
         ).fetchone()
         return {
             "sources": self.conn.execute("SELECT COUNT(*) FROM sources").fetchone()[0],
-            "files": sum(v for k, v in by_state.items() if k != "removed"),
+            "files": sum(v for k, v in by_state.items() if k not in ("removed", "quarantined")),
             "ok": by_state.get("ok", 0),
             "unreadable": by_state.get("unreadable", 0),
             "removed": by_state.get("removed", 0),
+            "quarantined": by_state.get("quarantined", 0),
             "unreadable_reasons": reasons,
             "distinct_contents": row["contents"],
             "bytes": row["bytes"],

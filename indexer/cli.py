@@ -8,21 +8,15 @@ from __future__ import annotations
 
 import argparse
 import logging
+import os
 import sys
 from pathlib import Path
-from typing import Callable, Sequence
+from typing import Sequence
 
 from . import __version__, commands
-from .errors import NearsightError, NotReadyError
+from .errors import NearsightError
 
 log = logging.getLogger("nearsight")
-
-
-def _not_yet(issue: str) -> Callable[[argparse.Namespace], int]:
-    def command(args) -> int:
-        raise NotReadyError(f"`nearsight {args.command}` is not available in this version yet ({issue})")
-
-    return command
 
 
 def _common_options(*, suppress: bool) -> argparse.ArgumentParser:
@@ -67,15 +61,23 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("index", parents=[common], help="scan folders, train if needed, embed, index and group",
                        description="Register each FOLDER with the store and scan it recursively (new, changed, "
-                                   "unchanged, unreadable and removed files are recorded); train an encoder if the "
-                                   "store has none; embed what is new; build the index and the duplicate groups; "
-                                   "publish them as a new generation.")
+                                   "moved, unchanged, unreadable and removed files are recorded; a moved file keeps "
+                                   "its id); train an encoder if the store has none (or by --retrain); embed what is "
+                                   "new; update or rebuild the index and the duplicate groups; publish them as a new "
+                                   "generation. Run again on the same store, it is the nightly job: its cost follows "
+                                   "what changed. Exit code 3: another run holds the store.")
     p.add_argument("folders", nargs="+", metavar="FOLDER", help="folder of images (scanned recursively)")
     p.add_argument("--json", action="store_true", help="print the run summary as JSON")
     p.add_argument("--no-progress", action="store_true", help="no progress bar, even on a terminal")
     p.add_argument("--workers", type=int, help="worker processes (default: setting `workers`)")
     p.add_argument("--scan-only", action="store_true", help="only scan: no training, embedding or index")
     p.add_argument("--index-spec", help="FAISS index_factory string for experts (default: chosen by collection size)")
+    p.add_argument("--no-calibrate", action="store_true",
+                   help="keep the default thresholds instead of calibrating them after the build")
+    p.add_argument("--retrain", choices=("auto", "never", "always"), default="auto",
+                   help="train a new encoder first: auto (default) when the collection grew by more than the "
+                        "setting retrain_growth since the model was trained or its held-out check dropped on new "
+                        "images; never; always. The current generation keeps serving until the new one is published")
     _training_options(p, budget_flag="--train-minutes", budget_dest="train_minutes")
     p.set_defaults(func=commands.cmd_index)
 
@@ -98,16 +100,75 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("-k", type=int, default=10, help="neighbours per query (default: 10)")
     p.add_argument("--threshold", type=float, help="cosine at or above which a result is a duplicate "
                                                    "(default: the generation's threshold)")
+    p.add_argument("--precision", type=float, help="instead of a threshold: the calibrated one for this precision")
     p.add_argument("--json", action="store_true", help="JSON Lines: one object per query")
     p.set_defaults(func=commands.cmd_similar)
 
     p = sub.add_parser("groups", parents=[common], help="list duplicate groups",
                        description="List the current generation's duplicate groups, or regroup at --threshold.")
     p.add_argument("--threshold", type=float, help="regroup at this cosine similarity (duplicate groups only, no similar tier)")
+    p.add_argument("--precision", type=float, help="regroup at the calibrated threshold for this precision")
     p.add_argument("--tier", choices=("same-bytes", "same-pixels", "near-duplicate", "similar"), help="only groups of this tier")
     p.add_argument("--format", choices=("table", "json", "csv", "html"), default="table", help="output format")
     p.add_argument("--out", help="write to this file (html: default STORE/reports/groups-<generation>.html)")
     p.set_defaults(func=commands.cmd_groups)
+
+    p = sub.add_parser("calibrate", parents=[common], help="calibrate the duplicate thresholds for a stated precision",
+                       description="Measure, for the current model and collection, how precise and complete each "
+                                   "threshold is (synthetic copies of held-out images as positives, closest pairs and "
+                                   "random pairs as negatives, a person's verdicts when there are enough), choose each "
+                                   "tier's threshold for its target precision and publish the generation again with "
+                                   "them. Writes calibration.json, calibration.png and calibration.txt beside the index.")
+    p.add_argument("--target-precision", type=float, help="near-duplicate tier target (default: setting target_precision)")
+    p.add_argument("--similar-target-precision", type=float, help="similar tier target (default: setting similar_target_precision)")
+    p.add_argument("--json", action="store_true", help="print the calibration's figures as JSON")
+    p.set_defaults(func=commands.cmd_calibrate)
+
+    p = sub.add_parser("verdicts", parents=[common], help="import or count a person's same/different verdicts",
+                       description="Verdicts on pairs of images (same / different) sharpen the calibration. "
+                                   "`verdicts import FILE.csv` stores those of a CSV file with columns a, b (image ids "
+                                   "or paths), verdict and optionally note; `verdicts show` counts them.")
+    p.add_argument("action", choices=("import", "show"), help="import a CSV file, or show the counts")
+    p.add_argument("file", nargs="?", metavar="FILE.csv", help="the CSV file to import")
+    p.add_argument("--author", help="who gave these verdicts (stored with them)")
+    p.add_argument("--json", action="store_true", help="print as JSON")
+    p.set_defaults(func=commands.cmd_verdicts)
+
+    p = sub.add_parser("quarantine", parents=[common],
+                       help="move the copies in duplicate groups into a folder (a dry run unless --apply)",
+                       description="Plan, per duplicate group of the current generation, which file stays (the "
+                                   "keeper) and which copies move into DIR, and show it with the bytes freed. With "
+                                   "--apply, move them: each source gets its own sub-folder of DIR, each move is "
+                                   "checked by content hash and journalled in DIR/manifest-*.jsonl before the next "
+                                   "one. Groups of the similar tier are never acted on; nothing is ever deleted. "
+                                   "Keeper policy: --keep, then --prefer-folder, then --prefer-format, then most "
+                                   "pixels, larger file, oldest, path.")
+    p.add_argument("--to", required=True, metavar="DIR", help="quarantine folder, outside every source folder")
+    regroup = p.add_mutually_exclusive_group()
+    regroup.add_argument("--threshold", type=float, help="regroup at this cosine similarity first")
+    regroup.add_argument("--precision", type=float,
+                         help="regroup at the calibrated threshold whose estimated precision reaches this")
+    p.add_argument("--tier", choices=("same-bytes", "same-pixels", "near-duplicate"),
+                   help="weakest relation to the keeper that moves (default near-duplicate: all three)")
+    p.add_argument("--keep", action="append", dest="keep_paths", metavar="PATTERN",
+                   help="never move files matching this path or glob (repeatable; setting keep_paths)")
+    p.add_argument("--prefer-folder", action="append", dest="prefer_folders", metavar="PATTERN",
+                   help="keep the copy under this folder pattern, earliest given first (repeatable; "
+                        "setting prefer_folders)")
+    p.add_argument("--prefer-format", dest="prefer_formats", metavar="FORMATS",
+                   help="keep the copy in these formats, earliest first, e.g. png,tiff (setting prefer_formats)")
+    p.add_argument("--apply", action="store_true", help="move the files (default: only show the plan)")
+    p.add_argument("--json", action="store_true", help="print the plan (and what was done) as JSON")
+    p.set_defaults(func=commands.cmd_quarantine)
+
+    p = sub.add_parser("restore", parents=[common], help="put quarantined files back (a dry run unless --apply)",
+                       description="Put every file a quarantine manifest moved back at its original path, checked "
+                                   "by content hash. A different file now at an original path is never "
+                                   "overwritten; the same bytes already there count as restored.")
+    p.add_argument("manifest", metavar="MANIFEST", help="a manifest-*.jsonl file from the quarantine folder")
+    p.add_argument("--apply", action="store_true", help="move the files back (default: only show what would happen)")
+    p.add_argument("--json", action="store_true", help="print the result as JSON")
+    p.set_defaults(func=commands.cmd_restore)
 
     p = sub.add_parser("status", parents=[common], help="counts and state of the store",
                        description="Show what the store holds: files by state, sources, model, generation.")
@@ -130,12 +191,18 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print as JSON")
     p.set_defaults(func=commands.cmd_settings)
 
-    for name, text, issue in (
-        ("calibrate", "calibrate the duplicate threshold", "issue 5"),
-        ("serve", "serve the HTTP API and review page", "issue 6"),
-    ):
-        p = sub.add_parser(name, parents=[common], help=f"{text} (not yet available)")
-        p.set_defaults(func=_not_yet(issue))
+    p = sub.add_parser("serve", parents=[common], help="serve the HTTP API and the review page",
+                       description="Answer similarity and duplicate-group queries over HTTP (JSON under /v1, OpenAPI "
+                                   "at /v1/openapi.json) and serve the review page at /, under waitress. A newly "
+                                   "published generation is swapped in without a restart.")
+    p.add_argument("--host", dest="serve_host", metavar="HOST",
+                   help="address to listen on (default: setting serve_host, 127.0.0.1); beyond loopback the "
+                        "setting api_key is required")
+    p.add_argument("--port", dest="serve_port", type=int, metavar="PORT",
+                   help="TCP port (default: setting serve_port, 8080; 0: any free port)")
+    p.add_argument("--threads", "--workers", dest="serve_threads", type=int, metavar="N",
+                   help="request threads (default: setting serve_threads, 8)")
+    p.set_defaults(func=commands.cmd_serve)
     return parser
 
 
@@ -146,10 +213,18 @@ def _setup_logging(args) -> None:
     logging.getLogger("faiss").setLevel(max(level, logging.WARNING))
 
 
+QUERY_COMMANDS = ("similar", "serve")
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     _setup_logging(args)
+    if args.command in QUERY_COMMANDS:
+        # torch and FAISS each bring an OpenMP runtime; when one thread alternates embedding and
+        # searching, spinning idle threads of one runtime starve the other (a 13 ms upload search
+        # took 30-440 ms in benchmarks/bench_http.py). Must be set before either library loads.
+        os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
     try:
         return args.func(args)
     except NearsightError as exc:

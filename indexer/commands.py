@@ -12,11 +12,13 @@ import sys
 from pathlib import Path
 from typing import Sequence
 
+from .errors import UsageError
 from .settings import describe as describe_settings
 from .settings import load_settings
 from .store import Store, resolve_store_path
 
-SETTING_FLAGS = ("workers", "train_minutes", "near_threshold", "similar_threshold")
+SETTING_FLAGS = ("workers", "train_minutes", "near_threshold", "similar_threshold",
+                 "serve_host", "serve_port", "serve_threads", "keep_paths", "prefer_folders", "prefer_formats")
 
 
 def print_json(obj) -> None:
@@ -68,12 +70,14 @@ def cmd_index(args) -> int:
     with open_store(args, create=True) as store:
         config = train_config(args, minutes=store.settings.train_minutes)
         summary = run_index(store, args.folders, progress=_progress(args), train_config=config,
-                            build=not args.scan_only, index_spec=args.index_spec)
+                            build=not args.scan_only, index_spec=args.index_spec,
+                            calibrate=not args.no_calibrate, retrain=args.retrain)
     if args.json:
         print_json(summary)
         return 0
     print(f"indexed {len(args.folders)} folder(s) into {resolve_store_path(args.store)}")
-    print_table([(k, summary[k]) for k in ("new", "changed", "unchanged", "unreadable", "removed", "ignored", "same_bytes", "embedded")])
+    print_table([(k, summary[k]) for k in ("new", "changed", "moved", "unchanged", "unreadable", "removed", "ignored",
+                                           "same_bytes", "embedded")])
     if summary["unreadable_reasons"]:
         reasons = ", ".join(f"{code} {n}" for code, n in summary["unreadable_reasons"].items())
         print(f"  unreadable files by reason: {reasons} (`nearsight status --unreadable` lists them)")
@@ -83,6 +87,54 @@ def cmd_index(args) -> int:
         g = summary["groups"]
         print(f"  published generation {summary['generation']}: {summary['indexed']} images, "
               f"{g['groups']} groups, {human_bytes(g['reclaimable_bytes'])} reclaimable")
+        build = summary.get("build") or {}
+        print(f"  {build.get('kind', 'full')} build ({build.get('reason', '')}); groups: "
+              + ", ".join(f"{k} {v}" for k, v in summary.get("group_changes", {}).items() if v))
+    return 0
+
+
+def cmd_calibrate(args) -> int:
+    from .build import recalibrate
+    from .calibrate import CalibrationConfig
+
+    with open_store(args) as store, store.lock():
+        settings = store.settings
+        config = CalibrationConfig(
+            target_precision=args.target_precision or settings.target_precision,
+            similar_target_precision=args.similar_target_precision or settings.similar_target_precision,
+        )
+        out = recalibrate(store, config, keep=settings.keep_generations)
+        gen_dir = store.generations_dir / out["generation"]
+        calibration = json.loads((gen_dir / "calibration.json").read_text("utf-8"))
+    if args.json:
+        print_json({"generation": out["generation"], "summary": calibration["summary"],
+                    "tiers": {name: {k: v for k, v in tier.items() if k not in ("curve", "fit")}
+                              for name, tier in calibration["tiers"].items()},
+                    "plot": str(gen_dir / "calibration.png")})
+        return 0
+    for line in calibration["summary"]["lines"]:
+        print(line)
+    print(f"published generation {out['generation']} with these thresholds; plot: {gen_dir / 'calibration.png'}")
+    return 0
+
+
+def cmd_verdicts(args) -> int:
+    from .verdicts import import_csv
+
+    with open_store(args) as store:
+        if args.action == "import":
+            if not args.file:
+                raise UsageError("`verdicts import` needs the CSV file to read")
+            stored = import_csv(store, Path(args.file), author=args.author)
+            print(f"stored {stored} verdicts; `nearsight calibrate` uses them")
+            return 0
+        latest = store.catalog.latest_verdicts()
+    counts = {"pairs": len(latest), "same": sum(v["verdict"] == "same" for v in latest)}
+    counts["different"] = counts["pairs"] - counts["same"]
+    if args.json:
+        print_json(counts)
+    else:
+        print(f"{counts['pairs']} judged pairs: {counts['same']} same, {counts['different']} different")
     return 0
 
 
@@ -105,6 +157,7 @@ def cmd_status(args) -> int:
         ("readable", status["ok"]),
         ("unreadable", status["unreadable"]),
         ("removed since seen", status["removed"]),
+        ("quarantined", status.get("quarantined", 0)),
         ("distinct contents", status["distinct_contents"]),
         ("same-bytes groups", status["same_bytes_groups"]),
         ("bytes (readable)", human_bytes(status["bytes"])),
@@ -163,13 +216,23 @@ def cmd_similar(args) -> int:
         searcher = Searcher(store)
         queries = expand_queries(args.paths, store.settings.extensions)
         failed = 0
-        for answer in searcher.similar_files(queries, args.k, args.threshold):
+        threshold = _threshold_arg(args, searcher.generation)
+        for answer in searcher.similar_files(queries, args.k, threshold):
             failed += "error" in answer
             if args.json:
                 print_json(answer)
             else:
                 _print_answer(answer)
     return 1 if failed and failed == len(queries) else 0
+
+
+def _threshold_arg(args, gen) -> float | None:
+    """--threshold as given, or the calibrated threshold for --precision; None for the generation's own."""
+    if args.threshold is not None and args.precision is not None:
+        raise UsageError("give --threshold or --precision, not both")
+    if args.precision is not None:
+        return gen.threshold("near", args.precision)
+    return args.threshold
 
 
 def _print_answer(answer: dict) -> None:
@@ -190,12 +253,13 @@ def cmd_groups(args) -> int:
 
     with open_store(args) as store:
         gen = require_current(store)
-        if args.threshold is not None:
+        threshold = _threshold_arg(args, gen)
+        if threshold is not None:
             from .build import compute_groups, load_vectors
 
             ids, xb = load_vectors(store, gen.meta["model"])
             xb = gen.load_whitening().apply(xb)
-            groups = compute_groups(store, gen.load_index(), ids, xb, t_near=args.threshold, t_similar=args.threshold)
+            groups = compute_groups(store, gen.load_index(), ids, xb, t_near=threshold, t_similar=threshold)
         else:
             groups = [Group.from_dict(g) for g in gen.load_groups()["groups"]]
         if args.tier:
@@ -256,6 +320,85 @@ def _emit(text: str, out: str | None) -> None:
         sys.stdout.write(text)
 
 
+# -- serve ---------------------------------------------------------------------------------------
+def cmd_serve(args) -> int:
+    from service.server import run_server
+
+    with open_store(args) as store:
+        root, settings = store.root, store.settings
+    return run_server(root, settings)
+
+
+# -- quarantine, restore -------------------------------------------------------------------------
+def cmd_quarantine(args) -> int:
+    from .keepers import KeeperRules
+    from .quarantine import apply_quarantine, plan_quarantine
+
+    with open_store(args) as store:
+        options = dict(tier=args.tier, threshold=args.threshold, precision=args.precision,
+                       rules=KeeperRules.from_settings(store.settings))
+        if args.apply:
+            result = apply_quarantine(store, args.to, **options)
+        else:
+            plan = plan_quarantine(store, to=args.to, **options).to_dict()
+    if not args.apply:
+        if args.json:
+            print_json({"applied": False, **plan})
+        else:
+            _print_plan(plan)
+        return 0
+    if args.json:
+        print_json({"applied": True, **result})
+        return 0
+    for path, counts in result["settled"].items():
+        print(f"settled the interrupted run {path}: {counts['completed']} move(s) completed, "
+              f"{counts['abandoned']} not started (left in place)")
+    print(f"moved {result['moved']} file(s), {human_bytes(result['bytes_moved'])}, into {result['to']}")
+    for item in result["skipped_files"]:
+        print(f"  left alone  {item['path']}  ({item['reason']})")
+    print(f"manifest: {result['manifest']}")
+    print(f"undo: nearsight restore {result['manifest']} --apply")
+    return 0
+
+
+def _print_plan(plan: dict) -> None:
+    print("dry run: nothing is moved (add --apply to move the files listed)")
+    for g in plan["groups"]:
+        print(f"\ngroup {g['gid']}  {g['tier']}  keeper {g['keeper']['path']}")
+        for m in g["moves"]:
+            print(f"  move  {human_bytes(m['size']):>9}  {m['path']}  ->  {m['dest']}")
+        for k in g["kept"]:
+            print(f"  stay  {k['path']}  ({k['reason']})")
+        for k in g["skipped"]:
+            print(f"  skip  {k['path']}  ({k['reason']})")
+    s = plan["summary"]
+    print(f"\nwould move {s['files']} file(s) from {s['groups']} group(s) into {plan['to']}, "
+          f"freeing {human_bytes(s['bytes_freed'])} ({s['bytes_freed']} bytes)")
+    if s["similar_groups_ignored"]:
+        print(f"{s['similar_groups_ignored']} group(s) of the similar tier are never acted on")
+
+
+RESTORE_WORDS = {"would-restore": "would restore", "restored": "restored", "in-place": "already in place",
+                 "refused": "refused", "changed": "changed", "missing": "missing"}
+
+
+def cmd_restore(args) -> int:
+    from .restore import restore
+
+    with open_store(args) as store:
+        report = restore(store, args.manifest, apply=args.apply)
+    if args.json:
+        print_json(report)
+    else:
+        if not report["applied"]:
+            print("dry run: nothing is moved (add --apply to put the files back)")
+        for f in report["files"]:
+            note = f"  ({f['note']})" if f["note"] else ""
+            print(f"  {RESTORE_WORDS[f['outcome']]:<16}  {f['path']}{note}")
+        print(", ".join(f"{RESTORE_WORDS[k]} {n}" for k, n in report["counts"].items()) or "nothing to restore")
+    return 1 if report["problems"] else 0
+
+
 # -- demo, settings -----------------------------------------------------------------------------
 def cmd_demo(args) -> int:
     from .demo import run_demo
@@ -273,6 +416,9 @@ def cmd_demo(args) -> int:
 def cmd_settings(args) -> int:
     settings = load_settings(store_dir=resolve_store_path(args.store), config_file=args.config)
     rows = [dict(row, value=settings[row["name"]], source=settings.source(row["name"])) for row in describe_settings()]
+    for row in rows:
+        if row.pop("secret"):
+            row["value"] = "(set)" if row["value"] else "(not set)"
     if args.json:
         print_json([{k: (list(v) if isinstance(v, tuple) else v) for k, v in r.items()} for r in rows])
         return 0

@@ -72,6 +72,38 @@ def _called_pairs(groups: list[dict], relative) -> set[frozenset]:
     return _pairs(s for s in sets if len(s) > 1)
 
 
+def pair_quality(store: Store, truth: dict, thresholds: dict[str, float]) -> dict:
+    """Realised precision and recall of "sim >= t" over every pair of indexed demo files with
+    different bytes, against the planted truth (the check the calibration's estimate must pass)."""
+    import numpy as np
+
+    from .build import load_vectors
+    from .generations import require_current
+
+    gen = require_current(store)
+    ids, xb = load_vectors(store, gen.meta["model"])
+    xb = gen.load_whitening().apply(xb)
+    meta = store.catalog.image_meta(ids.tolist())
+    base = Path(store.catalog.sources()[0]["root"]).parent  # the demo folder holding the archive
+    rel = [Path(meta[int(i)]["path"]).relative_to(base).as_posix() for i in ids]
+    digest = [meta[int(i)]["content_hash"] for i in ids]
+    planted = _pairs(truth["duplicate_groups"])
+    sims = xb @ xb.T
+    a, b = np.triu_indices(len(ids), 1)
+    keep = np.array([digest[i] != digest[j] for i, j in zip(a, b)], dtype=bool)
+    a, b, s = a[keep], b[keep], sims[a[keep], b[keep]]
+    is_planted = np.array([frozenset((rel[i], rel[j])) in planted for i, j in zip(a, b)], dtype=bool)
+    out_figures = {}
+    for name, t in thresholds.items():
+        called = s >= t
+        correct = int((called & is_planted).sum())
+        out_figures[name] = {"threshold": t, "called": int(called.sum()), "correct": correct,
+                             "planted": int(is_planted.sum()),
+                             "precision": correct / max(1, int(called.sum())),
+                             "recall": correct / max(1, int(is_planted.sum()))}
+    return out_figures
+
+
 def run_demo(out: Path, *, seed: int = 7, originals: int = 160, progress: bool | None = None,
              train_minutes: float = 3.0) -> dict:
     from .generations import current
@@ -87,6 +119,8 @@ def run_demo(out: Path, *, seed: int = 7, originals: int = 160, progress: bool |
         files = store.catalog.files_with_hashes()
         gen = current(store)
         groups = gen.load_groups()["groups"] if gen else []
+        calibration = gen.load_calibration() if gen else None
+        realised = pair_quality(store, truth, {"near": gen.meta["thresholds"]["near"]})["near"] if gen else None
 
     prefix = truth["root"] + "/"
     # Byte-identical files found by the scan, as pairs of paths relative to the demo folder.
@@ -135,6 +169,11 @@ def run_demo(out: Path, *, seed: int = 7, originals: int = 160, progress: bool |
             f"planted {len(planted)}, correct {len(called & planted)}; "
             f"precision {dup_precision:.2f}, recall {dup_recall:.2f}",
             f"look-alike pairs wrongly called duplicates: {len(called & lookalikes)} of {len(lookalikes)}",
+            f"calibration: {calibration['summary']['headline']}" if calibration else
+            f"calibration: none ({gen.meta.get('calibration', {}).get('skipped', 'not run')})",
+            f"realised on every pair at threshold {realised['threshold']:.3f}: called {realised['called']}, "
+            f"correct {realised['correct']} of {realised['planted']} planted; precision {realised['precision']:.3f}, "
+            f"recall {realised['recall']:.3f}",
             f"groups: {len(groups)}; report: nearsight groups --store {store_dir} --format html",
             f"try: nearsight similar {archive / 'scans-1987'} --store {store_dir} -k 3",
         ]
@@ -150,5 +189,9 @@ def run_demo(out: Path, *, seed: int = 7, originals: int = 160, progress: bool |
         "duplicates": {"called": len(called), "planted": len(planted), "correct": len(called & planted),
                        "precision": dup_precision, "recall": dup_recall,
                        "lookalikes_called": len(called & lookalikes), "thresholds": thresholds},
+        "calibration": {"headline": calibration["summary"]["headline"],
+                        "near": {k: v for k, v in calibration["tiers"]["near"]["at_threshold"].items()},
+                        "target_precision": calibration["tiers"]["near"]["target_precision"]} if calibration else None,
+        "realised_pairs": realised,
         "lines": lines,
     }

@@ -77,3 +77,31 @@ class ImageReadError(NearsightError):
 
     def to_dict(self) -> dict:
         return {"error": self.code, "reason": self.reason, "message": self.detail}
+
+
+class AuthError(NearsightError):
+    """A request without the API key, or with a wrong one (RFC 6750: 401 with WWW-Authenticate)."""
+
+    http_status = 401
+    code = "unauthorized"
+
+
+class ForbiddenError(NearsightError):
+    """A request this server is configured never to allow (e.g. writing with no API key set)."""
+
+    http_status = 403
+    code = "forbidden"
+
+
+class PayloadTooLargeError(NearsightError):
+    """A request body over the service's upload limit."""
+
+    http_status = 413
+    code = "payload_too_large"
+
+
+class UnsupportedMediaError(NearsightError):
+    """A request body of a media type the endpoint does not take (e.g. text where an image belongs)."""
+
+    http_status = 415
+    code = "unsupported_media_type"

@@ -6,11 +6,19 @@ A generation is a directory ``generations/<name>/`` holding ``index.faiss``,
 place, and only then does ``generations/CURRENT`` (written atomically) name it.
 A reader therefore sees the previous generation or the new one, never a
 half-written index; a run killed at any moment leaves at most a ``.tmp-*``
-directory that the next publish removes.
+directory that the next publish removes (or a complete directory no pointer
+names yet, which pruning removes in turn).
+
+Two more files let the next run update a generation instead of rebuilding it
+(`refresh.py`): ``items.npz`` (the file ids indexed and the content id of each)
+and ``pairs.npz`` (every pair at or above the similar threshold). Files are
+never changed once published, so a generation that changes nothing may share
+them with its predecessor through hard links.
 """
 
 from __future__ import annotations
 
+import io
 import json
 import logging
 import os
@@ -20,10 +28,12 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import faiss
+import numpy as np
 
 from . import index as faiss_index
-from .errors import NotReadyError, StoreError
+from .errors import NotReadyError, StoreError, UsageError
 from .fsutil import atomic_write_bytes, atomic_write_text, fsync_dir
+from .pause import pause_at
 from .store import Store
 
 log = logging.getLogger(__name__)
@@ -33,6 +43,11 @@ INDEX_FILE = "index.faiss"
 META_FILE = "meta.json"
 GROUPS_FILE = "groups.json"
 WHITENING_FILE = "whitening.npz"
+CALIBRATION_FILE = "calibration.json"
+CALIBRATION_EXTRAS = ("calibration.png", "calibration.txt")
+ITEMS_FILE = "items.npz"
+PAIRS_FILE = "pairs.npz"
+TIERS = ("near", "similar")
 
 
 @dataclass(frozen=True)
@@ -49,11 +64,71 @@ class Generation:
 
         return Whitening.load(self.path / WHITENING_FILE)
 
+    def load_calibration(self) -> dict | None:
+        """The calibration stored with this generation (see calibrate.py), or None."""
+        path = self.path / CALIBRATION_FILE
+        if not path.is_file():
+            return None
+        return json.loads(path.read_text(encoding="utf-8"))
+
+    def threshold(self, tier: str = "near", precision: float | None = None) -> float:
+        """The cosine threshold for a tier: the calibrated one, else the build's default; with
+        `precision`, the lowest calibrated threshold whose estimated precision reaches it."""
+        if tier not in TIERS:
+            raise UsageError(f"tier must be one of {', '.join(TIERS)}, not {tier!r}")
+        calibration = self.load_calibration()
+        if precision is None:
+            if calibration and tier in calibration.get("tiers", {}):
+                return float(calibration["tiers"][tier]["threshold"])
+            return float(self.meta["thresholds"][tier])
+        if not 0.0 < precision < 1.0:
+            raise UsageError(f"precision must be between 0 and 1 (exclusive), not {precision}")
+        if not calibration or tier not in calibration.get("tiers", {}):
+            raise NotReadyError(f"generation {self.name} has no calibration: run `nearsight calibrate` "
+                                "or give a threshold instead of a precision")
+        curve = calibration["tiers"][tier]["curve"]
+        return threshold_for_precision(curve["threshold"], curve["precision"], precision)
+
+    def load_items(self) -> tuple[np.ndarray, np.ndarray] | None:
+        """(file ids, content ids) this generation indexed, or None for a generation built before
+        they were stored."""
+        path = self.path / ITEMS_FILE
+        if not path.is_file():
+            return None
+        with np.load(path, allow_pickle=False) as data:
+            return data["ids"].astype(np.int64), data["contents"].astype(np.int64)
+
+    def load_pairs(self) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
+        """(a, b, sims): the pairs its groups were built from, or None (see load_items)."""
+        path = self.path / PAIRS_FILE
+        if not path.is_file():
+            return None
+        with np.load(path, allow_pickle=False) as data:
+            return data["a"].astype(np.int64), data["b"].astype(np.int64), data["sims"].astype(np.float32)
+
     def load_groups(self) -> dict:
         path = self.path / GROUPS_FILE
         if not path.is_file():
             return {"groups": []}
         return json.loads(path.read_text(encoding="utf-8"))
+
+
+def threshold_for_precision(thresholds, precisions, target: float) -> float:
+    """The lowest threshold from which every higher one has estimated precision >= target.
+
+    `thresholds` ascend; `precisions` are the estimates at each. Scanning from the top keeps
+    the answer on the safe side of any dip in a noisy curve. Undefined points (None) are skipped."""
+    chosen = None
+    for t, p in zip(reversed(thresholds), reversed(precisions)):
+        if p is None:  # above every measured positive: nothing to judge by
+            continue
+        if p < target:
+            break
+        chosen = t
+    if chosen is None:
+        best = max((p for p in precisions if p is not None), default=0.0)
+        raise UsageError(f"no threshold reaches precision {target}; the highest estimated is {best:.4f}")
+    return float(chosen)
 
 
 def _new_name(store: Store) -> str:
@@ -68,9 +143,24 @@ def _new_name(store: Store) -> str:
         time.sleep(1e-6)
 
 
-def publish(store: Store, index: faiss.Index, meta: dict, groups: dict, *, keep: int,
-            extra: dict[str, bytes] | None = None) -> Generation:
-    """Write a complete generation directory (plus `extra` files), then switch the pointer to it."""
+def npz_bytes(**arrays) -> bytes:
+    """Arrays as the bytes of an .npz file (for `publish`'s `extra`)."""
+    buf = io.BytesIO()
+    np.savez(buf, **arrays)
+    return buf.getvalue()
+
+
+def _link_or_copy(src: Path, dest: Path) -> None:
+    try:
+        os.link(src, dest)
+    except OSError:  # another file system, or links not allowed: a copy does the same
+        shutil.copy2(src, dest)
+
+
+def publish(store: Store, index: faiss.Index | None, meta: dict, groups: dict | None, *, keep: int,
+            extra: dict[str, bytes] | None = None, links: dict[str, Path] | None = None) -> Generation:
+    """Write a complete generation directory (plus `extra` files, and `links`: files of an earlier
+    generation shared unchanged), then switch the pointer to it."""
     root = store.generations_dir
     root.mkdir(parents=True, exist_ok=True)
     remove_incomplete(store)
@@ -78,15 +168,25 @@ def publish(store: Store, index: faiss.Index, meta: dict, groups: dict, *, keep:
     tmp = root / f".tmp-{name}"
     tmp.mkdir()
     meta = {**meta, "generation": name, "published_at": time.time()}
-    faiss_index.save_index(index, tmp / INDEX_FILE)
-    atomic_write_text(tmp / GROUPS_FILE, json.dumps(groups, sort_keys=True))
+    for filename, src in (links or {}).items():
+        _link_or_copy(src, tmp / filename)
+    if index is not None:
+        faiss_index.save_index(index, tmp / INDEX_FILE)
+    if groups is not None:
+        atomic_write_text(tmp / GROUPS_FILE, json.dumps(groups, sort_keys=True))
     for filename, data in (extra or {}).items():
         atomic_write_bytes(tmp / filename, data)
     atomic_write_text(tmp / META_FILE, json.dumps(meta, sort_keys=True, indent=2))
+    missing = [f for f in (INDEX_FILE, GROUPS_FILE) if not (tmp / f).is_file()]
+    if missing:
+        raise StoreError(f"generation {name} would lack {', '.join(missing)}")
+    fsync_dir(tmp)
+    pause_at("publish")
     os.rename(tmp, root / name)
     fsync_dir(root)
+    pause_at("pointer")
     store.write_pointer(POINTER, name)
-    log.info("published generation %s (%d vectors)", name, index.ntotal)
+    log.info("published generation %s (%s vectors)", name, meta.get("indexed", "?"))
     prune(store, keep)
     return Generation(name, root / name, meta)
 
@@ -112,11 +212,19 @@ def require_current(store: Store) -> Generation:
 
 
 def remove_incomplete(store: Store) -> int:
-    """Delete ``.tmp-*`` generation directories left by a killed publish."""
+    """Delete what a killed publish left (the caller holds the store's lock): ``.tmp-*``
+    directories, and complete directories newer than the current generation, which a run
+    killed between the rename and the pointer switch published to no one."""
     removed = 0
     for path in store.generations_dir.glob(".tmp-*"):
         shutil.rmtree(path, ignore_errors=True)
         removed += 1
+    cur = store.read_pointer(POINTER)
+    for path in store.generations_dir.glob("g-*"):
+        if path.is_dir() and (cur is None or path.name > cur):
+            log.info("removing generation %s: published by a run killed before the pointer named it", path.name)
+            shutil.rmtree(path, ignore_errors=True)
+            removed += 1
     return removed
 
 

@@ -1,7 +1,11 @@
-"""The main job as one call: scan -> train (first run) -> embed -> index and groups -> publish.
+"""The main job as one call: scan -> train (first run, or by the retrain policy) -> embed -> index
+and groups -> publish.
 
 Each stage is its own module; this one only runs them in order under the
-store's lock, times them and records the run in the catalog.
+store's lock, times them and records the run in the catalog. Run again on an
+existing store it is the nightly job: the scan finds what changed, only new
+contents are embedded, and `refresh.py` updates the previous generation in
+proportion to the change.
 """
 
 from __future__ import annotations
@@ -13,17 +17,18 @@ from typing import Sequence
 
 from . import generations
 from .models import current_model_dir
-from .scan import scan_source
+from .scan import scan_sources
 from .store import Store
 
 log = logging.getLogger(__name__)
 
 # Keys of the run summary that add up over source folders.
-COUNT_KEYS = ("seen", "new", "changed", "unchanged", "unreadable", "removed", "ignored", "same_bytes", "decoded")
+COUNT_KEYS = ("seen", "new", "changed", "moved", "unchanged", "unreadable", "removed", "ignored", "same_bytes",
+              "decoded")
 
 
 def _scan_all(store: Store, folders, progress) -> dict:
-    per_source = [scan_source(store, folder, progress=progress).to_dict() for folder in folders]
+    per_source = [s.to_dict() for s in scan_sources(store, folders, progress=progress)]
     summary = {key: sum(s[key] for s in per_source) for key in COUNT_KEYS}
     reasons: dict[str, int] = {}
     for s in per_source:
@@ -34,11 +39,20 @@ def _scan_all(store: Store, folders, progress) -> dict:
     return summary
 
 
-def _ensure_model(store: Store, train_config, progress) -> tuple[Path | None, dict | None]:
-    """The current model, training one first when the store has none."""
+def _ensure_model(store: Store, train_config, progress, retrain: str, stages: dict) -> tuple[Path | None, dict | None, dict]:
+    """The model to embed with: the current one, or a new one when the store has none or the
+    retrain policy says so (see retrain.py). Returns (model folder, training summary, decision)."""
+    from .retrain import decide
+
     model_dir = current_model_dir(store)
     if model_dir is not None:
-        return model_dir, None
+        started = time.monotonic()
+        decision = decide(store, model_dir, retrain, store.settings)
+        stages["retrain_check"] = time.monotonic() - started
+        if not decision["retrain"]:
+            return model_dir, None, decision
+    else:
+        decision = {"policy": retrain, "retrain": True, "reason": "the store has no model yet"}
     from .models import train_into_store
     from .train import MIN_TRAIN_IMAGES
 
@@ -46,16 +60,28 @@ def _ensure_model(store: Store, train_config, progress) -> tuple[Path | None, di
     if readable < MIN_TRAIN_IMAGES:
         log.warning("only %d readable images: too few to train an encoder (need %d); no index built",
                     readable, MIN_TRAIN_IMAGES)
-        return None, None
+        return model_dir, None, {**decision, "retrain": False, "reason": f"too few images to train ({readable})"}
+    started = time.monotonic()
     result = train_into_store(store, train_config, progress=progress)
+    stages["train"] = time.monotonic() - started
     return result.model_dir, {"model": result.version, "steps": result.steps, "heldout": result.heldout,
-                              "heldout_random_init": result.heldout_random_init}
+                              "heldout_random_init": result.heldout_random_init}, decision
 
 
 def run_index(store: Store, folders: Sequence[str | Path], *, progress: bool | None = None,
-              train_config=None, build: bool = True, index_spec: str | None = None) -> dict:
+              train_config=None, build: bool = True, index_spec: str | None = None, calibrate: bool = True,
+              retrain: str = "auto") -> dict:
     """Scan every folder into the store, then (with `build`) train if needed, embed, index, group and publish."""
+    from .retrain import POLICIES
+    from .errors import UsageError
+
+    if retrain not in POLICIES:
+        raise UsageError(f"--retrain must be one of {', '.join(POLICIES)}, not {retrain!r}")
     with store.lock():
+        interrupted = store.catalog.close_abandoned_runs("index")
+        if interrupted:
+            log.info("%d earlier index run(s) ended without finishing (killed); this run resumes their work",
+                     interrupted)
         run_id = store.catalog.start_run("index")
         stages: dict[str, float] = {}
         try:
@@ -64,27 +90,28 @@ def run_index(store: Store, folders: Sequence[str | Path], *, progress: bool | N
             stages["scan"] = time.monotonic() - started
             summary.update(embedded=0, generation=None)
             if build:
-                summary.update(_build(store, stages, progress, train_config, index_spec))
+                summary.update(_build(store, stages, progress, train_config, index_spec, calibrate, retrain))
         except BaseException as exc:
             store.catalog.finish_run(run_id, "failed", {"error": str(exc)})
             raise
         summary["stages"] = {k: round(v, 3) for k, v in stages.items()}
         summary["run"] = run_id
         store.catalog.finish_run(run_id, "ok", summary)
+    _log_summary(summary)
     return summary
 
 
-def _build(store: Store, stages: dict, progress, train_config, index_spec) -> dict:
-    from .build import build_generation
+def _build(store: Store, stages: dict, progress, train_config, index_spec, calibrate: bool, retrain: str) -> dict:
+    from .calibrate import CalibrationConfig
+    from .refresh import group_changes, refresh_generation
     from .train import TrainConfig
     from .vectors import embed_missing
 
     settings = store.settings
     out: dict = {}
-    started = time.monotonic()
     config = train_config or TrainConfig(minutes=settings.train_minutes)
-    model_dir, trained = _ensure_model(store, config, progress)
-    stages["train"] = time.monotonic() - started
+    model_dir, trained, decision = _ensure_model(store, config, progress, retrain, stages)
+    out["retrain"] = decision
     if trained:
         out["trained"] = trained
     if model_dir is None:
@@ -93,13 +120,32 @@ def _build(store: Store, stages: dict, progress, train_config, index_spec) -> di
     embedded = embed_missing(store, model_dir, progress=progress)
     stages["embed"] = time.monotonic() - started
     out.update(model=embedded["model"], embedded=embedded["embedded"], embed_failed=len(embedded["embed_failed"]))
-    built = build_generation(
-        store, model_dir, t_near=settings.near_threshold, t_similar=settings.similar_threshold,
-        index_spec=index_spec, keep=settings.keep_generations,
+    prev = generations.current(store)
+    before = prev.load_groups()["groups"] if prev is not None else []
+    built = refresh_generation(
+        store, model_dir, settings=settings, index_spec=index_spec,
+        calibration=CalibrationConfig(target_precision=settings.target_precision,
+                                      similar_target_precision=settings.similar_target_precision) if calibrate else None,
     )
     stages.update(built.pop("stages", {}))
     out.update(built)
+    if built.get("generation"):
+        after = generations.current(store).load_groups()["groups"]
+        out["group_changes"] = group_changes(before, after)
     return out
+
+
+def _log_summary(summary: dict) -> None:
+    log.info("changes: %s", ", ".join(f"{k} {summary[k]}" for k in ("new", "changed", "moved", "removed",
+                                                                      "unreadable", "unchanged")))
+    if "retrain" in summary:
+        log.info("model %s; retrain: %s", summary.get("model"), summary["retrain"].get("reason"))
+    if summary.get("generation"):
+        build = summary.get("build") or {}
+        log.info("generation %s (%s build: %s); %d embedded, %d indexed", summary["generation"], build.get("kind"),
+                 build.get("reason"), summary["embedded"], summary["indexed"])
+        log.info("groups: %s", ", ".join(f"{k} {v}" for k, v in summary.get("group_changes", {}).items()))
+    log.info("stages (s): %s", ", ".join(f"{k} {v}" for k, v in summary["stages"].items()))
 
 
 def store_status(store: Store) -> dict:

@@ -9,15 +9,15 @@ from __future__ import annotations
 import logging
 import os
 from pathlib import Path
-from typing import Iterator, Sequence
+from typing import Collection, Iterator, Sequence
 
 import numpy as np
 
 from . import index as faiss_index
 from .embed import embed_images
-from .errors import ImageReadError, NotFoundError
+from .errors import ImageReadError, NotFoundError, NotReadyError
 from .generations import require_current
-from .images import read_image
+from .images import ImageInfo, read_image
 from .model import load_model
 from .store import Store
 
@@ -52,30 +52,58 @@ class Searcher:
     def __init__(self, store: Store):
         self.store = store
         self.generation = require_current(store)
-        self.index = self.generation.load_index()
+        # Memory-mapped where FAISS allows: several service processes then share one copy in the page cache.
+        self.index = self.generation.load_index(mmap=True)
         self.whitening = self.generation.load_whitening()
         model_dir = store.models_dir / self.generation.meta["model"]
         self.encoder, self.card = load_model(model_dir)
         self.size = int(self.card["image_size"])
-        self.threshold = float(self.generation.meta["thresholds"]["near"])
+        self.threshold = self.generation.threshold("near")
 
     def vectors_for_images(self, images) -> np.ndarray:
         """Query vectors in the generation's space (encoder output, then its whitening)."""
         return self.whitening.apply(embed_images(self.encoder, images, self.size))
 
-    def neighbours(self, xq: np.ndarray, k: int, threshold: float | None = None) -> list[list[dict]]:
-        """Top-k neighbours for each query vector, as dicts with id, path, similarity, duplicate."""
+    def neighbours(self, xq: np.ndarray, k: int, threshold: float | None = None, *,
+                   catalog=None, exclude: Collection[int] = ()) -> list[list[dict]]:
+        """Top-k neighbours for each query vector, as dicts with id, path, similarity, duplicate.
+
+        `catalog` is the connection to read paths with (SQLite connections belong to one thread:
+        a multi-threaded caller passes its own; default the store's). Ids in `exclude` are left
+        out, and k more are asked for so that k remain."""
         threshold = self.threshold if threshold is None else threshold
-        D, I = faiss_index.search(self.index, np.ascontiguousarray(xq, dtype=np.float32), k)
-        paths = self.store.catalog.paths_for([int(i) for i in I.ravel() if i >= 0])
+        catalog = catalog if catalog is not None else self.store.catalog
+        D, I = faiss_index.search(self.index, np.ascontiguousarray(xq, dtype=np.float32), k + len(exclude))
+        paths = catalog.paths_for([int(i) for i in I.ravel() if i >= 0])
         out = []
         for d_row, i_row in zip(D, I):
             out.append([
                 {"id": int(i), "path": paths.get(int(i)), "similarity": round(float(d), 6),
                  "duplicate": bool(d >= threshold)}
-                for d, i in zip(d_row, i_row) if i >= 0
-            ])
+                for d, i in zip(d_row, i_row) if i >= 0 and int(i) not in exclude
+            ][:k])
         return out
+
+    def similar_to_upload(self, data, k: int, threshold: float | None = None, *, max_pixels: int | None,
+                          catalog=None) -> tuple[list[dict], ImageInfo]:
+        """Neighbours of one image given as bytes or a binary file object (an upload), decoded by
+        `read_image` like every other image; raises ImageReadError for anything not an image."""
+        image, info = read_image(data, max_side=2 * self.size, max_pixels=max_pixels)
+        return self.neighbours(self.vectors_for_images([image]), k, threshold, catalog=catalog)[0], info
+
+    def similar_to_id(self, file_id: int, k: int, threshold: float | None = None, *, catalog=None) -> list[dict]:
+        """Neighbours of a catalogued image, from its stored vector (no decoding); itself left out."""
+        catalog = catalog if catalog is not None else self.store.catalog
+        model = self.generation.meta["model"]
+        stored = catalog.file_vectors([file_id], model)
+        if file_id not in stored:
+            row = catalog.file(file_id)
+            if row is None:
+                raise NotFoundError(f"no image with id {file_id}")
+            raise NotReadyError(f"image {file_id} ({row['state']}) has no vector under model {model}; "
+                                "readable files get one at the next `nearsight index`")
+        xq = self.whitening.apply(stored[file_id][None, :])
+        return self.neighbours(xq, k, threshold, catalog=catalog, exclude={file_id})[0]
 
     def similar_files(self, paths: Sequence[str], k: int, threshold: float | None = None) -> Iterator[dict]:
         """One result object per query path, in order; unreadable queries carry an error."""

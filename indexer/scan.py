@@ -6,6 +6,14 @@ once (at reduced scale) to check that it is a readable image and to cache a
 small copy for later stages. Byte-identical files share one content row. Work
 is committed in chunks, so a run killed mid-way keeps what it finished and the
 next run resumes where it stopped.
+
+A file found at a path the catalog has never held, with bytes the catalog knows,
+is *moved* when a present row with those bytes has lost its own path (the old path
+is gone and its source folder is still there): that row takes the new path and
+keeps its id, so groups and verdicts stay with the image, also across source
+folders of one store. A copy whose original is still in place is *new*. Files not
+found are marked removed only after every folder of the run is scanned, so a move
+into a folder scanned later is still seen as a move.
 """
 
 from __future__ import annotations
@@ -24,6 +32,7 @@ from typing import Iterator
 from . import images
 from .errors import ImageReadError, NotFoundError, UsageError
 from .fsutil import hash_file
+from .pause import pause_at
 from .read_errors import os_error_reason
 from .progress import Progress
 from .store import Store
@@ -31,11 +40,12 @@ from .store import Store
 log = logging.getLogger(__name__)
 
 CHUNK_FILES = 256  # files per catalog transaction
+MIN_PARALLEL = 64  # files to hash or decode in one batch before worker processes are worth starting
 
 
 @dataclass
 class ScanSummary:
-    """Counts for one scan. new/changed/unchanged partition the image files seen;
+    """Counts for one scan. new/changed/unchanged/moved partition the image files seen;
     unreadable counts those among them that cannot be decoded."""
 
     source: str = ""
@@ -43,6 +53,7 @@ class ScanSummary:
     new: int = 0
     changed: int = 0
     unchanged: int = 0
+    moved: int = 0
     unreadable: int = 0
     removed: int = 0
     ignored: int = 0
@@ -51,25 +62,27 @@ class ScanSummary:
     folders_unreadable: int = 0
     seconds: float = 0.0
     reasons: Counter = field(default_factory=Counter)
+    source_id: int = 0
+    started: float = 0.0
 
     def to_dict(self) -> dict:
-        out = {k: v for k, v in self.__dict__.items() if k != "reasons"}
+        out = {k: v for k, v in self.__dict__.items() if k not in ("reasons", "source_id", "started")}
         out["unreadable_reasons"] = dict(self.reasons.most_common())
         out["seconds"] = round(self.seconds, 3)
         return out
 
 
-def _walk(root: Path, extensions: tuple[str, ...], skip_hidden: bool, exclude: Path) -> tuple[list[tuple[str, str]], int, int]:
+def _walk(root: Path, extensions: tuple[str, ...], skip_hidden: bool, exclude: set[Path]) -> tuple[list[tuple[str, str]], int, int]:
     """List (relpath, abspath) of image-named files; count ignored files and unlistable folders."""
     found: list[tuple[str, str]] = []
     ignored = 0
     folder_errors: list[OSError] = []
     for dirpath, dirnames, filenames in os.walk(root, onerror=folder_errors.append, followlinks=False):
         here = Path(dirpath)
-        # Never descend into the store itself, nor into hidden folders when asked.
+        # Never descend into the store itself or a quarantine folder, nor into hidden folders when asked.
         dirnames[:] = sorted(
             d for d in dirnames
-            if not (skip_hidden and d.startswith(".")) and (here / d).absolute() != exclude
+            if not (skip_hidden and d.startswith(".")) and (here / d).absolute() not in exclude
         )
         for name in sorted(filenames):
             if skip_hidden and name.startswith("."):
@@ -115,23 +128,52 @@ def _decode_one(job: tuple[str, int, int, str | None]) -> dict:
     }
 
 
-class _InProcess(Executor):
-    """Runs jobs in this process: small scans are not worth starting workers for."""
+class _Workers(Executor):
+    """Runs small batches in this process and large ones in worker processes, started on first need.
+
+    Starting workers costs seconds (each imports nearsight afresh), more than reading a few dozen
+    files, so a nightly scan that finds little to read never starts them."""
+
+    def __init__(self, workers: int):
+        self.workers = workers or os.cpu_count() or 1
+        self._pool: ProcessPoolExecutor | None = None
 
     def map(self, fn, *iterables, timeout=None, chunksize=1) -> Iterator:
-        return map(fn, *iterables)
+        items = list(zip(*iterables))
+        if self.workers <= 1 or len(items) < MIN_PARALLEL:
+            return iter([fn(*args) for args in items])
+        if self._pool is None:
+            # spawn, not fork: the parent may hold SQLite handles and threads.
+            self._pool = ProcessPoolExecutor(max_workers=self.workers,
+                                             mp_context=multiprocessing.get_context("spawn"))
+        return self._pool.map(fn, *zip(*items), timeout=timeout, chunksize=chunksize)
 
-
-def _executor(workers: int, n_files: int) -> Executor:
-    workers = workers or os.cpu_count() or 1
-    if workers <= 1 or n_files < 2 * CHUNK_FILES // 4:
-        return _InProcess()
-    # spawn, not fork: the parent may hold SQLite handles and threads.
-    return ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"))
+    def shutdown(self, wait=True, *, cancel_futures=False) -> None:
+        if self._pool is not None:
+            self._pool.shutdown(wait=wait, cancel_futures=cancel_futures)
 
 
 def scan_source(store: Store, folder: str | os.PathLike, *, progress: bool | None = None) -> ScanSummary:
     """Scan one folder recursively into the store's catalog and return the counts."""
+    return scan_sources(store, [folder], progress=progress)[0]
+
+
+def scan_sources(store: Store, folders, *, progress: bool | None = None) -> list[ScanSummary]:
+    """Scan every folder, then mark what each did not find as removed (moves between them are moves)."""
+    summaries = [_scan_one(store, folder, progress) for folder in folders]
+    for summary in summaries:
+        summary.removed = store.catalog.mark_missing_removed(summary.source_id, summary.started)
+        store.catalog.mark_source_scanned(summary.source_id, summary.started)
+        log.info(
+            "scanned %s: %d new, %d changed, %d moved, %d unchanged, %d unreadable, %d removed in %.1fs",
+            summary.source, summary.new, summary.changed, summary.moved, summary.unchanged, summary.unreadable,
+            summary.removed, summary.seconds,
+        )
+    return summaries
+
+
+def _scan_one(store: Store, folder: str | os.PathLike, progress: bool | None) -> ScanSummary:
+    """Scan one folder's files into the catalog (removals are marked by the caller)."""
     root = Path(folder)
     if not root.exists():
         raise NotFoundError(f"folder not found: {folder}")
@@ -140,29 +182,28 @@ def scan_source(store: Store, folder: str | os.PathLike, *, progress: bool | Non
     root = root.resolve()
     settings = store.settings
     catalog = store.catalog
+    quarantine_dirs = {Path(p) for p in catalog.quarantine_dirs()}
+    for qdir in quarantine_dirs:
+        if root == qdir or qdir in root.parents:
+            raise UsageError(f"{root} is inside the quarantine folder {qdir}: its files are copies moved "
+                             "out of a source, not new images (use `nearsight restore MANIFEST` to put them back)")
     started = time.time()
-    summary = ScanSummary(source=str(root))
-
     source_id = catalog.add_source(root)
+    summary = ScanSummary(source=str(root), source_id=source_id, started=started)
+
     known = catalog.files_of_source(source_id)
     candidates, summary.ignored, summary.folders_unreadable = _walk(
-        root, settings.extensions, settings.skip_hidden, store.root.resolve()
+        root, settings.extensions, settings.skip_hidden, {store.root.resolve(), *quarantine_dirs}
     )
     log.info("scanning %s: %d image files, %d other files ignored", root, len(candidates), summary.ignored)
 
-    with _executor(settings.workers, len(candidates)) as pool, Progress(len(candidates), "scan", enabled=progress) as bar:
+    with _Workers(settings.workers) as pool, Progress(len(candidates), "scan", enabled=progress) as bar:
         for start in range(0, len(candidates), CHUNK_FILES):
             chunk = candidates[start : start + CHUNK_FILES]
             _scan_chunk(store, source_id, known, chunk, pool, summary)
             bar.update(len(chunk))
-
-    summary.removed = catalog.mark_missing_removed(source_id, started)
-    catalog.mark_source_scanned(source_id, started)
+            pause_at("scan")
     summary.seconds = time.time() - started
-    log.info(
-        "scanned %s: %d new, %d changed, %d unchanged, %d unreadable, %d removed in %.1fs",
-        root, summary.new, summary.changed, summary.unchanged, summary.unreadable, summary.removed, summary.seconds,
-    )
     return summary
 
 
@@ -190,7 +231,8 @@ def _classify(chunk: list[tuple[str, str]], known: dict, summary: ScanSummary) -
     for relpath, abspath in chunk:
         summary.seen += 1
         row = known.get(relpath)
-        kind = "new" if row is None or row.state == "removed" else "changed"
+        # A quarantined file found at its path again (put back by hand, or another file) is read afresh.
+        kind = "new" if row is None or row.state in ("removed", "quarantined") else "changed"
         size = mtime_ns = None
         try:
             st = os.stat(abspath)
@@ -210,7 +252,7 @@ def _classify(chunk: list[tuple[str, str]], known: dict, summary: ScanSummary) -
         if problem is not None:
             size = mtime_ns = None
         records.append({"relpath": relpath, "abspath": abspath, "kind": kind, "size": size,
-                        "mtime_ns": mtime_ns, "reason": problem,
+                        "mtime_ns": mtime_ns, "reason": problem, "fresh_path": row is None,
                         "old_content_id": row.content_id if kind == "changed" else None})
     return records, unchanged_ids
 
@@ -250,15 +292,41 @@ def _record(catalog, source_id: int, records: list[dict], decoded: dict[str, dic
                         existing = catalog.content_by_hash(digest)
                         contents[digest] = (existing.id, existing.state, existing.reason)
                 content_id, state, reason = contents[digest]
+                moved_from = _moved_from(catalog, content_id) if rec["fresh_path"] and known_before else None
                 if content_id == rec["old_content_id"]:
                     kind = "unchanged"  # only the mtime moved: same bytes as before
+                elif moved_from is not None:
+                    kind = "moved"
                 elif known_before:
                     summary.same_bytes += 1
             if state == "unreadable":
                 _count_unreadable(summary, reason)
             setattr(summary, kind, getattr(summary, kind) + 1)
+            if kind == "moved":
+                log.debug("moved: %s -> %s", moved_from["path"], rec["abspath"])
+                catalog.move_file(conn, moved_from["id"], source_id, rec["relpath"], size=rec["size"],
+                                  mtime_ns=rec["mtime_ns"], now=now)
+                continue
             catalog.upsert_file(
                 conn, source_id, rec["relpath"], size=rec["size"], mtime_ns=rec["mtime_ns"],
                 content_id=content_id, state=state, reason=reason, now=now,
             )
         catalog.touch_files(conn, unchanged_ids, now)
+
+
+def _moved_from(catalog, content_id: int) -> dict | None:
+    """The present row with these bytes whose path is gone, if any (lowest id first).
+
+    A row whose whole source folder is missing (an unmounted disk) is not a candidate:
+    its files are absent, not moved."""
+    for row in catalog.vanished_with_content(content_id):
+        root = Path(row["root"])
+        old = root / row["relpath"]
+        try:
+            os.lstat(old)
+        except (FileNotFoundError, NotADirectoryError):
+            if root.is_dir():
+                return {"id": row["id"], "path": str(old)}
+        except OSError:  # unreachable, not gone
+            continue
+    return None

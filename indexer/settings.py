@@ -56,10 +56,49 @@ def _positive_float(value: Any) -> float:
     return number
 
 
+def _parse_list(value: Any) -> tuple[str, ...]:
+    """A TOML list, or comma-separated text (from a file, the environment or a flag)."""
+    items = value if isinstance(value, (list, tuple)) else str(value).split(",")
+    return tuple(str(item).strip() for item in items if str(item).strip())
+
+
+def _port(value: Any) -> int:
+    number = int(value)
+    if not 0 <= number <= 65535:
+        raise ValueError(f"expected a TCP port 0-65535 (0: any free port), got {value!r}")
+    return number
+
+
+def _api_key(value: Any) -> str:
+    text = str(value).strip()
+    if text and len(text) < 16:
+        raise ValueError("an API key needs at least 16 characters (shorter keys are easy to guess)")
+    return text
+
+
+def _origins(value: Any) -> tuple[str, ...]:
+    items = value if isinstance(value, (list, tuple)) else str(value).split(",")
+    return tuple(str(item).strip().rstrip("/") for item in items if str(item).strip())
+
+
+def _fraction(value: Any) -> float:
+    number = float(value)
+    if not number >= 0:
+        raise ValueError(f"expected a fraction >= 0 (0.2 = 20%), got {value!r}")
+    return number
+
+
 def _unit_float(value: Any) -> float:
     number = float(value)
     if not -1.0 <= number <= 1.0:
         raise ValueError(f"expected a cosine similarity between -1 and 1, got {value!r}")
+    return number
+
+
+def _precision(value: Any) -> float:
+    number = float(value)
+    if not 0.5 <= number < 1.0:
+        raise ValueError(f"expected a precision in [0.5, 1), got {value!r}")
     return number
 
 
@@ -69,6 +108,7 @@ class Setting:
     default: Any
     parse: Callable[[Any], Any]
     help: str
+    secret: bool = False  # listings show whether it is set, never the value
 
 
 SETTINGS: tuple[Setting, ...] = (
@@ -126,10 +166,133 @@ SETTINGS: tuple[Setting, ...] = (
         "Looser cosine similarity for the 'similar' tier of groups, until a calibration exists.",
     ),
     Setting(
+        "target_precision",
+        0.99,
+        _precision,
+        "Precision the calibrated near-duplicate threshold aims at: the estimated share of pairs "
+        "called near-duplicates that really are (see `nearsight calibrate`).",
+    ),
+    Setting(
+        "similar_target_precision",
+        0.90,
+        _precision,
+        "Precision the calibrated (looser) similar-tier threshold aims at.",
+    ),
+    Setting(
         "keep_generations",
         3,
         _positive_int,
         "Published index generations kept on disk (the current one always stays).",
+    ),
+    Setting(
+        "rebuild_fraction",
+        0.20,
+        _fraction,
+        "The nightly `index` updates the previous generation's index in place (add and remove by id, "
+        "regroup only what changed) until the files added, removed or changed since its last full build "
+        "exceed this fraction of the collection; then it rebuilds: whitening refitted, index rebuilt.",
+    ),
+    Setting(
+        "recalibrate_change",
+        0.10,
+        _fraction,
+        "A nightly `index` with the same model reuses the previous calibration's thresholds until the "
+        "files added, removed or changed since that calibration exceed this fraction of the collection.",
+    ),
+    Setting(
+        "retrain_growth",
+        0.50,
+        _fraction,
+        "`index --retrain auto` trains a new encoder when the collection has grown by more than this "
+        "fraction since the current model was trained.",
+    ),
+    Setting(
+        "retrain_heldout_drop",
+        0.10,
+        _fraction,
+        "`index --retrain auto` also retrains when the held-out recall@1 on images added since training "
+        "is lower than on the model's own held-out images by at least this much (and significantly).",
+    ),
+    Setting(
+        "retrain_check_images",
+        128,
+        _positive_int,
+        "Images on each side of that held-out comparison (at least 16 new images are needed to run it).",
+    ),
+    Setting(
+        "keep_paths",
+        "",
+        _parse_list,
+        "Paths or glob patterns of files `quarantine` never moves, even if a group then keeps "
+        "two files (comma-separated; first rule of the keeper policy).",
+    ),
+    Setting(
+        "prefer_folders",
+        "",
+        _parse_list,
+        "Folder patterns in order of preference: a group's keeper is the copy under the "
+        "earliest-listed one (second rule of the keeper policy).",
+    ),
+    Setting(
+        "prefer_formats",
+        "",
+        _parse_list,
+        "Image formats in order of preference, e.g. png,tiff: a group's keeper is the copy in "
+        "the earliest-listed format (third rule of the keeper policy).",
+    ),
+    Setting(
+        "serve_host",
+        "127.0.0.1",
+        str,
+        "Address `nearsight serve` listens on. Any address other than loopback needs `api_key`, "
+        "and then every request but /healthz and /readyz must carry it.",
+    ),
+    Setting(
+        "serve_port",
+        8080,
+        _port,
+        "TCP port `nearsight serve` listens on (0: any free port, printed at start).",
+    ),
+    Setting(
+        "serve_threads",
+        8,
+        _positive_int,
+        "Request threads of the HTTP service (one process; the index and model are loaded once).",
+    ),
+    Setting(
+        "api_key",
+        "",
+        _api_key,
+        "Bearer token (16+ characters) the HTTP service requires for writing (verdicts), and for "
+        "everything when it listens beyond loopback. Empty: `serve` makes a one-off key per start "
+        "and prints it with the review page's address.",
+        secret=True,
+    ),
+    Setting(
+        "max_upload_bytes",
+        32 * 1024 * 1024,
+        _positive_int,
+        "Largest image the HTTP service takes in one search request, in bytes (larger: 413).",
+    ),
+    Setting(
+        "max_upload_pixels",
+        50_000_000,
+        _positive_int,
+        "Largest uploaded image the HTTP service decodes, in pixels from its header (larger: 422 "
+        "too-large). Lower than max_pixels because a request decodes while others wait.",
+    ),
+    Setting(
+        "cors_origins",
+        "",
+        _origins,
+        "Web origins (comma-separated, e.g. https://catalog.example.org; * for any) whose pages may "
+        "call the HTTP API from a browser. Empty: CORS off.",
+    ),
+    Setting(
+        "serve_reload_s",
+        2.0,
+        _positive_float,
+        "How often, in seconds, the HTTP service checks for a newly published generation to swap in.",
     ),
 )
 
@@ -218,6 +381,7 @@ def describe() -> list[dict[str, str]]:
             "default": str(s.default),
             "env": ENV_PREFIX + s.name.upper(),
             "help": s.help,
+            "secret": s.secret,
         }
         for s in SETTINGS
     ]

@@ -333,6 +333,7 @@ def train(
     run = _run_loop(cache, encoder, head, config, out_dir, resume=resume, progress=progress, fingerprint=_fingerprint(kept))
     heldout, heldout_random = _compare_with_random_init(encoder, held_images, config)
     card = _model_card(config, run, images_given=len(images), trained_on=kept, held_out=len(held_images),
+                       held_paths=held_paths,
                        unreadable=len(skipped), heldout=(heldout, heldout_random), wall_s=time.monotonic() - started)
     version = save_model(out_dir, encoder, card)
     losses = run["losses"]
@@ -342,6 +343,7 @@ def train(
 
 
 def _model_card(config: TrainConfig, run: dict, *, images_given: int, trained_on: list[Path], held_out: int,
+                held_paths: Sequence[Path],
                 unreadable: int, heldout: tuple[dict, dict], wall_s: float) -> dict:
     """What `save_model` stores about a training run beside the weights."""
     return {
@@ -352,7 +354,9 @@ def _model_card(config: TrainConfig, run: dict, *, images_given: int, trained_on
         "loss": {"name": "nt_xent", "temperature": config.temperature, "queue_len": config.queue_len,
                  "koleo_weight": config.koleo_weight, "projection_head": [config.dim, 4 * config.proj_dim, config.proj_dim]},
         "data": {"images_given": images_given, "unreadable": unreadable, "trained_on": len(trained_on),
-                 "held_out": held_out, "fingerprint": _fingerprint(trained_on)},
+                 "held_out": held_out, "fingerprint": _fingerprint(trained_on),
+                 # Calibration draws its synthetic positives from these originals first.
+                 "heldout_paths": [str(p) for p in held_paths]},
         "steps": run["step"],
         "epochs": round(run["step"] * min(config.batch_size, len(trained_on)) / len(trained_on), 3),
         "stopped_by": run["stopped_by"],

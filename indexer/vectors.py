@@ -13,6 +13,7 @@ from pathlib import Path
 
 from .embed import iter_embed_files
 from .model import load_model
+from .pause import pause_at
 from .progress import Progress
 from .store import Store
 
@@ -32,6 +33,7 @@ def embed_missing(store: Store, model_dir: Path, *, batch_size: int = 64, worker
         for ids, xb, errors in iter_embed_files(paths, encoder, size, batch_size=batch_size, workers=workers):
             if len(ids):
                 store.catalog.put_vectors(version, [rows[i]["content_id"] for i in ids], xb)
+                pause_at("embed")
             embedded += len(ids)
             for i, reason in errors.items():
                 failed[str(Path(rows[i]["root"]) / rows[i]["relpath"])] = reason
