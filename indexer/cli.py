@@ -72,6 +72,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--workers", type=int, help="worker processes (default: setting `workers`)")
     p.add_argument("--scan-only", action="store_true", help="only scan: no training, embedding or index")
     p.add_argument("--index-spec", help="FAISS index_factory string for experts (default: chosen by collection size)")
+    p.add_argument("--cluster", metavar="ADDRESS",
+                   help="embed on the Dask cluster whose scheduler is at ADDRESS (e.g. tcp://10.0.0.5:8786); its "
+                        "workers must see the store and the source folders at the same paths")
     p.add_argument("--no-calibrate", action="store_true",
                    help="keep the default thresholds instead of calibrating them after the build")
     p.add_argument("--retrain", choices=("auto", "never", "always"), default="auto",

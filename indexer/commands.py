@@ -68,10 +68,10 @@ def cmd_index(args) -> int:
     from .pipeline import run_index
 
     with open_store(args, create=True) as store:
-        config = train_config(args, minutes=store.settings.train_minutes)
+        config = train_config(args, minutes=store.settings.train_minutes, max_images=store.settings.train_sample)
         summary = run_index(store, args.folders, progress=_progress(args), train_config=config,
                             build=not args.scan_only, index_spec=args.index_spec,
-                            calibrate=not args.no_calibrate, retrain=args.retrain)
+                            calibrate=not args.no_calibrate, retrain=args.retrain, cluster=args.cluster)
     if args.json:
         print_json(summary)
         return 0
@@ -193,7 +193,8 @@ def cmd_train(args) -> int:
                        "pairs_used": result.pairs_used, "pairs_skipped": result.pairs_skipped,
                        "before": result.before, "after": result.after}
             else:
-                result = train_into_store(store, train_config(args), resume=args.resume, progress=_progress(args))
+                config = train_config(args, max_images=store.settings.train_sample)
+                result = train_into_store(store, config, resume=args.resume, progress=_progress(args))
                 out = {"model": result.version, "steps": result.steps, "stopped_by": result.stopped_by,
                        "images": result.images_used, "unreadable": len(result.skipped),
                        "final_loss": result.final_loss, "images_per_s": result.images_per_s,

@@ -27,8 +27,14 @@ COUNT_KEYS = ("seen", "new", "changed", "moved", "unchanged", "unreadable", "rem
               "decoded")
 
 
-def _scan_all(store: Store, folders, progress) -> dict:
-    per_source = [s.to_dict() for s in scan_sources(store, folders, progress=progress)]
+def _scan_all(store: Store, folders, progress, cluster: str | None = None) -> dict:
+    if cluster:
+        from .cluster import dask_client
+
+        with dask_client(cluster) as client:
+            per_source = [s.to_dict() for s in scan_sources(store, folders, progress=progress, client=client)]
+    else:
+        per_source = [s.to_dict() for s in scan_sources(store, folders, progress=progress)]
     summary = {key: sum(s[key] for s in per_source) for key in COUNT_KEYS}
     reasons: dict[str, int] = {}
     for s in per_source:
@@ -70,8 +76,9 @@ def _ensure_model(store: Store, train_config, progress, retrain: str, stages: di
 
 def run_index(store: Store, folders: Sequence[str | Path], *, progress: bool | None = None,
               train_config=None, build: bool = True, index_spec: str | None = None, calibrate: bool = True,
-              retrain: str = "auto") -> dict:
-    """Scan every folder into the store, then (with `build`) train if needed, embed, index, group and publish."""
+              retrain: str = "auto", cluster: str | None = None) -> dict:
+    """Scan every folder into the store, then (with `build`) train if needed, embed, index, group and publish.
+    With `cluster` (a Dask scheduler address) the embedding runs on that cluster's workers."""
     from .retrain import POLICIES
     from .errors import UsageError
 
@@ -86,11 +93,12 @@ def run_index(store: Store, folders: Sequence[str | Path], *, progress: bool | N
         stages: dict[str, float] = {}
         try:
             started = time.monotonic()
-            summary = _scan_all(store, folders, progress)
+            summary = _scan_all(store, folders, progress, cluster)
             stages["scan"] = time.monotonic() - started
             summary.update(embedded=0, generation=None)
             if build:
-                summary.update(_build(store, stages, progress, train_config, index_spec, calibrate, retrain))
+                summary.update(_build(store, stages, progress, train_config, index_spec, calibrate, retrain,
+                                      cluster=cluster))
         except BaseException as exc:
             store.catalog.finish_run(run_id, "failed", {"error": str(exc)})
             raise
@@ -101,7 +109,8 @@ def run_index(store: Store, folders: Sequence[str | Path], *, progress: bool | N
     return summary
 
 
-def _build(store: Store, stages: dict, progress, train_config, index_spec, calibrate: bool, retrain: str) -> dict:
+def _build(store: Store, stages: dict, progress, train_config, index_spec, calibrate: bool, retrain: str, *,
+           cluster: str | None = None) -> dict:
     from .calibrate import CalibrationConfig
     from .refresh import group_changes, refresh_generation
     from .train import TrainConfig
@@ -109,7 +118,7 @@ def _build(store: Store, stages: dict, progress, train_config, index_spec, calib
 
     settings = store.settings
     out: dict = {}
-    config = train_config or TrainConfig(minutes=settings.train_minutes)
+    config = train_config or TrainConfig(minutes=settings.train_minutes, max_images=settings.train_sample)
     model_dir, trained, decision = _ensure_model(store, config, progress, retrain, stages)
     out["retrain"] = decision
     if trained:
@@ -117,7 +126,7 @@ def _build(store: Store, stages: dict, progress, train_config, index_spec, calib
     if model_dir is None:
         return out
     started = time.monotonic()
-    embedded = embed_missing(store, model_dir, progress=progress)
+    embedded = embed_missing(store, model_dir, progress=progress, cluster=cluster)
     stages["embed"] = time.monotonic() - started
     out.update(model=embedded["model"], embedded=embedded["embedded"], embed_failed=len(embedded["embed_failed"]))
     prev = generations.current(store)

@@ -153,14 +153,38 @@ class _Workers(Executor):
             self._pool.shutdown(wait=wait, cancel_futures=cancel_futures)
 
 
+def _run_chunk(fn, chunk: list[tuple]) -> list:
+    return [fn(*args) for args in chunk]
+
+
+class _ClusterWorkers(Executor):
+    """The same `map`, run by a Dask cluster's workers (cluster.py): hashing and decoding, the
+    expensive part of a scan, spread over machines that see the same paths. Files go in chunks
+    so that the scheduler's per-task cost stays small; a lost worker's chunk is rerun."""
+
+    CHUNK = 64
+
+    def __init__(self, client):
+        self.client = client
+
+    def map(self, fn, *iterables, timeout=None, chunksize=1) -> Iterator:
+        from .cluster import RETRIES
+
+        items = list(zip(*iterables))
+        chunks = [items[i : i + self.CHUNK] for i in range(0, len(items), self.CHUNK)]
+        futures = self.client.map(_run_chunk, [fn] * len(chunks), chunks, pure=False, retries=RETRIES)
+        return (result for future in futures for result in future.result())
+
+
 def scan_source(store: Store, folder: str | os.PathLike, *, progress: bool | None = None) -> ScanSummary:
     """Scan one folder recursively into the store's catalog and return the counts."""
     return scan_sources(store, [folder], progress=progress)[0]
 
 
-def scan_sources(store: Store, folders, *, progress: bool | None = None) -> list[ScanSummary]:
-    """Scan every folder, then mark what each did not find as removed (moves between them are moves)."""
-    summaries = [_scan_one(store, folder, progress) for folder in folders]
+def scan_sources(store: Store, folders, *, progress: bool | None = None, client=None) -> list[ScanSummary]:
+    """Scan every folder, then mark what each did not find as removed (moves between them are moves).
+    With a Dask `client`, its workers hash and decode (they must see the folders and the store)."""
+    summaries = [_scan_one(store, folder, progress, client) for folder in folders]
     for summary in summaries:
         summary.removed = store.catalog.mark_missing_removed(summary.source_id, summary.started)
         store.catalog.mark_source_scanned(summary.source_id, summary.started)
@@ -172,7 +196,7 @@ def scan_sources(store: Store, folders, *, progress: bool | None = None) -> list
     return summaries
 
 
-def _scan_one(store: Store, folder: str | os.PathLike, progress: bool | None) -> ScanSummary:
+def _scan_one(store: Store, folder: str | os.PathLike, progress: bool | None, client=None) -> ScanSummary:
     """Scan one folder's files into the catalog (removals are marked by the caller)."""
     root = Path(folder)
     if not root.exists():
@@ -197,7 +221,8 @@ def _scan_one(store: Store, folder: str | os.PathLike, progress: bool | None) ->
     )
     log.info("scanning %s: %d image files, %d other files ignored", root, len(candidates), summary.ignored)
 
-    with _Workers(settings.workers) as pool, Progress(len(candidates), "scan", enabled=progress) as bar:
+    workers = _ClusterWorkers(client) if client is not None else _Workers(settings.workers)
+    with workers as pool, Progress(len(candidates), "scan", enabled=progress) as bar:
         for start in range(0, len(candidates), CHUNK_FILES):
             chunk = candidates[start : start + CHUNK_FILES]
             _scan_chunk(store, source_id, known, chunk, pool, summary)

@@ -152,6 +152,13 @@ SETTINGS: tuple[Setting, ...] = (
         "Training budget in minutes when `index` finds no model in the store.",
     ),
     Setting(
+        "train_sample",
+        10_000,
+        _positive_int,
+        "Training uses a random sample of at most this many images, so its cost does not grow "
+        "with the collection.",
+    ),
+    Setting(
         "near_threshold",
         0.50,
         _unit_float,

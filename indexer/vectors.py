@@ -20,9 +20,23 @@ from .store import Store
 log = logging.getLogger(__name__)
 
 
+def _local_blocks(paths, model_dir: Path, encoder, size: int, batch_size: int, workers: int):
+    yield from iter_embed_files(paths, encoder, size, batch_size=batch_size, workers=workers)
+
+
+def _cluster_blocks(paths, model_dir: Path, address: str):
+    """The same (ids, vectors, errors) blocks, computed by a Dask cluster's workers (cluster.py)."""
+    from .cluster import dask_client, iter_on_client
+
+    with dask_client(address) as client:
+        for r in iter_on_client(client, [str(p) for p in paths], model_dir):
+            yield r.start + r.ok, r.vectors, {r.start + k: v for k, v in r.errors.items()}
+
+
 def embed_missing(store: Store, model_dir: Path, *, batch_size: int = 64, workers: int = 0,
-                  progress: bool | None = None) -> dict:
-    """Embed what the current model has not seen; returns counts and timing."""
+                  progress: bool | None = None, cluster: str | None = None) -> dict:
+    """Embed what the current model has not seen; returns counts and timing. With `cluster` (a Dask
+    scheduler address) the workers embed and this process alone writes the catalog."""
     encoder, card = load_model(model_dir)
     version, size = card["version"], int(card["image_size"])
     rows = store.catalog.contents_missing_vectors(version)
@@ -30,7 +44,9 @@ def embed_missing(store: Store, model_dir: Path, *, batch_size: int = 64, worker
     paths = [store.pixels_path(row) for row in rows]
     embedded, failed = 0, {}
     with Progress(len(paths), "embed", enabled=progress) as bar:
-        for ids, xb, errors in iter_embed_files(paths, encoder, size, batch_size=batch_size, workers=workers):
+        blocks = (_cluster_blocks(paths, model_dir, cluster) if cluster
+                  else _local_blocks(paths, model_dir, encoder, size, batch_size, workers))
+        for ids, xb, errors in blocks:
             if len(ids):
                 store.catalog.put_vectors(version, [rows[i]["content_id"] for i in ids], xb)
                 pause_at("embed")
