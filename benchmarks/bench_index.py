@@ -22,7 +22,6 @@ from __future__ import annotations
 import argparse
 import logging
 import os
-import platform
 import resource
 import sys
 import tempfile
@@ -31,7 +30,6 @@ from pathlib import Path
 
 import faiss
 import numpy as np
-import scipy
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
@@ -180,17 +178,9 @@ def bench_queries(xb, ids, seed, nq=300):
 
 
 def machine() -> str:
-    model = "unknown CPU"
-    try:
-        for line in open("/proc/cpuinfo", encoding="utf-8"):
-            if line.startswith("model name"):
-                model = line.split(":", 1)[1].strip()
-                break
-    except OSError:
-        pass
-    return (f"{model}, {os.cpu_count()} cores, {platform.machine()}, Python {platform.python_version()}, "
-            f"NumPy {np.__version__}, SciPy {scipy.__version__}, FAISS {faiss.__version__}, "
-            f"FAISS threads {faiss.omp_get_max_threads()}")
+    from benchmarks.common import machine as machine_line
+
+    return f"{machine_line()}; FAISS threads {faiss.omp_get_max_threads()}"
 
 
 def report(g: dict, queries: list[dict], args) -> str:

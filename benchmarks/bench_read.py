@@ -56,6 +56,17 @@ def make_files(folder: Path, count: int, small: int, seed: int) -> tuple[list[Pa
     return large, small_files
 
 
+def make_small_jpegs(folder: Path, count: int, seed: int, size: tuple[int, int] = (1024, 768)) -> list[Path]:
+    """Web-sized camera exports: `count` photo-like 1024x768 JPEGs at quality 85."""
+    rng = np.random.default_rng(seed)
+    paths = []
+    for index in range(count):
+        path = folder / f"export_{index:03d}.jpg"
+        photo_like(rng, *size).save(path, "JPEG", quality=85)
+        paths.append(path)
+    return paths
+
+
 def full_decode_then_resize(path: Path, side: int) -> Image.Image:
     """The reference route: every pixel decoded, then the same resize as read_image."""
     with Image.open(path) as im:

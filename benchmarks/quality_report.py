@@ -1,0 +1,160 @@
+"""The quality benchmark's Markdown report, from the figures bench_quality.py gathered."""
+
+from __future__ import annotations
+
+import math
+
+from benchmarks.protocol import FAMILIES
+
+METRICS = (("uap", "µAP"), ("r1", "recall@1"), ("r_p90", "recall at precision 0.90"),
+           ("r_p99", "recall at precision 0.99"))
+
+
+def _f(x, digits: int = 3) -> str:
+    if x is None or (isinstance(x, float) and math.isnan(x)):
+        return "n/a"
+    return f"{x:.{digits}f}"
+
+
+def _wilson(k: int, n: int) -> str:
+    from indexer.rates import wilson_interval
+
+    if n == 0:
+        return "n/a"
+    lo, hi = wilson_interval(k, n)
+    return f"{float(lo):.3f}-{float(hi):.3f}"
+
+
+def _families(results: dict) -> list[str]:
+    present = {f for _t, f in results["queries"]["transforms"]}
+    return [f for f in FAMILIES if f in present]
+
+
+def _runs_table(results: dict) -> list[str]:
+    lines = ["| system | training budget | steps reached | held-out recall@1 (trained / random init) | "
+             "load average before / after | index run wall time (s) |", "|---|---:|---:|---|---|---:|"]
+    for name, run in results["runs"].items():
+        held = run.get("heldout") or {}
+        rand = run.get("heldout_random_init") or {}
+        held_s = "n/a" if not held else f"{_f(held.get('recall_at_1'))} / {_f(rand.get('recall_at_1'))}"
+        load = (f"{run['load_before']:.2f} / {run['load_after']:.2f}" if "load_before" in run else "n/a")
+        lines.append(f"| {name} | {run['budget_minutes']:g} min | {run['steps']} | {held_s} | {load} | {run['wall_s']:.0f} |")
+    return lines
+
+
+def _overall_table(results: dict) -> list[str]:
+    lines = ["| system | " + " | ".join(label for _k, label in METRICS) + " |", "|---|" + "---:|" * len(METRICS)]
+    for name, entry in results["systems"].items():
+        m = entry["metrics"]["overall"]
+        lines.append(f"| {name} | " + " | ".join(_f(m[k]) for k, _label in METRICS) + " |")
+    return lines
+
+
+def _per_group_table(results: dict, key: str, groups: list[str], metric: str) -> list[str]:
+    systems = list(results["systems"])
+    lines = [f"| {key} | queries (with a match) | " + " | ".join(systems) + " |",
+             "|---|---:|" + "---:|" * len(systems)]
+    for g in groups:
+        first = results["systems"][systems[0]]["metrics"][key][g]
+        cells = [_f(results["systems"][s]["metrics"][key][g][metric]) for s in systems]
+        lines.append(f"| {g} | {first['queries']} ({first['positives']}) | " + " | ".join(cells) + " |")
+    return lines
+
+
+def _verdict_table(results: dict) -> list[str]:
+    lines = ["| system | threshold | target precision | calibration's estimate (precision / recall) | "
+             "called | correct | realised precision (95 % Wilson) | realised recall |",
+             "|---|---:|---:|---|---:|---:|---|---:|"]
+    for name, entry in results["systems"].items():
+        if "verdict" not in entry:
+            continue
+        v = entry["verdict"]["overall"]
+        cal = entry.get("calibration")
+        target = _f(cal["target"], 2) if cal else ("pHash cut, Hamming <= 10" if name == "phash" else "none")
+        estimate = (f"{_f(cal['estimated_precision'])} / {_f(cal['estimated_recall'])}"
+                    f"{'' if cal.get('target_met') else ' (target not met)'}" if cal else "n/a")
+        lines.append(f"| {name} | {v['threshold']:.3f} | {target} | {estimate} | {v['called']} | {v['correct']} | "
+                     f"{_f(v['precision'])} ({_wilson(v['correct'], v['called'])}) | {_f(v['recall'])} |")
+    return lines
+
+
+def _wrong_calls_table(results: dict) -> list[str]:
+    kinds = ("tile of the same photo", "another photo", "distractor", "for queries without a match")
+    lines = ["| system | wrong calls | " + " | ".join(kinds) + " |", "|---|---:|" + "---:|" * len(kinds)]
+    for name, entry in results["systems"].items():
+        w = entry.get("wrong_calls")
+        if w is None:
+            continue
+        lines.append(f"| {name} | {entry['verdict']['overall']['called'] - entry['verdict']['overall']['correct']} | "
+                     + " | ".join(str(w[k]) for k in kinds) + " |")
+    return lines
+
+
+def _verdict_families(results: dict, system: str, families: list[str]) -> list[str]:
+    entry = results["systems"][system]["verdict"]
+    lines = ["| family | queries with a match | called | correct | realised precision (95 % Wilson) | realised recall |",
+             "|---|---:|---:|---:|---|---:|"]
+    for f in ["overall", *families]:
+        v = entry[f]
+        lines.append(f"| {f} | {v['positives']} | {v['called']} | {v['correct']} | {_f(v['precision'])} "
+                     f"({_wilson(v['correct'], v['called'])}) | {_f(v['recall'])} |")
+    return lines
+
+
+def render(results: dict, command: str) -> str:
+    c, q = results["collection"], results["queries"]
+    families = _families(results)
+    trained = [s for s in results["systems"] if s.startswith("nearsight") and "untrained" not in s]
+    best = trained[-1] if trained else None
+    lines = [
+        "# Copy-detection quality: nearsight against pHash and a thumbnail baseline",
+        "",
+        f"Machine (start): {results['machine']}",
+        f"Machine (end): {results['machine_end']}",
+        "",
+        f"Command: `{command}` ({results['wall_s'] / 60:.0f} minutes wall time).",
+        "",
+        f"Collection indexed: {c['files']} files = {c['indexed_tiles']} photo tiles + {c['distractors']} distractors "
+        f"(originals and look-alikes of the invented demo archive). Photo tiles: {c['photo_tiles']} non-overlapping "
+        f"tiles of {len(c['sources'])} photos shipped by scikit-image, scikit-learn and matplotlib; "
+        f"{c['photo_tiles'] - c['indexed_tiles']} of them are kept out of the index.",
+        f"Queries: {q['total']} = {len(q['transforms'])} transforms x {c['photo_tiles']} tiles; {q['with_match']} have "
+        f"their original in the index, the other {q['total'] - q['with_match']} have none (every prediction for them "
+        "is false). Protocol: benchmarks/protocol.py (Copydays-style JPEG ladder, crops and strong combinations; "
+        "ImageNet-C corruptions at severities 1-3; overlays, borders, flips, rotations).",
+        "Every system returns its top 10 per query; metrics in benchmarks/metrics.py (µAP as defined for DISC21, "
+        "Douze et al. 2021: all predictions pooled and ranked by score, recall over the queries that have a match).",
+        "",
+        "## Training runs",
+        "",
+        *_runs_table(results),
+        "",
+        "## Overall",
+        "",
+        *_overall_table(results),
+        "",
+        "## µAP per transformation family",
+        "",
+        *_per_group_table(results, "family", families, "uap"),
+        "",
+        "## recall@1 per transformation family",
+        "",
+        *_per_group_table(results, "family", families, "r1"),
+        "",
+        "## The calibrated `duplicate` verdict, realised",
+        "",
+        "nearsight calls a result a duplicate when its similarity reaches the generation's calibrated threshold "
+        "(the `near` tier, aimed at the stated precision on the collection's own pairs). Realised here on every "
+        "top-10 prediction of every query. pHash has no calibration; its row uses the common Hamming <= 10 cut "
+        "for comparison.",
+        "",
+        *_verdict_table(results),
+    ]
+    if any("wrong_calls" in e for e in results["systems"].values()):
+        lines += ["", "What the wrong calls were (the last column counts the calls made for queries whose original "
+                  "is not indexed, whatever they called):", "", *_wrong_calls_table(results)]
+    if best:
+        lines += ["", f"### Per family, {best}", "", *_verdict_families(results, best, families)]
+    lines += ["", "## µAP per transform", "",
+              *_per_group_table(results, "transform", [t for t, _f2 in q["transforms"]], "uap"), ""]
+    return "\n".join(lines)
