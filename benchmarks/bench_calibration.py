@@ -31,35 +31,14 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from benchmarks.common import machine  # noqa: E402
-from indexer.build import load_vectors, recalibrate  # noqa: E402
+from indexer.build import recalibrate  # noqa: E402
 from indexer.calibrate import CalibrationConfig  # noqa: E402
-from indexer.demo import pair_quality, run_demo  # noqa: E402
+from indexer.demo import demo_pairs, pair_quality, run_demo  # noqa: E402
 from indexer.generations import require_current  # noqa: E402
 from indexer.settings import load_settings  # noqa: E402
 from indexer.store import Store  # noqa: E402
 
 TARGETS = (0.95, 0.99, 0.995)
-
-
-def demo_pairs(store: Store, truth: dict) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(similarity matrix, pair rows (a, b) with different bytes, planted truth per pair)."""
-    gen = require_current(store)
-    ids, xb = load_vectors(store, gen.meta["model"])
-    xb = gen.load_whitening().apply(xb)
-    meta = store.catalog.image_meta(ids.tolist())
-    base = Path(store.catalog.sources()[0]["root"]).parent
-    rel = [Path(meta[int(i)]["path"]).relative_to(base).as_posix() for i in ids]
-    digest = [meta[int(i)]["content_hash"] for i in ids]
-    planted = {frozenset(p) for g in truth["duplicate_groups"] for p in _pairs(g)}
-    a, b = np.triu_indices(len(ids), 1)
-    keep = np.array([digest[i] != digest[j] for i, j in zip(a, b)])
-    a, b = a[keep], b[keep]
-    y = np.array([frozenset((rel[i], rel[j])) in planted for i, j in zip(a, b)])
-    return xb @ xb.T, np.stack([a, b]), y
-
-
-def _pairs(group):
-    return [(x, y) for i, x in enumerate(group) for y in group[i + 1:]]
 
 
 def oracle_recall(scores: np.ndarray, y: np.ndarray, target: float) -> tuple[float, float]:

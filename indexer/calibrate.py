@@ -147,14 +147,14 @@ def neighbour_hits(store: Store, index, ids: np.ndarray, xb: np.ndarray, query_r
     return np.asarray(hits, dtype=np.float64), excluded
 
 
-def verdict_scores(store: Store, ids: np.ndarray, xb: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def verdict_scores(store: Store, ids: np.ndarray, xb: np.ndarray, verdicts: list[dict]) -> tuple[np.ndarray, np.ndarray]:
     """(similarity, 1 for "same") for each pair with a person's latest verdict, both sides indexed."""
     content = store.catalog.content_ids_of(ids.tolist())
     row_of_content: dict[int, int] = {}
     for r, i in enumerate(ids.tolist()):
         row_of_content.setdefault(content.get(i), r)
     sims, labels = [], []
-    for v in store.catalog.latest_verdicts():
+    for v in verdicts:
         a, b = row_of_content.get(v["content_a"]), row_of_content.get(v["content_b"])
         if a is not None and b is not None:
             sims.append(float(xb[a] @ xb[b]))
@@ -279,8 +279,9 @@ def calibrate(store: Store, *, model_dir: Path, index, ids: np.ndarray, xb: np.n
     # most synthetic copies so that the fit sees where duplicates score.
     floor = min(floor, float(np.quantile(positives["near"][0], 0.05)))
     query_rows = np.sort(rng.choice(n, min(config.queries, n), replace=False))
-    verdict_s, verdict_y = verdict_scores(store, ids, xb)
-    same_pairs = {(v["content_a"], v["content_b"]) for v in store.catalog.latest_verdicts() if v["verdict"] == "same"}
+    latest = store.catalog.latest_verdicts()
+    verdict_s, verdict_y = verdict_scores(store, ids, xb, latest)
+    same_pairs = {(v["content_a"], v["content_b"]) for v in latest if v["verdict"] == "same"}
     hits, excluded = neighbour_hits(store, index, ids, xb, query_rows, floor, meta, same_pairs)
 
     grid = np.round(np.arange(np.floor(floor / GRID_STEP) * GRID_STEP, 1.0 + GRID_STEP / 2, GRID_STEP), 4)

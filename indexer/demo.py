@@ -72,9 +72,9 @@ def _called_pairs(groups: list[dict], relative) -> set[frozenset]:
     return _pairs(s for s in sets if len(s) > 1)
 
 
-def pair_quality(store: Store, truth: dict, thresholds: dict[str, float]) -> dict:
-    """Realised precision and recall of "sim >= t" over every pair of indexed demo files with
-    different bytes, against the planted truth (the check the calibration's estimate must pass)."""
+def demo_pairs(store: Store, truth: dict):
+    """Every pair of indexed demo files with different bytes: (similarity matrix, pair rows (a, b),
+    planted truth per pair), in the current generation's whitened space."""
     import numpy as np
 
     from .build import load_vectors
@@ -88,11 +88,18 @@ def pair_quality(store: Store, truth: dict, thresholds: dict[str, float]) -> dic
     rel = [Path(meta[int(i)]["path"]).relative_to(base).as_posix() for i in ids]
     digest = [meta[int(i)]["content_hash"] for i in ids]
     planted = _pairs(truth["duplicate_groups"])
-    sims = xb @ xb.T
     a, b = np.triu_indices(len(ids), 1)
     keep = np.array([digest[i] != digest[j] for i, j in zip(a, b)], dtype=bool)
-    a, b, s = a[keep], b[keep], sims[a[keep], b[keep]]
+    a, b = a[keep], b[keep]
     is_planted = np.array([frozenset((rel[i], rel[j])) in planted for i, j in zip(a, b)], dtype=bool)
+    return xb @ xb.T, np.stack([a, b]), is_planted
+
+
+def pair_quality(store: Store, truth: dict, thresholds: dict[str, float]) -> dict:
+    """Realised precision and recall of "sim >= t" over every pair of indexed demo files with
+    different bytes, against the planted truth (the check the calibration's estimate must pass)."""
+    sims, (a, b), is_planted = demo_pairs(store, truth)
+    s = sims[a, b]
     out_figures = {}
     for name, t in thresholds.items():
         called = s >= t

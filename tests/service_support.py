@@ -250,3 +250,60 @@ def artifacts_dir() -> Path:
     path = ROOT / "test-artifacts"
     path.mkdir(exist_ok=True)
     return path
+
+
+# -- clients querying while a generation is swapped -----------------------------------------------
+class QueryLoad:
+    """`clients` threads sending `request(client, i)` to a server until the block ends; every
+    answer is kept as (started, finished, status or None, generation header or the error)."""
+
+    def __init__(self, server: "ServerProcess", clients: int, request):
+        self.server, self.request = server, request
+        self.answers: list[tuple] = []
+        self._lock = threading.Lock()
+        self._stop = threading.Event()
+        self._threads = [threading.Thread(target=self._run, args=(n,)) for n in range(clients)]
+
+    def _run(self, n: int) -> None:
+        c = self.server.client()
+        i = n
+        while not self._stop.is_set():
+            i += 1
+            started = time.monotonic()
+            try:
+                r = self.request(c, i)
+                outcome = (r.status, r.headers.get("x-nearsight-generation"))
+            except Exception as exc:  # a failed request is what these tests look for
+                outcome = (None, repr(exc))
+            with self._lock:
+                self.answers.append((started, time.monotonic(), *outcome))
+        c.close()
+
+    def __enter__(self) -> "QueryLoad":
+        for t in self._threads:
+            t.start()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._stop.set()
+        for t in self._threads:
+            t.join(timeout=60)
+
+    def wait_for(self, generation: str, settle_s: float, timeout: float = 60) -> None:
+        """Until `generation` has been answering for `settle_s` seconds (or the timeout)."""
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            with self._lock:
+                seen = [a for a in self.answers if a[3] == generation]
+            if seen and time.monotonic() - min(a[1] for a in seen) > settle_s:
+                return
+            time.sleep(0.1)
+
+    def assert_swapped(self, old: str, new: str) -> None:
+        """No request failed, both generations answered, and none after the first new answer was old."""
+        failed = [a for a in self.answers if a[2] != 200]
+        assert not failed, failed[:5]
+        assert {a[3] for a in self.answers} == {old, new}
+        first_new = min(a[1] for a in self.answers if a[3] == new)
+        stale = [a for a in self.answers if a[0] > first_new and a[3] != new]
+        assert not stale, stale[:5]

@@ -16,7 +16,6 @@ import shutil
 import signal
 import subprocess
 import sys
-import threading
 import time
 from pathlib import Path
 
@@ -503,7 +502,7 @@ def test_a_new_model_is_built_beside_the_served_generation_and_replaces_it_only_
 
 @pytest.mark.slow
 def test_a_running_service_swaps_to_the_nightly_generation_without_a_failed_request(service_store, tmp_path, run_cli):
-    from .service_support import ServerProcess
+    from .service_support import QueryLoad, ServerProcess
 
     store_dir = service_store.copy("nightly")
     arrivals = tmp_path / "arrivals"
@@ -511,57 +510,26 @@ def test_a_running_service_swaps_to_the_nightly_generation_without_a_failed_requ
     server = ServerProcess(store_dir).start()
     with Store.open(store_dir, settings=_settings(store_dir)) as store:
         old = generations.current(store).name
-    answers = []            # (started, finished, status or None, generation or error)
-    lock = threading.Lock()
-    stop = threading.Event()
+    def request(c, i):
+        return c.get(f"/v1/images/{1 + i % 150}/similar?k=5" if i % 2 else "/v1/groups?limit=5")
 
-    def client(n: int) -> None:
-        c = server.client()
-        i = n
-        while not stop.is_set():
-            i += 1
-            started = time.monotonic()
-            try:
-                r = c.get(f"/v1/images/{1 + i % 150}/similar?k=5" if i % 2 else "/v1/groups?limit=5")
-                outcome = (r.status, r.headers.get("x-nearsight-generation"))
-            except Exception as exc:  # a failed request is what this test looks for
-                outcome = (None, repr(exc))
-            with lock:
-                answers.append((started, time.monotonic(), *outcome))
-        c.close()
-
-    threads = [threading.Thread(target=client, args=(n,)) for n in range(3)]
     try:
-        for t in threads:
-            t.start()
-        time.sleep(1.0)
-        nightly = run_cli("index", service_store.archive, arrivals, "--store", store_dir, *NIGHTLY_FLAGS, "--json",
-                          env=_nightly_env())
-        assert nightly.returncode == 0, nightly.stderr
-        summary = json.loads(nightly.stdout)
-        assert (summary["new"], summary["embedded"], summary["build"]["kind"]) == (2, 2, "incremental")
-        deadline = time.monotonic() + 60
-        while time.monotonic() < deadline:
-            with lock:
-                seen = [a for a in answers if a[3] == summary["generation"]]
-            if seen and time.monotonic() - min(a[1] for a in seen) > 1.0:
-                break
-            time.sleep(0.1)
-        with Store.open(store_dir, settings=_settings(store_dir)) as store:
-            new_ids = [store.catalog.file_id_for_path(p) for p in new_files]
-        c = server.client()
-        for image_id in new_ids:   # the new images are served by the new generation
-            r = c.get(f"/v1/images/{image_id}/similar?k=3")
-            assert r.status == 200 and r.headers["x-nearsight-generation"] == summary["generation"]
-        c.close()
+        with QueryLoad(server, 3, request) as load:
+            time.sleep(1.0)
+            nightly = run_cli("index", service_store.archive, arrivals, "--store", store_dir, *NIGHTLY_FLAGS,
+                              "--json", env=_nightly_env())
+            assert nightly.returncode == 0, nightly.stderr
+            summary = json.loads(nightly.stdout)
+            assert (summary["new"], summary["embedded"], summary["build"]["kind"]) == (2, 2, "incremental")
+            load.wait_for(summary["generation"], settle_s=1.0)
+            with Store.open(store_dir, settings=_settings(store_dir)) as store:
+                new_ids = [store.catalog.file_id_for_path(p) for p in new_files]
+            c = server.client()
+            for image_id in new_ids:   # the new images are served by the new generation
+                r = c.get(f"/v1/images/{image_id}/similar?k=3")
+                assert r.status == 200 and r.headers["x-nearsight-generation"] == summary["generation"]
+            c.close()
     finally:
-        stop.set()
-        for t in threads:
-            t.join(timeout=60)
         server.stop()
-    failed = [a for a in answers if a[2] != 200]
-    assert not failed, failed[:5]
-    assert {a[3] for a in answers} == {old, summary["generation"]}
-    first_new = min(a[1] for a in answers if a[3] == summary["generation"])
-    assert not [a for a in answers if a[0] > first_new and a[3] != summary["generation"]]
+    load.assert_swapped(old, summary["generation"])
     assert "Traceback" not in server.log()
