@@ -23,6 +23,7 @@ from .images import read_image
 from .model import read_card
 from .pause import pause_at
 from .store import Store
+from .classic import DEFAULT_CLASSIC_WEIGHT
 from .whiten import fit_whitening
 
 log = logging.getLogger(__name__)
@@ -118,7 +119,7 @@ def build_generation(store: Store, model_dir, *, t_near: float, t_similar: float
     if len(ids) == 0:
         log.warning("nothing to index: no embedded readable files")
         return {"generation": None, "indexed": 0}
-    whitening = fit_whitening(xb)
+    whitening = fit_whitening(xb, learned_dim=int(card["dim"]), classic_weight=DEFAULT_CLASSIC_WEIGHT)
     xb = whitening.apply(xb)
     index = faiss_index.build_index(xb, ids, index_spec)
     rng = np.random.default_rng(0)

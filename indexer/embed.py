@@ -60,7 +60,7 @@ def embed_images(encoder: torch.nn.Module, images: Sequence[Image.Image], size: 
 
 
 def _output_dim(encoder: torch.nn.Module) -> int:
-    return int(getattr(encoder, "dim", 0))
+    return int(getattr(encoder, "out_dim", getattr(encoder, "dim", 0)))
 
 
 def _decode_one(job: tuple[int, str, int | None]) -> tuple[int, np.ndarray | None, str | None]:
@@ -133,7 +133,7 @@ def embed_files(
         ok.extend(int(i) for i in ids)
         blocks.append(vectors)
         errors.update(block_errors)
-    vectors = np.concatenate(blocks) if blocks else np.zeros((0, encoder.dim), dtype=np.float32)
+    vectors = np.concatenate(blocks) if blocks else np.zeros((0, _output_dim(encoder)), dtype=np.float32)
     elapsed = time.monotonic() - started
     log.info("embedded %d files (%d unreadable) in %.1f s", len(ok), len(errors), elapsed)
     return EmbedResult(vectors=vectors, ok=ok, errors=errors)

@@ -31,6 +31,13 @@ IMAGENET_STD = (0.229, 0.224, 0.225)
 
 DEFAULT_ARCH = "resnet_narrow"
 POOLINGS = ("gem", "avg")
+# What the backbone sees: "imagenet" is the fixed channel standardisation alone (models
+# saved before input standardisation existed); "luma" also standardises each image by its
+# own mean and spread of luminance, so brightness and contrast changes barely move the input.
+INPUT_NORMS = ("imagenet", "luma")
+DEFAULT_INPUT_NORM = "luma"
+# Rec. ITU-R BT.601 luma weights (the ones Pillow's convert("L") uses).
+LUMA_WEIGHTS = (0.299, 0.587, 0.114)
 
 
 class GeM(nn.Module):
@@ -122,23 +129,69 @@ _BACKBONES: dict[str, Callable[[], tuple[nn.Module, int]]] = {
 ARCHS = tuple(_BACKBONES)
 
 
-class Encoder(nn.Module):
-    """Backbone -> pooling -> linear -> L2 normalisation.
+def pixels(x: torch.Tensor) -> torch.Tensor:
+    """Undo `normalize_tensor`: the (…, 3, H, W) batch back in [0, 1] pixel units."""
+    mean = torch.tensor(IMAGENET_MEAN, dtype=x.dtype, device=x.device).view(3, 1, 1)
+    std = torch.tensor(IMAGENET_STD, dtype=x.dtype, device=x.device).view(3, 1, 1)
+    return x * std + mean
 
-    The output of `descriptor` is what we index: unit length, so inner product
-    equals cosine similarity and squared distance is 2 - 2 cos.
+
+def luma(p: torch.Tensor) -> torch.Tensor:
+    """(B, 3, H, W) pixels in [0, 1] -> (B, 1, H, W) BT.601 luma."""
+    w = torch.tensor(LUMA_WEIGHTS, dtype=p.dtype, device=p.device).view(1, 3, 1, 1)
+    return (p * w).sum(dim=1, keepdim=True)
+
+
+# Below this luma spread (about 5 grey levels) an image counts as flat and is not stretched.
+MIN_LUMA_STD = 0.02
+
+
+def standardise_luma(x: torch.Tensor) -> torch.Tensor:
+    """Per image: (pixels - mean luma) / std luma, all three channels with the same two numbers.
+
+    Any change p -> a p + b applied to every channel (a brightness or contrast change
+    without clipping, ImageNet-C's contrast included) leaves the result unchanged, while
+    colour ratios survive (a per-channel standardisation would erase colour).
+    """
+    p = pixels(x)
+    y = luma(p)
+    mean = y.mean(dim=(1, 2, 3), keepdim=True)
+    std = y.std(dim=(1, 2, 3), keepdim=True).clamp(min=MIN_LUMA_STD)
+    return (p - mean) / std
+
+
+class Encoder(nn.Module):
+    """Input standardisation -> backbone -> pooling -> linear -> L2 normalisation.
+
+    The output of `descriptor` is what we store: the unit-length learned vector, then,
+    when `classic` names one, a unit-length classical descriptor of the same input
+    (indexer/classic.py); a generation's `Whitening.apply` weighs the two parts into one
+    unit vector, so inner product is a weighted sum of the two cosines.
     """
 
-    def __init__(self, backbone: nn.Module, num_features: int, dim: int = 128, pooling: str = "gem"):
+    def __init__(self, backbone: nn.Module, num_features: int, dim: int = 128, pooling: str = "gem",
+                 input_norm: str = "imagenet", classic: str | None = None):
         super().__init__()
+        from .classic import classic_dim
+
         self.backbone = backbone
         self.num_features = num_features
         self.dim = dim
         self.pooling = pooling
+        self.input_norm = input_norm
+        self.classic = classic
+        self.classic_dim = classic_dim(classic)
         self.pool = GeM() if pooling == "gem" else AvgPool()
         self.fc = nn.Linear(num_features, dim)
 
+    @property
+    def out_dim(self) -> int:
+        """Width of `descriptor`'s rows: the learned part, then the classical part."""
+        return self.dim + self.classic_dim
+
     def forward_features(self, x: torch.Tensor) -> torch.Tensor:
+        if self.input_norm == "luma":
+            x = standardise_luma(x)
         return self.backbone(x)
 
     def forward_head(self, features: torch.Tensor, normalize: bool = True) -> torch.Tensor:
@@ -147,7 +200,12 @@ class Encoder(nn.Module):
         return F.normalize(z, dim=-1) if normalize else z
 
     def descriptor(self, x: torch.Tensor) -> torch.Tensor:
-        return self.forward_head(self.forward_features(x))
+        learned = self.forward_head(self.forward_features(x))
+        if not self.classic:
+            return learned
+        from .classic import classic_descriptor
+
+        return torch.cat([learned, classic_descriptor(pixels(x), self.classic)], dim=1)
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         return self.descriptor(x)
@@ -173,16 +231,25 @@ class ProjectionHead(nn.Module):
         return self.net(h)
 
 
-def create_encoder(arch: str = DEFAULT_ARCH, dim: int = 128, pooling: str = "gem") -> Encoder:
-    """Build a randomly initialised encoder (never downloads weights)."""
+def create_encoder(arch: str = DEFAULT_ARCH, dim: int = 128, pooling: str = "gem", *,
+                   input_norm: str = DEFAULT_INPUT_NORM, classic: str | None = "default") -> Encoder:
+    """Build a randomly initialised encoder (never downloads weights).
+
+    `classic="default"` takes indexer.classic's default descriptor; None stores the learned vector alone."""
+    from .classic import DEFAULT_CLASSIC, check_classic
+
     if arch not in _BACKBONES:
         raise UsageError(f"unknown encoder architecture {arch!r}; choose one of {', '.join(ARCHS)}")
     if pooling not in POOLINGS:
         raise UsageError(f"unknown pooling {pooling!r}; choose one of {', '.join(POOLINGS)}")
+    if input_norm not in INPUT_NORMS:
+        raise UsageError(f"unknown input standardisation {input_norm!r}; choose one of {', '.join(INPUT_NORMS)}")
     if not isinstance(dim, int) or dim < 2:
         raise UsageError(f"embedding dim must be a whole number >= 2, got {dim!r}")
+    classic = DEFAULT_CLASSIC if classic == "default" else classic
+    check_classic(classic)
     backbone, num_features = _BACKBONES[arch]()
-    return Encoder(backbone, num_features, dim=dim, pooling=pooling)
+    return Encoder(backbone, num_features, dim=dim, pooling=pooling, input_norm=input_norm, classic=classic)
 
 
 def normalize_tensor(x: torch.Tensor) -> torch.Tensor:

@@ -28,6 +28,12 @@ def _summary(ranks: np.ndarray) -> dict:
     }
 
 
+def _learned(x: np.ndarray, encoder: torch.nn.Module) -> np.ndarray:
+    d = int(getattr(encoder, "dim", x.shape[1]))
+    x = x[:, :d]
+    return x / np.maximum(np.linalg.norm(x, axis=1, keepdims=True), 1e-12)
+
+
 def ranks_of_originals(xq: np.ndarray, xb: np.ndarray) -> np.ndarray:
     """Rank (1 = best) of xb[i] among all rows of xb for query xq[i], ties counted pessimistically."""
     sims = xq @ xb.T
@@ -50,8 +56,9 @@ def heldout_check(
     rng = np.random.default_rng(seed)
     edited = [random_edit(im, rng, kinds) for im in images]
     edit_kinds = np.array([im.info["edit"] for im in edited])
-    xb = embed_images(encoder, images, size, batch_size)
-    xq = embed_images(encoder, edited, size, batch_size)
+    # The learned part alone: it is what training changes (a classical part, if the encoder has one, is fixed).
+    xb = _learned(embed_images(encoder, images, size, batch_size), encoder)
+    xq = _learned(embed_images(encoder, edited, size, batch_size), encoder)
     ranks = ranks_of_originals(xq, xb)
     report = _summary(ranks)
     report["seed"] = seed

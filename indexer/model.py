@@ -72,6 +72,8 @@ def save_model(model_dir: Path, encoder: Encoder, card: dict) -> str:
         "arch": card.get("arch"),
         "dim": encoder.dim,
         "pooling": encoder.pooling,
+        "input_norm": encoder.input_norm,
+        "classic": encoder.classic,
         "weights_blake2b": digest,
         "libraries": library_versions(),
     }
@@ -104,7 +106,9 @@ def load_model(model_dir: Path) -> tuple[Encoder, dict]:
     digest = hashlib.blake2b(data, digest_size=16).hexdigest()
     if digest != card.get("weights_blake2b"):
         raise NearsightError(f"{path} does not match {CARD_FILE} (weights hash differs); retrain or restore the model folder")
-    encoder = create_encoder(card["arch"], dim=int(card["dim"]), pooling=card["pooling"])
+    # Cards written before input standardisation and classical descriptors existed name neither.
+    encoder = create_encoder(card["arch"], dim=int(card["dim"]), pooling=card["pooling"],
+                             input_norm=card.get("input_norm", "imagenet"), classic=card.get("classic"))
     try:
         state = torch.load(io.BytesIO(data), map_location="cpu", weights_only=True)
         encoder.load_state_dict(state)

@@ -49,3 +49,30 @@ def test_round_trip(tmp_path):
     loaded = Whitening.load(tmp_path / "w.npz")
     np.testing.assert_array_equal(loaded.projection, w.projection)
     np.testing.assert_array_equal(loaded.mean, w.mean)
+
+
+def test_fused_score_is_the_weighted_sum_of_the_two_cosines():
+    """With a classical part, <apply(x), apply(y)> = (1 - w) cos(whitened learned) + w cos(classic)
+    (the definition of the fused score; the cosines are computed here with NumPy directly)."""
+    rng = np.random.default_rng(3)
+    learned = _anisotropic(n=200, d=16)
+    classic = rng.standard_normal((200, 9)).astype(np.float32)
+    stored = np.hstack([learned, classic])
+    w = 0.3
+    fused = fit_whitening(stored, learned_dim=16, classic_weight=w)
+    white = fit_whitening(learned)  # the learned part alone, as before fusion
+    y = fused.apply(stored)
+    np.testing.assert_allclose(np.linalg.norm(y, axis=1), 1.0, atol=1e-5)
+    wl = white.apply(learned)
+    cu = classic / np.linalg.norm(classic, axis=1, keepdims=True)
+    expected = (1 - w) * (wl @ wl.T) + w * (cu @ cu.T)
+    np.testing.assert_allclose(y @ y.T, expected, atol=1e-5)
+
+
+def test_fused_whitening_round_trip_keeps_the_weight(tmp_path):
+    stored = np.hstack([_anisotropic(n=100, d=8), _anisotropic(n=100, d=5, seed=1)])
+    fused = fit_whitening(stored, learned_dim=8, classic_weight=0.4)
+    fused.save(tmp_path / "w.npz")
+    loaded = Whitening.load(tmp_path / "w.npz")
+    assert loaded.classic_weight == 0.4
+    np.testing.assert_allclose(loaded.apply(stored), fused.apply(stored), atol=1e-6)

@@ -1,0 +1,89 @@
+"""What a stored descriptor is made of: the classical part (indexer/classic.py) against SciPy's
+DCT, the encoder's input standardisation against Pillow's own brightness and contrast edits,
+and model files that remember both."""
+
+import numpy as np
+import pytest
+import scipy.fft
+import torch
+from PIL import Image, ImageEnhance
+
+from indexer.classic import THUMB_SIDE, check_classic, classic_descriptor, classic_dim, dct_matrix
+from indexer.encoder import create_encoder, pixels, preprocess, standardise_luma
+from indexer.errors import UsageError
+
+
+def _photo(name="astronaut") -> Image.Image:
+    import skimage.data
+
+    return Image.fromarray(getattr(skimage.data, name)()).convert("RGB")
+
+
+def test_dct_matrix_matches_scipy_orthonormal_dct():
+    # Reference: scipy.fft.dctn(type 2, norm="ortho"), the transform pHash is built on.
+    y = np.random.default_rng(0).random((THUMB_SIDE, THUMB_SIDE))
+    c = dct_matrix(THUMB_SIDE, torch.float64).numpy()
+    np.testing.assert_allclose(c @ y @ c.T, scipy.fft.dctn(y, type=2, norm="ortho"), atol=1e-12)
+
+
+def test_dct8_is_the_low_frequency_block_of_a_32px_luma_thumbnail():
+    """Computed independently: Pillow's luma thumbnail (BOX filter, an area average) of the same
+    128 px input, SciPy's DCT, the 8 x 8 block without its constant term, L2-normalised."""
+    x = preprocess([_photo()], 128)
+    ours = classic_descriptor(pixels(x), "dct8")[0].numpy()
+    p = (pixels(x)[0].permute(1, 2, 0).numpy() * 255.0)
+    grey = p @ np.array([0.299, 0.587, 0.114])  # ITU-R BT.601 luma, as Pillow's convert("L")
+    thumb = np.asarray(Image.fromarray(grey.astype(np.float32), mode="F").resize((32, 32), Image.Resampling.BOX))
+    block = scipy.fft.dctn(thumb.astype(np.float64), norm="ortho")[:8, :8].ravel()[1:]
+    np.testing.assert_allclose(ours, block / np.linalg.norm(block), atol=2e-3)
+    assert classic_dim("dct8") == 63 == ours.shape[0]
+
+
+@pytest.mark.parametrize("name", ["dct8", "dct12", "thumb16"])
+def test_brightness_and_contrast_barely_move_the_descriptor(name):
+    im = _photo("coffee")
+    edited = ImageEnhance.Contrast(ImageEnhance.Brightness(im).enhance(0.7)).enhance(0.6)  # Pillow's own edits
+    other = _photo("chelsea")
+    x = preprocess([im, edited, other], 128)
+    d = classic_descriptor(pixels(x), name).numpy()
+    same, different = float(d[0] @ d[1]), float(d[0] @ d[2])
+    assert same > 0.99, same  # an affine change of luma is removed exactly; rounding to 8 bits is not
+    assert different < 0.9, different
+
+
+def test_unknown_names_are_refused():
+    for bad in ("dct1", "dct99", "fourier", ""):
+        with pytest.raises(UsageError):
+            check_classic(bad)
+    check_classic(None)
+    assert classic_dim(None) == 0
+
+
+def test_luma_standardisation_removes_an_affine_brightness_and_contrast_change():
+    """Pillow's ImageEnhance.Contrast blends with the mean grey and Brightness scales: both are affine in
+    the pixel values, so the standardised inputs agree up to 8-bit rounding (and any clipping)."""
+    im = _photo("astronaut")
+    edited = ImageEnhance.Contrast(ImageEnhance.Brightness(im).enhance(0.8)).enhance(0.7)
+    x = preprocess([im, edited], 128)
+    raw_gap = float((x[0] - x[1]).abs().mean())
+    s = standardise_luma(x)
+    gap = float((s[0] - s[1]).abs().mean())
+    assert gap < 0.1 * raw_gap, (gap, raw_gap)
+    y = 0.299 * s[:, 0] + 0.587 * s[:, 1] + 0.114 * s[:, 2]  # BT.601 luma of the result
+    np.testing.assert_allclose(y.mean(dim=(1, 2)).numpy(), 0.0, atol=1e-5)
+    np.testing.assert_allclose(y.std(dim=(1, 2)).numpy(), 1.0, atol=1e-3)
+
+
+def test_model_files_remember_input_standardisation_and_classical_part(tmp_path):
+    from indexer.embed import embed_images
+    from indexer.model import load_model, save_model
+
+    torch.manual_seed(0)
+    encoder = create_encoder("tiny", 16, input_norm="luma", classic="dct8")
+    save_model(tmp_path, encoder, {"arch": "tiny", "image_size": 64})
+    loaded, card = load_model(tmp_path)
+    assert (card["input_norm"], card["classic"], loaded.out_dim) == ("luma", "dct8", 16 + 63)
+    images = [_photo("coffee"), _photo("rocket")]
+    np.testing.assert_allclose(embed_images(loaded, images, 64), embed_images(encoder, images, 64), atol=1e-6)
+    with pytest.raises(UsageError):
+        create_encoder("tiny", 16, input_norm="per-channel")
