@@ -1,0 +1,252 @@
+"""Geometric verification (indexer/verify.py) on real photos: scikit-image's bundled `skimage.data`.
+
+Every copy here is made with Pillow from a photo, so the truth (the crop box, the scale,
+the mirror, the rotation) comes from how the copy was built, not from the verifier.
+No timing: the cost per pair lives in benchmarks/bench_verify.py.
+"""
+
+import io
+import json
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from benchmarks.bench_verify import block_differences
+from indexer.errors import UsageError
+from indexer.verify import Verification, VerifyConfig, extract_features, verify_candidates, verify_pair
+
+
+def photo(name: str) -> Image.Image:
+    import skimage.data
+
+    return Image.fromarray(getattr(skimage.data, name)()).convert("RGB")
+
+
+def jpeg(im: Image.Image, quality: int) -> Image.Image:
+    """Re-save through Pillow's JPEG encoder, as a copy posted elsewhere would be."""
+    buf = io.BytesIO()
+    im.save(buf, "JPEG", quality=quality)
+    buf.seek(0)
+    return Image.open(buf).convert("RGB")
+
+
+def tiles(im: Image.Image, n: int = 3) -> dict[tuple[int, int], Image.Image]:
+    """Non-overlapping cells of an n x n grid, keyed by (column, row)."""
+    w, h = im.size
+    return {(i, j): im.crop((i * w // n, j * h // n, (i + 1) * w // n, (j + 1) * h // n))
+            for i in range(n) for j in range(n)}
+
+
+def iou(a, b) -> float:
+    """Intersection over union of two (x0, y0, x1, y1) boxes (the Jaccard index; common practice)."""
+    ix = max(0, min(a[2], b[2]) - max(a[0], b[0]))
+    iy = max(0, min(a[3], b[3]) - max(a[1], b[1]))
+    inter = ix * iy
+    return inter / ((a[2] - a[0]) * (a[3] - a[1]) + (b[2] - b[0]) * (b[3] - b[1]) - inter)
+
+
+# -- copies verify ---------------------------------------------------------------------------------
+@pytest.mark.parametrize("name", ["astronaut", "coffee", "chelsea", "rocket"])
+@pytest.mark.parametrize("area", [0.5, 0.3])
+def test_a_resaved_resized_crop_verifies_and_its_box_is_the_crop(name, area):
+    im = photo(name)
+    w, h = im.size
+    cw, ch = round(w * area ** 0.5), round(h * area ** 0.5)
+    x0, y0 = (w - cw) // 3, (h - ch) * 2 // 3  # off-centre, so a box stuck in the middle would not pass
+    crop = jpeg(im.crop((x0, y0, x0 + cw, y0 + ch)), 75).resize((round(cw * 0.8), round(ch * 0.8)))
+    v = verify_pair(crop, im)
+    assert v.verified, v.reason
+    assert not v.mirrored
+    # Floor 0.8: a box a few pixels off on a 200-400 px crop still has an IoU above 0.9
+    # (the benchmark's worst crop box was 0.957), while a box shifted by a tenth of its
+    # side both ways has 0.81 / 1.19 = 0.68 and fails.
+    assert iou(v.box, (x0, y0, x0 + cw, y0 + ch)) >= 0.8
+    # The copy was shrunk to 80 %, so one copy pixel spans 1 / 0.8 photo pixels.
+    assert v.scale == pytest.approx(1 / 0.8, rel=0.05)
+    assert abs(v.angle) < 2
+
+
+def test_a_mirrored_copy_verifies_as_mirrored():
+    im = photo("astronaut")
+    flipped = jpeg(im.transpose(Image.Transpose.FLIP_LEFT_RIGHT), 75).resize((300, 300))
+    v = verify_pair(flipped, im)
+    assert v.verified and v.mirrored, v.reason
+    # Mirroring x -> (width - 1) - x: the transform's x coefficient is negative, of size 512 / 300.
+    assert v.transform[0][0] == pytest.approx(-512 / 300, rel=0.05)
+    assert iou(v.box, (0, 0, 512, 512)) >= 0.9
+
+
+def test_a_rotated_copy_verifies_with_its_angle():
+    im = photo("coffee")
+    rotated = jpeg(im.rotate(8, resample=Image.Resampling.BICUBIC), 75)  # Pillow turns counter-clockwise
+    v = verify_pair(rotated, im)
+    assert v.verified, v.reason
+    assert v.angle == pytest.approx(8, abs=1)
+    assert v.scale == pytest.approx(1, rel=0.05)
+
+
+def test_the_candidate_may_be_the_crop():
+    """The other way round: the query is the whole photo, the candidate a crop of it."""
+    im = photo("chelsea")
+    crop = im.crop((100, 50, 400, 250))
+    v = verify_pair(im, crop)
+    assert v.verified, v.reason
+    assert v.box == (0, 0, 300, 200)  # the photo covers all of the crop (clipped to it)
+
+
+@pytest.mark.parametrize("mode", ["L", "RGBA", "P", "I;16"])
+def test_other_pillow_modes_verify(mode):
+    im = photo("camera")  # a grey photo; the copy is a crop in another mode
+    crop = im.crop((64, 64, 448, 448))
+    if mode == "I;16":  # 16-bit grey, as a scanner writes it: the 8-bit values times 257
+        copy = Image.fromarray(np.asarray(crop.convert("L")).astype(np.uint16) * 257)
+    elif mode == "RGBA":  # opaque where the photo is, with a transparent band on the right edge
+        copy = crop.convert("RGBA")
+        alpha = np.full(copy.size[::-1], 255, np.uint8)
+        alpha[:, -20:] = 0
+        copy.putalpha(Image.fromarray(alpha))
+    else:
+        copy = crop.convert(mode)
+    assert copy.mode == mode
+    v = verify_pair(copy, im)
+    assert v.verified, v.reason
+    assert iou(v.box, (64, 64, 448, 448)) >= 0.8
+
+
+# -- non-copies do not -------------------------------------------------------------------------------
+def neighbour_pairs():
+    """Every pair of side-by-side cells of a 3 x 3 grid, in one direction."""
+    cells = [(i, j) for i in range(3) for j in range(3)]
+    return [(a, b) for a in cells for b in cells if (b[0] - a[0], b[1] - a[1]) in ((1, 0), (0, 1))]
+
+
+# skimage's grass photo holds a cloned region: cells (2, 0) and (2, 1) share about
+# 90 x 90 px (see test_the_cloned_region_in_grass_is_found_and_is_real). Not a non-copy.
+GRASS_CLONE = ((2, 0), (2, 1))
+
+
+@pytest.mark.parametrize("name", ["brick", "grass", "gravel", "astronaut", "page"])
+def test_neighbouring_tiles_do_not_verify(name):
+    """Same texture, same light, no shared pixels: the hardest non-copies for a keypoint matcher.
+
+    `page` (a scanned page of text) repeats the same glyphs along each line.
+    """
+    cells = tiles(photo(name))
+    pairs = [p for p in neighbour_pairs() if not (name == "grass" and p == GRASS_CLONE)]
+    assert len(pairs) >= 11
+    for a, b in pairs:
+        for query, candidate in ((cells[a], cells[b]), (cells[b], cells[a])):
+            v = verify_pair(query, candidate)
+            assert not v.verified, (name, a, b, v)
+            assert v.reason
+
+
+def test_the_cloned_region_in_grass_is_found_and_is_real():
+    """The verifier matches grass cells (2, 0) and (2, 1); the raw pixels confirm they share a region.
+
+    Oracle: warp the query onto the candidate with the returned transform and compare grey
+    levels in 16-px blocks (benchmarks/bench_verify.block_differences). Truly shared pixels
+    give blocks a few grey levels apart, unrelated grass tens of levels.
+    """
+    cells = tiles(photo("grass"))
+    v = verify_pair(cells[GRASS_CLONE[0]], cells[GRASS_CLONE[1]])
+    assert v.verified, v.reason
+    diffs = block_differences(cells[GRASS_CLONE[0]], cells[GRASS_CLONE[1]], v.transform)
+    assert len(diffs) >= 20
+    assert np.percentile(diffs, 10) < 10 < 20 < np.median(diffs)
+    # Control: the same comparison 40 px away from the found transform sees no shared region.
+    moved = np.array(v.transform) + [[0, 0, 40], [0, 0, 0]]
+    assert np.percentile(block_differences(cells[GRASS_CLONE[0]], cells[GRASS_CLONE[1]], moved), 10) > 15
+
+
+def test_different_photos_do_not_verify():
+    names = ["astronaut", "coffee", "chelsea", "rocket", "camera", "brick"]
+    photos = [photo(n) for n in names]
+    for i, query in enumerate(photos):
+        others = photos[:i] + photos[i + 1:]
+        for v in verify_candidates(query, others):
+            assert not v.verified, (names[i], v)
+            assert v.box is None
+
+
+@pytest.mark.parametrize("names", [("coffee", "chelsea"), ("astronaut", "rocket"), ("brick", "grass")])
+def test_the_same_caption_on_two_photos_is_not_a_copy(names):
+    """Two different photos carrying the same caption share those pixels, but are not copies."""
+    from PIL import ImageDraw, ImageFont
+
+    def captioned(im: Image.Image) -> Image.Image:
+        im = im.resize((512, round(512 * im.height / im.width)))
+        draw = ImageDraw.Draw(im)
+        draw.rectangle((0, im.height - 72, 512, im.height), fill=(20, 20, 24))
+        draw.text((12, im.height - 62), "harbour gazette 2019", fill=(240, 240, 240),
+                  font=ImageFont.load_default(size=48))
+        return im
+
+    v = verify_pair(captioned(photo(names[0])), captioned(photo(names[1])))
+    assert not v.verified, v
+    assert v.inliers >= 12  # the caption itself does match: the spread gate is what turns it away
+    assert "cover" in v.reason
+
+
+# -- the batched helper ------------------------------------------------------------------------------
+def test_verify_candidates_agrees_with_verify_pair():
+    im = photo("rocket")
+    w, h = im.size
+    query = jpeg(im.crop((w // 4, h // 4, w * 3 // 4, h * 3 // 4)), 75)
+    candidates = [photo("coffee"), im, im.transpose(Image.Transpose.FLIP_LEFT_RIGHT), Image.new("RGB", (64, 64))]
+    batched = verify_candidates(query, candidates)
+    assert [v.verified for v in batched] == [False, True, True, False]
+    assert batched[2].mirrored
+    for v, candidate in zip(batched, candidates):
+        assert v == verify_pair(query, candidate)
+    assert verify_candidates(query, []) == []
+
+
+# -- degenerate input --------------------------------------------------------------------------------
+@pytest.mark.parametrize("bad, words", [
+    (Image.new("RGB", (300, 200), (128, 128, 128)), "no keypoints"),
+    (Image.new("RGB", (10, 10), (200, 10, 10)), "too small"),
+    (Image.new("L", (0, 0)), "too small"),
+    (Image.new("RGBA", (300, 300), (0, 0, 0, 0)), "no keypoints"),  # fully transparent
+])
+def test_degenerate_images_give_a_reason_not_an_error(bad, words):
+    im = photo("astronaut")
+    for v, side in ((verify_pair(bad, im), "query"), (verify_pair(im, bad), "candidate")):
+        assert isinstance(v, Verification)
+        assert not v.verified
+        assert v.reason.startswith(side) and words in v.reason
+        assert v.box is None and v.inliers == 0
+    assert len(extract_features(bad)) == 0
+
+
+def test_to_dict_is_plain_json():
+    im = photo("coffee")
+    v = verify_pair(im.crop((0, 0, 400, 300)), im)
+    d = json.loads(json.dumps(v.to_dict()))
+    assert d["verified"] is True and d["box"] == list(v.box)
+    assert np.allclose(d["transform"], v.transform)
+    assert set(d) >= {"verified", "inliers", "matches", "inlier_ratio", "box", "scale", "mirrored", "reason"}
+    assert json.loads(json.dumps(verify_pair(Image.new("L", (5, 5)), im).to_dict()))["box"] is None
+
+
+def test_bad_arguments_raise_usage_errors():
+    im = photo("coffee")
+    with pytest.raises(UsageError, match="PIL image"):
+        verify_pair(np.zeros((100, 100, 3), np.uint8), im)
+    with pytest.raises(UsageError, match="candidate 1"):
+        verify_candidates(im, [im, "coffee.jpg"])
+    with pytest.raises(UsageError):
+        VerifyConfig(min_inliers=2)
+    with pytest.raises(UsageError):
+        verify_pair(im, im, max_side=10)
+
+
+def test_overrides_reach_the_config():
+    """`min_inliers` given as a keyword gates the same match that the default lets through."""
+    im = photo("astronaut")
+    crop = im.crop((100, 100, 400, 400))
+    loose = verify_pair(crop, im)
+    assert loose.verified
+    strict = verify_pair(crop, im, min_inliers=loose.inliers + 1)
+    assert not strict.verified and "too few" in strict.reason
