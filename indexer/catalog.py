@@ -291,19 +291,28 @@ class Catalog:
             conn.executemany("UPDATE contents SET pixel_hash = ? WHERE hash = ?",
                              [(p, c) for c, p in by_content_hash.items()])
 
-    def paths_for(self, file_ids) -> dict[int, str]:
-        """Absolute paths of the given file ids (ids that do not exist are left out)."""
+    def _rows_by_file_id(self, select: str, file_ids) -> dict[int, sqlite3.Row]:
+        """Rows of `select ... WHERE f.id IN (...)` keyed by f.id, asked 500 ids at a time."""
         ids = sorted(set(int(i) for i in file_ids))
-        out: dict[int, str] = {}
+        out: dict[int, sqlite3.Row] = {}
         for start in range(0, len(ids), 500):
             chunk = ids[start : start + 500]
-            rows = self.conn.execute(
-                "SELECT f.id, s.root, f.relpath FROM files f JOIN sources s ON s.id = f.source_id "
-                f"WHERE f.id IN ({','.join('?' * len(chunk))})",
-                chunk,
-            )
-            out.update({r["id"]: str(Path(r["root"]) / r["relpath"]) for r in rows})
+            rows = self.conn.execute(f"{select} WHERE f.id IN ({','.join('?' * len(chunk))})", chunk)
+            out.update({r["id"]: r for r in rows})
         return out
+
+    def paths_for(self, file_ids) -> dict[int, str]:
+        """Absolute paths of the given file ids (ids that do not exist are left out)."""
+        rows = self._rows_by_file_id("SELECT f.id, s.root, f.relpath FROM files f JOIN sources s ON s.id = f.source_id",
+                                     file_ids)
+        return {i: str(Path(r["root"]) / r["relpath"]) for i, r in rows.items()}
+
+    def pixel_sources(self, file_ids) -> dict[int, dict]:
+        """Per file id: root, relpath, content hash and whether a small copy exists (`Store.pixels_path` reads it)."""
+        rows = self._rows_by_file_id(
+            "SELECT f.id, s.root, f.relpath, c.hash, c.thumb FROM files f JOIN sources s ON s.id = f.source_id "
+            "JOIN contents c ON c.id = f.content_id", file_ids)
+        return {i: dict(r) for i, r in rows.items()}
 
     def unreadable_files(self, limit: int | None = None) -> list[dict]:
         sql = (

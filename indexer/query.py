@@ -59,18 +59,20 @@ class Searcher:
         self.encoder, self.card = load_model(model_dir)
         self.size = int(self.card["image_size"])
         self.threshold = self.generation.threshold("near")
+        self.verify_top = int(store.settings.verify_top)
 
     def vectors_for_images(self, images) -> np.ndarray:
         """Query vectors in the generation's space (encoder output, then its whitening)."""
         return self.whitening.apply(embed_images(self.encoder, images, self.size))
 
     def neighbours(self, xq: np.ndarray, k: int, threshold: float | None = None, *,
-                   catalog=None, exclude: Collection[int] = ()) -> list[list[dict]]:
+                   catalog=None, exclude: Collection[int] = (), images=None) -> list[list[dict]]:
         """Top-k neighbours for each query vector, as dicts with id, path, similarity, duplicate.
 
         `catalog` is the connection to read paths with (SQLite connections belong to one thread:
         a multi-threaded caller passes its own; default the store's). Ids in `exclude` are left
-        out, and k more are asked for so that k remain."""
+        out, and k more are asked for so that k remain. With the query `images` (one per row of
+        `xq`), the best `verify_top` candidates are verified and re-ranked (indexer/rerank.py)."""
         threshold = self.threshold if threshold is None else threshold
         catalog = catalog if catalog is not None else self.store.catalog
         D, I = faiss_index.search(self.index, np.ascontiguousarray(xq, dtype=np.float32), k + len(exclude))
@@ -79,17 +81,37 @@ class Searcher:
         for d_row, i_row in zip(D, I):
             out.append([
                 {"id": int(i), "path": paths.get(int(i)), "similarity": round(float(d), 6),
-                 "duplicate": bool(d >= threshold)}
+                 "descriptor_similarity": round(float(d), 6), "evidence": None, "duplicate": bool(d >= threshold)}
                 for d, i in zip(d_row, i_row) if i >= 0 and int(i) not in exclude
             ][:k])
+        if images is not None and self.verify_top > 0:
+            out = self._verified(images, out, threshold, catalog)
         return out
+
+    def _verified(self, images, answers: list[list[dict]], threshold: float, catalog) -> list[list[dict]]:
+        from .rerank import rerank_all
+
+        wanted = {r["id"] for results in answers for r in results[: self.verify_top]}
+        sources = catalog.pixel_sources(wanted)
+        candidates = {i: str(self.store.pixels_path(row)) for i, row in sources.items()}
+        return rerank_all(images, answers, candidates, self.verify_top, threshold)
+
+    def _own_image(self, file_id: int, catalog):
+        """A catalogued image's pixels, from its small copy when there is one (None if unreadable)."""
+        row = catalog.pixel_sources([file_id]).get(file_id)
+        if row is None or self.verify_top == 0:
+            return None
+        try:
+            return read_image(self.store.pixels_path(row), max_side=2 * self.size)[0]
+        except (ImageReadError, OSError):
+            return None
 
     def similar_to_upload(self, data, k: int, threshold: float | None = None, *, max_pixels: int | None,
                           catalog=None) -> tuple[list[dict], ImageInfo]:
         """Neighbours of one image given as bytes or a binary file object (an upload), decoded by
         `read_image` like every other image; raises ImageReadError for anything not an image."""
         image, info = read_image(data, max_side=2 * self.size, max_pixels=max_pixels)
-        return self.neighbours(self.vectors_for_images([image]), k, threshold, catalog=catalog)[0], info
+        return self.neighbours(self.vectors_for_images([image]), k, threshold, catalog=catalog, images=[image])[0], info
 
     def similar_to_id(self, file_id: int, k: int, threshold: float | None = None, *, catalog=None) -> list[dict]:
         """Neighbours of a catalogued image, from its stored vector (no decoding); itself left out."""
@@ -103,7 +125,9 @@ class Searcher:
             raise NotReadyError(f"image {file_id} ({row['state']}) has no vector under model {model}; "
                                 "readable files get one at the next `nearsight index`")
         xq = self.whitening.apply(stored[file_id][None, :])
-        return self.neighbours(xq, k, threshold, catalog=catalog, exclude={file_id})[0]
+        own = self._own_image(file_id, catalog)
+        return self.neighbours(xq, k, threshold, catalog=catalog, exclude={file_id},
+                               images=None if own is None else [own])[0]
 
     def similar_files(self, paths: Sequence[str], k: int, threshold: float | None = None) -> Iterator[dict]:
         """One result object per query path, in order; unreadable queries carry an error."""
@@ -122,7 +146,8 @@ class Searcher:
                 except NotFoundError as exc:
                     answers[given] = {"query": given, "error": exc.to_dict()}
             if images:
-                for given, results in zip(good, self.neighbours(self.vectors_for_images(images), k, threshold)):
+                for given, results in zip(good, self.neighbours(self.vectors_for_images(images), k, threshold,
+                                                                images=images)):
                     answers[given] = {"query": given, "results": results}
             for given in block:
                 yield answers[given]

@@ -66,10 +66,26 @@ SCHEMAS = {
                        "message": {"type": "string", "description": "what went wrong and what to do"},
                        "reason": {"type": "string", "description": "for unreadable images: not-image, too-large, ..."}},
     },
+    "Evidence": {
+        "type": "object", "nullable": True,
+        "description": "geometric verification of this candidate (null when it was not checked)",
+        "required": ["verified", "inliers", "matches", "box", "scale", "mirrored", "reason"],
+        "properties": {"verified": {"type": "boolean"},
+                       "inliers": {"type": "integer", "description": "keypoint matches that agree with one transform"},
+                       "matches": {"type": "integer"},
+                       "box": {"type": "array", "nullable": True, "items": {"type": "number"},
+                               "description": "where the query lies in the candidate: x0, y0, x1, y1 as fractions"},
+                       "scale": NULLABLE_NUMBER, "mirrored": {"type": "boolean"},
+                       "reason": {"type": "string"}},
+    },
     "Neighbour": {
-        "type": "object", "required": ["id", "path", "similarity", "duplicate"],
+        "type": "object", "required": ["id", "path", "similarity", "descriptor_similarity", "evidence", "duplicate"],
         "properties": {"id": {"type": "integer"}, "path": NULLABLE_STRING,
-                       "similarity": {"type": "number", "description": "cosine of whitened descriptors, higher is closer"},
+                       "similarity": {"type": "number", "description": "the score, higher is closer: the descriptors' "
+                                      "score, moved halfway to 1 when geometric verification confirms the match"},
+                       "descriptor_similarity": {"type": "number", "description": "the descriptors' score alone "
+                                                 "(learned and classical cosines, weighed)"},
+                       "evidence": {"$ref": "#/components/schemas/Evidence"},
                        "duplicate": {"type": "boolean", "description": "similarity >= threshold"}},
     },
     "SearchResult": {

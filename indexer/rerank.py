@@ -1,0 +1,92 @@
+"""Re-rank a query's best candidates by geometric verification (indexer/verify.py).
+
+A descriptor alone cannot tell a crop of a photo from a neighbouring tile of it: both
+look alike. Keypoints that agree under one similarity transform can. The top
+`verify_top` candidates of each query are verified against the query image; a verified
+candidate's score moves halfway to 1,
+
+    s_verified = 1 - (1 - s) / 2,
+
+so verified copies rank above unverified look-alikes while the order among verified
+candidates, and every unverified score, is kept. Verification never lowers a score: a
+true copy that fails it (heavy blur, a flat image) keeps its descriptor's score.
+
+Measured (benchmarks/results/ablation.md): on the quality benchmark, top 3 at 256 px
+lifted µAP from 0.885 to 0.941 and recall at precision 0.99 from 0.74 to 0.92 for about
+30 ms a query on 2 cores.
+
+Candidates are read from the store's small copies (256 px by default), so verification
+never opens a user's original file at query time.
+"""
+
+from __future__ import annotations
+
+import logging
+from typing import Sequence
+
+from PIL import Image
+
+from .errors import ImageReadError
+from .images import read_image
+
+log = logging.getLogger(__name__)
+
+VERIFY_SIDE = 256  # both images are verified at this longest side (the small copies' default size)
+
+
+def boosted(score: float) -> float:
+    """A verified candidate's score: halfway from its descriptor score to 1."""
+    return 1.0 - (1.0 - score) / 2.0
+
+
+def _evidence(v, size: tuple[int, int]) -> dict:
+    w, h = size
+    box = None if v.box is None else [round(v.box[0] / w, 4), round(v.box[1] / h, 4),
+                                      round(v.box[2] / w, 4), round(v.box[3] / h, 4)]
+    return {"verified": bool(v.verified), "inliers": int(v.inliers), "matches": int(v.matches),
+            "box": box, "scale": None if v.scale is None else round(float(v.scale), 4),
+            "mirrored": bool(v.mirrored), "reason": v.reason}
+
+
+def rerank(query: Image.Image, results: list[dict], candidates: dict[int, str], top: int,
+           threshold: float | None = None) -> list[dict]:
+    """Verify the first `top` results (dicts with id and similarity, best first) against `query`.
+
+    `candidates` maps result ids to the file to read each candidate's pixels from. Each verified
+    result gets the boosted similarity, `descriptor_similarity` (the score before) and `evidence`;
+    the list comes back sorted by the new scores, with `duplicate` redone against `threshold`."""
+    from .verify import VerifyConfig, verify_candidates
+
+    head = [r for r in results[:top] if r["id"] in candidates]
+    images, checked = [], []
+    for r in head:
+        try:
+            images.append(read_image(candidates[r["id"]], max_side=VERIFY_SIDE)[0])
+            checked.append(r)
+        except (ImageReadError, OSError) as exc:  # changed or gone since it was indexed
+            log.debug("cannot verify candidate %s: %s", r["id"], exc)
+    if not checked:
+        return results
+    q = query if max(query.size) <= VERIFY_SIDE else _smaller(query)
+    for r, im, v in zip(checked, images, verify_candidates(q, images, config=VerifyConfig(max_side=VERIFY_SIDE))):
+        r.setdefault("descriptor_similarity", r["similarity"])
+        r["evidence"] = _evidence(v, im.size)
+        if v.verified:
+            r["similarity"] = round(boosted(r["similarity"]), 6)
+    out = sorted(results, key=lambda r: -r["similarity"])
+    if threshold is not None:
+        for r in out:
+            r["duplicate"] = bool(r["similarity"] >= threshold)
+    return out
+
+
+def _smaller(im: Image.Image) -> Image.Image:
+    im = im.copy()
+    im.thumbnail((VERIFY_SIDE, VERIFY_SIDE), Image.Resampling.BILINEAR)
+    return im
+
+
+def rerank_all(queries: Sequence[Image.Image], answers: list[list[dict]], candidates: dict[int, str], top: int,
+               threshold: float | None = None) -> list[list[dict]]:
+    """`rerank` for each (query, results) pair."""
+    return [rerank(q, a, candidates, top, threshold) for q, a in zip(queries, answers)]

@@ -1,0 +1,65 @@
+"""Re-ranking by geometric verification (indexer/rerank.py), on scikit-image's bundled photos."""
+
+import pytest
+from PIL import Image
+
+from indexer.rerank import boosted, rerank
+
+
+def _photo(name):
+    import skimage.data
+
+    return Image.fromarray(getattr(skimage.data, name)()).convert("RGB")
+
+
+@pytest.fixture(scope="module")
+def files(tmp_path_factory):
+    """The left and right halves of scikit-image's brick wall (neighbouring, non-overlapping tiles of one
+    texture), and astronaut; the query is a 50 %-area crop of the left half, re-saved as JPEG q75."""
+    folder = tmp_path_factory.mktemp("rerank")
+    brick = _photo("brick")
+    w, h = brick.size
+    left, right = brick.crop((0, 0, w // 2, h)), brick.crop((w // 2, 0, w, h))
+    paths = {}
+    for name, im in (("left", left), ("right", right), ("astronaut", _photo("astronaut"))):
+        paths[name] = folder / f"{name}.png"
+        im.save(paths[name])
+    lw, lh = left.size
+    crop = left.crop((lw // 8, lh // 8, lw // 8 + int(lw * 0.71), lh // 8 + int(lh * 0.71)))
+    crop.save(folder / "query.jpg", quality=75)
+    with Image.open(folder / "query.jpg") as im:
+        return paths, im.convert("RGB")
+
+
+def test_the_crop_is_verified_and_moves_above_a_neighbouring_tile(files):
+    paths, query = files
+    # The descriptor ranked the neighbouring tile first, as a texture-minded encoder does.
+    results = [{"id": 2, "similarity": 0.93, "duplicate": True}, {"id": 1, "similarity": 0.90, "duplicate": True},
+               {"id": 3, "similarity": 0.20, "duplicate": False}]
+    candidates = {1: str(paths["left"]), 2: str(paths["right"]), 3: str(paths["astronaut"])}
+    out = rerank(query, [dict(r) for r in results], candidates, top=3, threshold=0.92)
+    assert [r["id"] for r in out] == [1, 2, 3]
+    first = out[0]
+    assert first["evidence"]["verified"] and first["descriptor_similarity"] == 0.90
+    assert first["similarity"] == pytest.approx(boosted(0.90)) == pytest.approx(0.95)
+    assert first["duplicate"]
+    # The neighbouring tile fails verification and keeps its score; astronaut is not verified either.
+    tile = out[1]
+    assert not tile["evidence"]["verified"] and tile["similarity"] == 0.93
+    assert not out[2]["evidence"]["verified"] and out[2]["similarity"] == 0.20
+    # The matched box (fractions of the candidate) covers where the crop was cut from: x from 1/8 to 0.835.
+    x0, y0, x1, y1 = first["evidence"]["box"]
+    assert abs(x0 - 0.125) < 0.05 and abs(x1 - 0.835) < 0.05 and abs(y0 - 0.125) < 0.05
+
+
+def test_only_the_top_candidates_are_verified_and_unreadable_ones_are_skipped(files, tmp_path):
+    paths, query = files
+    missing = tmp_path / "gone.png"
+    results = [{"id": 9, "similarity": 0.8}, {"id": 2, "similarity": 0.7}, {"id": 1, "similarity": 0.6}]
+    out = rerank(query, [dict(r) for r in results], {9: str(missing), 2: str(paths["right"]), 1: str(paths["left"])},
+                 top=2)
+    by_id = {r["id"]: r for r in out}
+    assert "evidence" not in by_id[9]  # could not be read: left as it was
+    assert "evidence" in by_id[2] and "evidence" not in by_id[1]  # beyond the top 2: not verified
+    # (`Searcher.neighbours` gives every result evidence=None and its descriptor score before re-ranking.)
+    assert [r["similarity"] for r in out] == sorted((r["similarity"] for r in out), reverse=True)
