@@ -22,6 +22,21 @@ their released code):
 
 A transform maps an RGB image and a seeded `numpy.random.Generator` to an RGB image and
 the encoding the query file is saved with: ("JPEG", quality) or ("PNG", None).
+
+Each transform has a severity within its family, so results can be read per severity. The
+mapping is ours (a judgement of how much of the original survives, not a published scale):
+
+| family | mild | moderate | strong |
+|---|---|---|---|
+| jpeg | quality >= 30 | quality 10-20 | quality < 10 |
+| crop | keeps >= 70 % of the area | keeps 51-69 % | keeps <= 50 % |
+| strong | - | - | all (Copydays' "strong" attacks) |
+| noise, blur, colour, digital (ImageNet-C) | severity 1 | severity 2 | severity 3 |
+| colour (ours) | - | grayscale, hue shift by 36 degrees | - |
+| overlay | caption band (15 % of the height), two lines of text | shape over 12 % | shape over 30 % |
+| border | white, 5 % a side | black, 15 % a side | letterbox to 16:9 (bars fill 44 % of a square tile's frame) |
+| flip | - | mirror (left-right) | upside down |
+| rotate | 2 degrees | 5 degrees (cropped or filled) | 10 degrees |
 """
 
 from __future__ import annotations
@@ -38,11 +53,16 @@ from scipy import ndimage
 PNG = ("PNG", None)
 
 
+MILD, MODERATE, STRONG = "mild", "moderate", "strong"
+SEVERITY_LEVELS = (MILD, MODERATE, STRONG)
+
+
 @dataclass(frozen=True)
 class Transform:
     name: str
     family: str
     apply: Callable[[Image.Image, np.random.Generator], tuple[Image.Image, tuple]]
+    severity: str  # MILD, MODERATE or STRONG within the family (the table in the module docstring)
 
 
 # -- helpers ----------------------------------------------------------------------------------
@@ -276,32 +296,48 @@ def _corruption(fn, severity):
     return lambda im, rng: (fn(im.convert("RGB"), severity, rng), PNG)
 
 
+def jpeg_severity(quality: int) -> str:
+    return MILD if quality >= 30 else MODERATE if quality >= 10 else STRONG
+
+
+def crop_severity(removed_pct: int) -> str:
+    """Keeping >= 70 % of the area is mild, <= 50 % strong."""
+    return MILD if removed_pct <= 30 else STRONG if removed_pct >= 50 else MODERATE
+
+
+IMAGENET_C_SEVERITY = {1: MILD, 2: MODERATE, 3: STRONG}
+
+
 def build_transforms() -> list[Transform]:
     """Every transform of the protocol, in report order."""
-    out = [Transform(f"jpeg-q{q}", "jpeg", (lambda q: lambda im, rng: (im.convert("RGB"), ("JPEG", q)))(q))
+    out = [Transform(f"jpeg-q{q}", "jpeg", (lambda q: lambda im, rng: (im.convert("RGB"), ("JPEG", q)))(q),
+                     jpeg_severity(q))
            for q in (75, 50, 30, 20, 15, 10, 8, 5, 3)]
-    out += [Transform(f"crop-{pct}", "crop", (lambda keep: _png(lambda im, rng: crop_area(im, keep, rng)))(1 - pct / 100))
+    out += [Transform(f"crop-{pct}", "crop", (lambda keep: _png(lambda im, rng: crop_area(im, keep, rng)))(1 - pct / 100),
+                      crop_severity(pct))
             for pct in (10, 15, 20, 30, 40, 50, 60, 70, 80)]
-    out += [Transform(f"strong-{name}", "strong", fn) for name, fn in (
+    out += [Transform(f"strong-{name}", "strong", fn, STRONG) for name, fn in (
         ("print-scan", strong_print_scan), ("crop-colour", strong_crop_colour),
         ("overlay-border", strong_overlay_border), ("tiny", strong_tiny))]
     for family, fns in IMAGENET_C.items():
-        out += [Transform(f"{fn.__name__}-{s}", family, _corruption(fn, s)) for fn in fns for s in SEVERITIES]
-    out += [Transform("grayscale", "colour", _png(lambda im, rng: im.convert("L").convert("RGB"))),
-            Transform("hue-shift", "colour", _png(lambda im, rng: _hsv_edit(im, _shift_hue)))]
-    out += [Transform("overlay-caption", "overlay", _png(caption_band)),
-            Transform("overlay-text", "overlay", _png(text_overlay)),
-            Transform("overlay-shape", "overlay", _png(shape_overlay)),
-            Transform("overlay-shape-large", "overlay", _png(lambda im, rng: shape_overlay(im, rng, 0.3)))]
-    out += [Transform("border-white-5", "border", _png(lambda im, rng: border(im, 0.05, (255, 255, 255)))),
-            Transform("border-black-15", "border", _png(lambda im, rng: border(im, 0.15, (0, 0, 0)))),
-            Transform("letterbox-16x9", "border", _png(lambda im, rng: letterbox(im)))]
-    out += [Transform("flip-mirror", "flip", _png(lambda im, rng: ImageOps.mirror(im))),
-            Transform("flip-vertical", "flip", _png(lambda im, rng: ImageOps.flip(im)))]
-    out += [Transform(f"rotate-{d}", "rotate", (lambda d: _png(lambda im, rng: rotate_crop(im, d)))(d)) for d in (2, 5, 10)]
+        out += [Transform(f"{fn.__name__}-{s}", family, _corruption(fn, s), IMAGENET_C_SEVERITY[s])
+                for fn in fns for s in SEVERITIES]
+    out += [Transform("grayscale", "colour", _png(lambda im, rng: im.convert("L").convert("RGB")), MODERATE),
+            Transform("hue-shift", "colour", _png(lambda im, rng: _hsv_edit(im, _shift_hue)), MODERATE)]
+    out += [Transform("overlay-caption", "overlay", _png(caption_band), MILD),
+            Transform("overlay-text", "overlay", _png(text_overlay), MILD),
+            Transform("overlay-shape", "overlay", _png(shape_overlay), MODERATE),
+            Transform("overlay-shape-large", "overlay", _png(lambda im, rng: shape_overlay(im, rng, 0.3)), STRONG)]
+    out += [Transform("border-white-5", "border", _png(lambda im, rng: border(im, 0.05, (255, 255, 255))), MILD),
+            Transform("border-black-15", "border", _png(lambda im, rng: border(im, 0.15, (0, 0, 0))), MODERATE),
+            Transform("letterbox-16x9", "border", _png(lambda im, rng: letterbox(im)), STRONG)]
+    out += [Transform("flip-mirror", "flip", _png(lambda im, rng: ImageOps.mirror(im)), MODERATE),
+            Transform("flip-vertical", "flip", _png(lambda im, rng: ImageOps.flip(im)), STRONG)]
+    out += [Transform(f"rotate-{d}", "rotate", (lambda d: _png(lambda im, rng: rotate_crop(im, d)))(d),
+                      {2: MILD, 5: MODERATE, 10: STRONG}[d]) for d in (2, 5, 10)]
     out.append(Transform("rotate-5-filled", "rotate",
                          _png(lambda im, rng: im.rotate(-5, resample=Image.Resampling.BICUBIC, expand=True,
-                                                        fillcolor=(255, 255, 255)))))
+                                                        fillcolor=(255, 255, 255))), MODERATE))
     return out
 
 

@@ -4,10 +4,12 @@ from __future__ import annotations
 
 import math
 
-from benchmarks.protocol import FAMILIES
+from benchmarks.collection import KINDS
+from benchmarks.protocol import FAMILIES, SEVERITY_LEVELS
 
 METRICS = (("uap", "µAP"), ("r1", "recall@1"), ("r_p90", "recall at precision 0.90"),
            ("r_p99", "recall at precision 0.99"))
+KIND_LABELS = {"everyday": "everyday photographs", "astro": "astrophotographs"}
 
 
 def _f(x, digits: int = 3) -> str:
@@ -26,8 +28,26 @@ def _wilson(k: int, n: int) -> str:
 
 
 def _families(results: dict) -> list[str]:
-    present = {f for _t, f in results["queries"]["transforms"]}
+    present = {f for _t, f, _s in results["queries"]["transforms"]}
     return [f for f in FAMILIES if f in present]
+
+
+def _family_severities(results: dict) -> list[str]:
+    """'family / severity' labels present, in protocol order."""
+    present = {f"{f} / {s}" for _t, f, s in results["queries"]["transforms"]}
+    return [f"{f} / {s}" for f in FAMILIES for s in SEVERITY_LEVELS if f"{f} / {s}" in present]
+
+
+def _sources_table(results: dict) -> list[str]:
+    lines = ["| source | installed by | kind | photos | tiles | indexed | held out |", "|---|---|---|---:|---:|---:|---:|"]
+    for s in results["collection"]["sources"]:
+        kinds = ", ".join(KIND_LABELS.get(k, k) for k in s["kinds"]) or "-"
+        lines.append(f"| {s['key']} | {s['package']} | {kinds} | {s['photos']} | {s['tiles']} | {s['indexed']} | "
+                     f"{s['held_out']} |")
+    c = results["collection"]
+    lines.append(f"| all | | | {sum(s['photos'] for s in c['sources'])} | {c['photo_tiles']} | {c['indexed_tiles']} | "
+                 f"{c['photo_tiles'] - c['indexed_tiles']} |")
+    return lines
 
 
 def _runs_table(results: dict) -> list[str]:
@@ -50,14 +70,19 @@ def _overall_table(results: dict) -> list[str]:
     return lines
 
 
-def _per_group_table(results: dict, key: str, groups: list[str], metric: str) -> list[str]:
+def _per_group_table(results: dict, key: str, groups: list[str], metric: str, labels: dict | None = None,
+                     heading: str | None = None) -> list[str]:
+    """One row per group label (absent ones skipped), one column per system."""
     systems = list(results["systems"])
-    lines = [f"| {key} | queries (with a match) | " + " | ".join(systems) + " |",
+    lines = [f"| {heading or key} | queries (with a match) | " + " | ".join(systems) + " |",
              "|---|---:|" + "---:|" * len(systems)]
     for g in groups:
-        first = results["systems"][systems[0]]["metrics"][key][g]
+        first = results["systems"][systems[0]]["metrics"][key].get(g)
+        if first is None:
+            continue
         cells = [_f(results["systems"][s]["metrics"][key][g][metric]) for s in systems]
-        lines.append(f"| {g} | {first['queries']} ({first['positives']}) | " + " | ".join(cells) + " |")
+        lines.append(f"| {(labels or {}).get(g, g)} | {first['queries']} ({first['positives']}) | "
+                     + " | ".join(cells) + " |")
     return lines
 
 
@@ -106,6 +131,7 @@ def render(results: dict, command: str) -> str:
     families = _families(results)
     trained = [s for s in results["systems"] if s.startswith("nearsight") and "untrained" not in s]
     best = trained[-1] if trained else None
+    severity_of = {t: sev for t, _f2, sev in q["transforms"]}
     lines = [
         "# Copy-detection quality: nearsight against pHash and a thumbnail baseline",
         "",
@@ -115,13 +141,20 @@ def render(results: dict, command: str) -> str:
         f"Command: `{command}` ({results['wall_s'] / 60:.0f} minutes wall time).",
         "",
         f"Collection indexed: {c['files']} files = {c['indexed_tiles']} photo tiles + {c['distractors']} distractors "
-        f"(originals and look-alikes of the invented demo archive). Photo tiles: {c['photo_tiles']} non-overlapping "
-        f"tiles of {len(c['sources'])} photos shipped by scikit-image, scikit-learn and matplotlib; "
-        f"{c['photo_tiles'] - c['indexed_tiles']} of them are kept out of the index.",
-        f"Queries: {q['total']} = {len(q['transforms'])} transforms x {c['photo_tiles']} tiles; {q['with_match']} have "
-        f"their original in the index, the other {q['total'] - q['with_match']} have none (every prediction for them "
-        "is false). Protocol: benchmarks/protocol.py (Copydays-style JPEG ladder, crops and strong combinations; "
-        "ImageNet-C corruptions at severities 1-3; overlays, borders, flips, rotations).",
+        "(originals and look-alikes of the invented demo archive). Photo tiles: non-overlapping tiles (at most 3 x 3 "
+        "per photo, at least 224 px a side; smaller photos whole) of real photographs that PyPI and Debian packages "
+        "ship (benchmarks/collection.py says which files and why); a seeded quarter of each kind's tiles is kept out "
+        "of the index:",
+        "",
+        *_sources_table(results),
+        "",
+        f"Queries: {q['total']} = {len(q['transforms'])} transforms x {q['per_transform']} tiles, each transform "
+        "applied to its own seeded sample of tiles, half of them everyday photographs and half astrophotographs "
+        "(which supply more of the tiles), a quarter of each half from tiles kept out of the index. "
+        f"{q['with_match']} queries have their original in the index, the other {q['total'] - q['with_match']} have "
+        "none (every prediction for them is false). Protocol: benchmarks/protocol.py (Copydays-style JPEG ladder, "
+        "crops and strong combinations; ImageNet-C corruptions at severities 1-3; overlays, borders, flips, "
+        "rotations; the mild / moderate / strong grading of each family is stated there).",
         "Every system returns its top 10 per query; metrics in benchmarks/metrics.py (µAP as defined for DISC21, "
         "Douze et al. 2021: all predictions pooled and ranked by score, recall over the queries that have a match).",
         "",
@@ -133,6 +166,14 @@ def render(results: dict, command: str) -> str:
         "",
         *_overall_table(results),
         "",
+        "## µAP per kind of photograph",
+        "",
+        *_per_group_table(results, "kind", list(KINDS), "uap", KIND_LABELS, heading="kind"),
+        "",
+        "## µAP per severity",
+        "",
+        *_per_group_table(results, "severity", list(SEVERITY_LEVELS), "uap"),
+        "",
         "## µAP per transformation family",
         "",
         *_per_group_table(results, "family", families, "uap"),
@@ -140,6 +181,11 @@ def render(results: dict, command: str) -> str:
         "## recall@1 per transformation family",
         "",
         *_per_group_table(results, "family", families, "r1"),
+        "",
+        "## µAP per family and severity",
+        "",
+        *_per_group_table(results, "family_severity", _family_severities(results), "uap",
+                          heading="family / severity"),
         "",
         "## The calibrated `duplicate` verdict, realised",
         "",
@@ -155,6 +201,16 @@ def render(results: dict, command: str) -> str:
                   "is not indexed, whatever they called):", "", *_wrong_calls_table(results)]
     if best:
         lines += ["", f"### Per family, {best}", "", *_verdict_families(results, best, families)]
+    if results.get("ablation"):
+        from benchmarks.ablation import table
+
+        a = results["ablation"]
+        lines += ["", "## Ablation: scoring levers on the same trained model", "",
+                  f"Model {a['model']} ({a['budget_minutes']:g} min of training), the collection and queries re-described "
+                  "once and scored exhaustively under every combination (benchmarks/ablation.py). \"no-match flagged "
+                  "@P99\" is the share of queries whose original is not indexed whose top score reaches the threshold "
+                  "where pooled precision is 0.99.", "", table(a["figures"])]
+    transform_labels = {t: f"{t} ({sev})" for t, sev in severity_of.items()}
     lines += ["", "## µAP per transform", "",
-              *_per_group_table(results, "transform", [t for t, _f2 in q["transforms"]], "uap"), ""]
+              *_per_group_table(results, "transform", list(severity_of), "uap", transform_labels), ""]
     return "\n".join(lines)

@@ -212,7 +212,7 @@ def test_a_changed_collection_ends_in_the_expected_state_and_only_new_bytes_are_
         assert set(zip(a.tolist(), b.tolist())) == _exhaustive_pairs(xb, ids, EXACT["similar_threshold"])
 
 
-@pytest.mark.parametrize("thresholds", [{}, {"near_threshold": 0.6, "similar_threshold": 0.5}],
+@pytest.mark.parametrize("thresholds", [{}, {"near_threshold": 0.45, "similar_threshold": 0.35}],
                          ids=["defaults", "tighter"])
 def test_incremental_groups_equal_groups_made_from_scratch(models, tmp_path, thresholds):
     """At the default thresholds the tiny encoder's pairs form one large component that complete linkage
