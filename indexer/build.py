@@ -24,6 +24,7 @@ from .model import read_card
 from .pause import pause_at
 from .store import Store
 from .classic import DEFAULT_CLASSIC_WEIGHT
+from .fusion import fit_classic_weight
 from .whiten import fit_whitening
 
 log = logging.getLogger(__name__)
@@ -119,7 +120,11 @@ def build_generation(store: Store, model_dir, *, t_near: float, t_similar: float
     if len(ids) == 0:
         log.warning("nothing to index: no embedded readable files")
         return {"generation": None, "indexed": 0}
-    whitening = fit_whitening(xb, learned_dim=int(card["dim"]), classic_weight=DEFAULT_CLASSIC_WEIGHT)
+    # The classical part's weight is fitted with the calibration (both adapt scoring to this collection);
+    # `--no-calibrate` keeps the default.
+    fusion = fit_classic_weight(store, model_dir, ids, xb) if calibration is not None else None
+    weight = fusion.weight if fusion is not None else DEFAULT_CLASSIC_WEIGHT
+    whitening = fit_whitening(xb, learned_dim=int(card["dim"]), classic_weight=weight)
     xb = whitening.apply(xb)
     index = faiss_index.build_index(xb, ids, index_spec)
     rng = np.random.default_rng(0)
@@ -133,6 +138,8 @@ def build_generation(store: Store, model_dir, *, t_near: float, t_similar: float
         "indexed": n,
         "dim": int(xb.shape[1]),
         "whitening": "pca-shrunk",
+        "fusion": fusion.to_dict() if fusion is not None else {"classic_weight": whitening.classic_weight,
+                                                                 "reason": "default (not calibrated)"},
         "index_spec": index_spec or faiss_index.choose_spec(len(ids), xb.shape[1]),
         "search_params": tuning["params"],
         "recall_at_10": tuning["recall"],
