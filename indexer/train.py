@@ -3,8 +3,10 @@
 `train` learns from unlabeled images: two random views of one image are a
 positive pair, the other images in the batch (and optionally a queue of earlier
 embeddings) are negatives (SimCLR, Chen et al. 2020; MoCo queue, He et al. 2020).
-Each image is decoded once, at a small size, into an in-memory cache; views are
-made by DataLoader worker processes while the main process trains.
+Each image is decoded once, at a small size, into an in-memory cache; by default
+whole batches of views are made in the training process with per-sample
+parameters, and some pictures enter a batch as two non-overlapping regions that
+are negatives of each other (`train_batches`, `batch_views`).
 
 `fine_tune_from_pairs` adjusts a trained model with human verdicts
 ("same" / "different" pairs) using a margin or batch-hard triplet loss.
@@ -29,7 +31,6 @@ from typing import Any, Iterator, Sequence
 import numpy as np
 import torch
 from PIL import Image
-from torch.utils.data import DataLoader, Dataset
 from tqdm import tqdm
 
 from .embed import decode_files, embed_images
@@ -39,11 +40,14 @@ from .fsutil import atomic_write_bytes
 from .heldout import heldout_check
 from .losses import koleo, margin_contrastive, nt_xent, triplet_hard
 from .model import load_model, save_model
+from .split_batch import SplitEncoder
+from .train_batches import VIEW_MODES, decode_pictures, plan_batches, view_batches
 from .views import ViewRecipe, make_views
 
 log = logging.getLogger(__name__)
 
 CHECKPOINT_FILE = "checkpoint.pt"
+PARALLEL_MODES = ("split_batch", "intra_op")
 MIN_TRAIN_IMAGES = 8
 _LOSS_CURVE_POINTS = 200
 
@@ -75,14 +79,27 @@ class TrainConfig:
     epochs: float | None = None
     steps: int | None = None
     seed: int = 0
-    workers: int = 1  # DataLoader processes making views
-    threads: int | None = None  # torch threads of the training process; None = cores left over by the workers
+    # How views are made (indexer/train_batches.py): "batched" in the training process, whole
+    # batches at once with per-sample parameters; "per_image" by `workers` DataLoader processes.
+    # Measured in benchmarks/results/train-views.md.
+    views: str = "batched"
+    # Share of a batch's entries that are two non-overlapping regions of one picture (hard
+    # negatives of each other); batched views only.
+    hard_negative_share: float = 0.25
+    channels_last: bool = True  # NHWC activations for the convolutions (benchmarks/results/train-views.md)
+    workers: int = 1  # DataLoader processes making views ("per_image" only)
+    # How the model uses `threads` cores: "split_batch" runs each part of the batch in its own
+    # thread with one torch thread (indexer/split_batch.py; robust when other processes share the
+    # cores), "intra_op" gives torch that many threads for every operation.
+    parallel: str = "split_batch"
+    threads: int | None = None  # cores for the model; None = all cores less the view workers
     checkpoint_every_s: float = 180.0
     heldout: int = 256  # originals kept out of training for the check ...
     heldout_fraction: float = 0.2  # ... but at most this fraction of the readable images
-    # A random sample of this many images is used when the collection is larger: the cache
-    # holds ~83 KB per image at 128 px (0.8 GB for 10 000), and a 10-minute CPU run sees
-    # only ~25 000 views anyway (benchmarks/results/train.md).
+    # A random sample of this many images is used when the collection is larger: the batched
+    # views' cache holds one 192 x 192 x 3 square per image at 128 px (110 KB, 1.1 GB for
+    # 10 000; the per-image cache ~83 KB), and a 10-minute CPU run sees a few tens of
+    # thousands of views anyway (benchmarks/results/train.md).
     max_images: int = 10_000
     cache_side: float = 1.5  # images are decoded once with longest side cache_side * size
     recipe: ViewRecipe = field(default_factory=ViewRecipe)
@@ -111,6 +128,12 @@ class TrainConfig:
             (self.queue_len >= 0, f"queue_len must be >= 0, got {self.queue_len}"),
             (self.lr > 0, f"lr must be > 0, got {self.lr}"),
             (self.workers >= 0, f"workers must be >= 0, got {self.workers}"),
+            (self.views in VIEW_MODES, f"views must be one of {', '.join(VIEW_MODES)}, got {self.views!r}"),
+            (0.0 <= self.hard_negative_share <= 1.0,
+             f"hard_negative_share must be in [0, 1], got {self.hard_negative_share}"),
+            (self.threads is None or self.threads >= 1, f"threads must be >= 1, got {self.threads}"),
+            (self.parallel in PARALLEL_MODES,
+             f"parallel must be one of {', '.join(PARALLEL_MODES)}, got {self.parallel!r}"),
             (0.0 <= self.heldout_fraction < 1.0, f"heldout_fraction must be in [0, 1), got {self.heldout_fraction}"),
             (self.cache_side >= 1.0, f"cache_side must be >= 1, got {self.cache_side}"),
             (
@@ -121,6 +144,7 @@ class TrainConfig:
         for ok, message in checks:
             if not ok:
                 raise UsageError(message)
+        self.recipe.validate()
 
 
 @dataclass
@@ -135,75 +159,6 @@ class TrainResult:
     images_per_s: float
     heldout: dict  # held-out check of the trained encoder
     heldout_random_init: dict  # the same check for the same architecture at random init
-
-
-class _ImageCache:
-    """Decoded images packed into one uint8 buffer (shared copy-on-write with forked workers)."""
-
-    def __init__(self, arrays: list[np.ndarray]):
-        self.shapes = np.array([a.shape for a in arrays], dtype=np.int64).reshape(-1, 3)
-        sizes = self.shapes.prod(axis=1)
-        self.offsets = np.concatenate([[0], np.cumsum(sizes)])
-        self.pixels = np.concatenate([a.reshape(-1) for a in arrays]) if arrays else np.zeros(0, np.uint8)
-
-    def __len__(self) -> int:
-        return len(self.shapes)
-
-    def image(self, i: int) -> Image.Image:
-        flat = self.pixels[self.offsets[i] : self.offsets[i + 1]]
-        return Image.fromarray(flat.reshape(self.shapes[i]))
-
-
-def _decode_cache(paths: Sequence[Path], max_side: int, workers: int) -> tuple[_ImageCache, list[Path], dict[str, str]]:
-    arrays, kept, skipped = [], [], {}
-    for index, pixels, error in decode_files(paths, max_side, workers):
-        if error is None:
-            arrays.append(pixels)
-            kept.append(paths[index])
-        else:
-            skipped[str(paths[index])] = error
-    return _ImageCache(arrays), kept, skipped
-
-
-def _item_seed(seed: int, epoch: int, index: int) -> int:
-    return ((seed * 1_000_003 + epoch) * 10_000_019 + index) % (2**63)
-
-
-class _PairViews(Dataset):
-    """Item (epoch, i) -> two random views of training image i, seeded by (seed, epoch, i).
-
-    Seeding per item makes the views independent of worker count and of resuming.
-    """
-
-    def __init__(self, cache: _ImageCache, recipe: ViewRecipe, size: int, seed: int):
-        self.cache, self.seed = cache, seed
-        self.views = make_views(recipe, size)
-
-    def __len__(self) -> int:
-        return len(self.cache)
-
-    def __getitem__(self, item: tuple[int, int]) -> tuple[torch.Tensor, torch.Tensor]:
-        epoch, i = item
-        # The CPU generator only: torch.manual_seed would also queue a lazy CUDA seeding call per item.
-        torch.default_generator.manual_seed(_item_seed(self.seed, epoch, i))
-        im = self.cache.image(i)
-        return self.views(im), self.views(im)
-
-
-class _EpochBatches:
-    """Endless batches of (epoch, i); the order depends only on (seed, step), so a resume picks up exactly."""
-
-    def __init__(self, n: int, batch_size: int, seed: int, start_step: int):
-        self.n, self.batch_size, self.seed, self.start_step = n, batch_size, seed, start_step
-        self.steps_per_epoch = n // batch_size
-
-    def __iter__(self) -> Iterator[list[tuple[int, int]]]:
-        step = self.start_step
-        while True:
-            epoch, k = divmod(step, self.steps_per_epoch)
-            order = torch.randperm(self.n, generator=torch.Generator().manual_seed(self.seed * 7919 + epoch))
-            yield [(epoch, int(i)) for i in order[k * self.batch_size : (k + 1) * self.batch_size]]
-            step += 1
 
 
 @contextmanager
@@ -222,11 +177,6 @@ def _deferred_interrupt() -> Iterator[dict]:
         yield flag
     finally:
         signal.signal(signal.SIGINT, previous)
-
-
-def _ignore_sigint(_worker_id: int) -> None:
-    """DataLoader workers leave Ctrl-C to the main process, which stops at a step boundary."""
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def _init_modules(config: TrainConfig) -> tuple[Encoder, ProjectionHead]:
@@ -295,11 +245,17 @@ def split_heldout(paths: Sequence[Path], config: TrainConfig) -> tuple[list[Path
     return [paths[i] for i in np.sort(order[n_held:])], [paths[i] for i in np.sort(order[:n_held])]
 
 
-def _set_threads(config: TrainConfig) -> None:
-    # Oversubscribing the cores (view workers + intra-op threads) slowed training
-    # several-fold in our measurements (benchmarks/results/train.md).
-    threads = config.threads or (os.cpu_count() or 1) - config.workers
-    torch.set_num_threads(max(1, threads))
+def _set_threads(config: TrainConfig) -> int:
+    """Set torch's thread count; returns the number of batch parts run in parallel threads (1 = none).
+
+    Oversubscribing the cores (view workers + model threads) slowed training
+    several-fold in our measurements (benchmarks/results/train.md).
+    """
+    workers = config.workers if config.views == "per_image" else 0
+    threads = max(1, config.threads or (os.cpu_count() or 1) - workers)
+    parts = threads if config.parallel == "split_batch" else 1
+    torch.set_num_threads(1 if parts > 1 else threads)
+    return parts
 
 
 def train(
@@ -313,7 +269,7 @@ def train(
     config.validate()
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
-    _set_threads(config)
+    parts = _set_threads(config)
     started = time.monotonic()
     paths = [Path(p) for p in images]
     if len(paths) > config.max_images:
@@ -321,7 +277,8 @@ def train(
         log.info("using a random sample of %d of %d images", config.max_images, len(paths))
         paths = [paths[i] for i in pick]
     train_paths, held_paths = split_heldout(paths, config)
-    cache, kept, skipped = _decode_cache(train_paths, round(config.cache_side * config.size), os.cpu_count() or 1)
+    cache, kept, skipped = decode_pictures(train_paths, config.views, round(config.cache_side * config.size),
+                                           os.cpu_count() or 1)
     held_images, held_skipped = _decode_heldout(held_paths, config)
     skipped.update(held_skipped)
     log.info("decoded %d images (%d unreadable) in %.1f s", len(kept) + len(held_images), len(skipped),
@@ -330,7 +287,8 @@ def train(
         raise UsageError(f"need at least {MIN_TRAIN_IMAGES} readable images to train, got {len(kept)}")
 
     encoder, head = _init_modules(config)
-    run = _run_loop(cache, encoder, head, config, out_dir, resume=resume, progress=progress, fingerprint=_fingerprint(kept))
+    run = _run_loop(cache, encoder, head, config, out_dir, resume=resume, progress=progress,
+                    fingerprint=_fingerprint(kept), parts=parts)
     heldout, heldout_random = _compare_with_random_init(encoder, held_images, config)
     card = _model_card(config, run, images_given=len(images), trained_on=kept, held_out=len(held_images),
                        held_paths=held_paths,
@@ -358,7 +316,7 @@ def _model_card(config: TrainConfig, run: dict, *, images_given: int, trained_on
                  # Calibration draws its synthetic positives from these originals first.
                  "heldout_paths": [str(p) for p in held_paths]},
         "steps": run["step"],
-        "epochs": round(run["step"] * min(config.batch_size, len(trained_on)) / len(trained_on), 3),
+        "epochs": round(run["step"] * run["pictures_per_step"] / len(trained_on), 3),
         "stopped_by": run["stopped_by"],
         "loss_curve": _sample_curve(run["losses"]),
         "train_seconds": round(run["elapsed_s"], 1),
@@ -402,11 +360,25 @@ def _compare_with_random_init(encoder: Encoder, held_images: list[Image.Image], 
 def _train_step(
     encoder: Encoder, head: ProjectionHead, optimizer: torch.optim.Optimizer,
     v1: torch.Tensor, v2: torch.Tensor, queue: torch.Tensor, config: TrainConfig, lr: float,
+    split: SplitEncoder | None = None,
 ) -> tuple[float, torch.Tensor]:
-    """One AdamW step on NT-Xent of the projected views (+ KoLeo on the descriptors); returns (loss, queue)."""
+    """One AdamW step on NT-Xent of the projected views (+ KoLeo on the descriptors); returns (loss, queue).
+
+    With `split`, the encoder runs on parts of the batch in parallel threads; the
+    head and the loss run here on the joined descriptors, whose gradients then
+    go back to the threads.
+    """
     for group in optimizer.param_groups:
         group["lr"] = lr
-    h = encoder.forward_head(encoder.forward_features(torch.cat([v1, v2])), normalize=False)
+    x = torch.cat([v1, v2])
+    if config.channels_last:
+        x = x.contiguous(memory_format=torch.channels_last)
+    if split is None:
+        h = encoder.forward_head(encoder.forward_features(x), normalize=False)
+    else:
+        parts = split.forward(x.chunk(len(split.replicas)))
+        leaves = [part.detach().requires_grad_() for part in parts]
+        h = torch.cat(leaves)
     z1, z2 = head(h).chunk(2)
     loss = nt_xent(z1, z2, config.temperature, queue if config.queue_len else None)
     if config.koleo_weight:
@@ -414,93 +386,102 @@ def _train_step(
         loss = loss + config.koleo_weight * 0.5 * (koleo(h1) + koleo(h2))
     optimizer.zero_grad(set_to_none=True)
     loss.backward()
+    if split is not None:
+        split.backward(parts, [leaf.grad for leaf in leaves])
+        split.sync_buffers()
     optimizer.step()
     if config.queue_len:
         queue = torch.cat([torch.nn.functional.normalize(z1.detach(), dim=1), queue])[: config.queue_len]
     return float(loss.item()), queue
 
 
-def _run_loop(
-    cache: _ImageCache,
-    encoder: Encoder,
-    head: ProjectionHead,
-    config: TrainConfig,
-    out_dir: Path,
-    *,
-    resume: bool,
-    progress: bool,
-    fingerprint: str,
-) -> dict:
-    """The optimisation loop; returns step, losses, elapsed_s, images_per_s, stopped_by."""
-    batch_size = min(config.batch_size, len(cache))
+def _start_state(encoder: Encoder, head: ProjectionHead, optimizer: torch.optim.Optimizer, config: TrainConfig,
+                 out_dir: Path, resume: bool, fingerprint: str) -> dict:
+    """step, elapsed_s, losses and queue: from the checkpoint (weights and optimizer loaded too) or fresh."""
+    state = {"step": 0, "elapsed_s": 0.0, "losses": [], "queue": torch.zeros(0, config.proj_dim)}
+    saved = _load_checkpoint(out_dir, config) if resume else None
+    if saved is not None:
+        encoder.load_state_dict(saved["encoder"])
+        head.load_state_dict(saved["head"])
+        optimizer.load_state_dict(saved["optimizer"])
+        state.update(step=saved["step"], elapsed_s=saved["elapsed_s"], losses=list(saved["losses"]),
+                     queue=saved["queue"])
+        if saved.get("fingerprint") != fingerprint:
+            log.warning("resuming on a different set of images than the checkpoint was trained on")
+        log.info("resuming from step %d (%.0f s trained)", state["step"], state["elapsed_s"])
+    return state
+
+
+def _stop_reason(config: TrainConfig, step: int, elapsed: float, steps_per_epoch: int) -> str | None:
+    if config.steps is not None and step >= config.steps:
+        return "steps"
+    if config.epochs is not None and step >= config.epochs * steps_per_epoch:
+        return "epochs"
+    if config.minutes is not None and elapsed >= config.minutes * 60:
+        return "minutes"
+    return None
+
+
+def _run_loop(cache, encoder: Encoder, head: ProjectionHead, config: TrainConfig, out_dir: Path, *,
+              resume: bool, progress: bool, fingerprint: str, parts: int = 1) -> dict:
+    """The optimisation loop; returns step, losses, elapsed_s, images_per_s, stopped_by, pictures_per_step.
+
+    images_per_s counts batch entries (view pairs through the model) per second of this session.
+    """
+    if config.channels_last:
+        encoder.to(memory_format=torch.channels_last)
     params = list(encoder.parameters()) + list(head.parameters())
     optimizer = torch.optim.AdamW(params, lr=config.lr, weight_decay=config.weight_decay)
-    step, elapsed, losses = 0, 0.0, []
-    queue = torch.zeros(0, config.proj_dim)
-    state = _load_checkpoint(out_dir, config) if resume else None
-    if state is not None:
-        encoder.load_state_dict(state["encoder"])
-        head.load_state_dict(state["head"])
-        optimizer.load_state_dict(state["optimizer"])
-        step, elapsed, losses, queue = state["step"], state["elapsed_s"], list(state["losses"]), state["queue"]
-        if state.get("fingerprint") != fingerprint:
-            log.warning("resuming on a different set of images than the checkpoint was trained on")
-        log.info("resuming from step %d (%.0f s trained)", step, elapsed)
-
-    sampler = _EpochBatches(len(cache), batch_size, config.seed, start_step=step)
-    dataset = _PairViews(cache, config.recipe, config.size, config.seed)
-    loader = DataLoader(dataset, batch_sampler=sampler, num_workers=config.workers,
-                        prefetch_factor=4 if config.workers else None, worker_init_fn=_ignore_sigint)
+    state = _start_state(encoder, head, optimizer, config, out_dir, resume, fingerprint)
+    plan = plan_batches(len(cache), config.batch_size, config.hard_negative_share, config.views)
+    batches, sampler = view_batches(cache, plan, config.recipe, config.size, config.seed, state["step"],
+                                    config.workers, threads=parts)
 
     def snapshot() -> dict:
-        return {"step": step, "elapsed_s": elapsed, "losses": losses, "queue": queue, "fingerprint": fingerprint,
-                "config": config.to_dict(), "encoder": encoder.state_dict(), "head": head.state_dict(),
-                "optimizer": optimizer.state_dict()}
-
-    def stop_reason() -> str | None:
-        if config.steps is not None and step >= config.steps:
-            return "steps"
-        if config.epochs is not None and step >= config.epochs * sampler.steps_per_epoch:
-            return "epochs"
-        if config.minutes is not None and elapsed >= config.minutes * 60:
-            return "minutes"
-        return None
+        return {**state, "fingerprint": fingerprint, "config": config.to_dict(), "encoder": encoder.state_dict(),
+                "head": head.state_dict(), "optimizer": optimizer.state_dict()}
 
     encoder.train()
     head.train()
-    bar = tqdm(total=config.steps, initial=step, desc="train", unit="step", disable=not progress, dynamic_ncols=True)
-    start_step, session_start, last_checkpoint = step, time.monotonic(), time.monotonic()
-    session_elapsed0 = elapsed
-    batches = iter(loader)
+    split = SplitEncoder(encoder, parts) if parts > 1 else None
+    bar = tqdm(total=config.steps, initial=state["step"], desc="train", unit="step", disable=not progress,
+               dynamic_ncols=True)
+    elapsed0, seen = state["elapsed_s"], 0
+    session_start = last_checkpoint = time.monotonic()
     try:
         with _deferred_interrupt() as interrupted:
-            while (stopped_by := stop_reason()) is None:
+            while (stopped_by := _stop_reason(config, state["step"], state["elapsed_s"],
+                                              sampler.steps_per_epoch)) is None:
                 if interrupted["set"]:
-                    log.warning("interrupted at step %d; checkpoint saved (resume with resume=True)", step)
+                    log.warning("interrupted at step %d; checkpoint saved (resume with resume=True)", state["step"])
                     _save_checkpoint(out_dir, snapshot())
                     raise KeyboardInterrupt
                 v1, v2 = next(batches)
-                lr = config.lr * _lr_factor(config, step, _progress(config, step, elapsed, sampler.steps_per_epoch))
-                loss, queue = _train_step(encoder, head, optimizer, v1, v2, queue, config, lr)
-                step += 1
-                losses.append(loss)
+                step = state["step"]
+                lr = config.lr * _lr_factor(config, step, _progress(config, step, state["elapsed_s"],
+                                                                    sampler.steps_per_epoch))
+                loss, state["queue"] = _train_step(encoder, head, optimizer, v1, v2, state["queue"], config, lr, split)
+                state["step"], seen = step + 1, seen + len(v1)
+                state["losses"].append(loss)
                 now = time.monotonic()
-                elapsed = session_elapsed0 + (now - session_start)
+                state["elapsed_s"] = elapsed0 + (now - session_start)
                 bar.update(1)
-                rate = (step - start_step) * batch_size / max(now - session_start, 1e-9)
-                bar.set_postfix(loss=f"{loss:.3f}", img_s=f"{rate:.0f}", refresh=False)
+                bar.set_postfix(loss=f"{loss:.3f}", img_s=f"{seen / max(now - session_start, 1e-9):.0f}", refresh=False)
                 if now - last_checkpoint >= config.checkpoint_every_s:
                     _save_checkpoint(out_dir, snapshot())
                     last_checkpoint = now
     finally:
         bar.close()
-        del batches  # shuts the worker processes down
+        batches.close()  # shuts view worker processes down, if any
+        if split is not None:
+            split.close()
     _save_checkpoint(out_dir, snapshot())
-    session_s = time.monotonic() - session_start
-    images_per_s = (step - start_step) * batch_size / max(session_s, 1e-9)
-    log.info("trained %d steps (%s budget reached), %.1f images/s", step, stopped_by, images_per_s)
+    images_per_s = seen / max(time.monotonic() - session_start, 1e-9)
+    log.info("trained %d steps (%s budget reached), %.1f images/s", state["step"], stopped_by, images_per_s)
+    encoder.to(memory_format=torch.contiguous_format)
     encoder.eval()
-    return {"step": step, "losses": losses, "elapsed_s": elapsed, "images_per_s": images_per_s, "stopped_by": stopped_by}
+    return {"step": state["step"], "losses": state["losses"], "elapsed_s": state["elapsed_s"],
+            "images_per_s": images_per_s, "stopped_by": stopped_by, "pictures_per_step": plan.pictures}
 
 
 # --- fine-tuning from human verdicts ------------------------------------------

@@ -5,8 +5,12 @@ detection the views imitate what copies go through: strong crops, moderate
 colour change, re-compression, borders, overlaid text and shapes. All
 strengths live in `ViewRecipe`, which is stored in the model card as a dict.
 
-The pipeline starts on a PIL image (cheap geometric ops and drawing) and ends
-as a normalised float tensor (3, size, size).
+Two implementations read the same recipe. `make_views` here works on one PIL
+image at a time (cheap geometric ops and drawing) and ends as a normalised float
+tensor (3, size, size); fine-tuning uses it. `indexer.batch_views` makes whole
+batches of view pairs on uint8 tensors with per-sample parameters, which is
+what contrastive training uses by default (benchmarks/results/train-views.md).
+Fields marked "batched" are read only by the batched views.
 """
 
 from __future__ import annotations
@@ -25,10 +29,19 @@ from .errors import UsageError
 
 @dataclass(frozen=True)
 class ViewRecipe:
-    """Augmentation strengths; probabilities are per view."""
+    """Augmentation strengths; probabilities are per view.
 
-    crop_scale: tuple[float, float] = (0.2, 1.0)  # RandomResizedCrop area fraction
-    crop_ratio: tuple[float, float] = (3 / 4, 4 / 3)
+    Ranges are (low, high) sampled uniformly unless said otherwise; colour factors
+    (brightness, contrast, saturation) are torchvision ColorJitter strengths s,
+    giving a factor in [1 - s, 1 + s]; hue is a fraction of a full turn.
+    """
+
+    crop_scale: tuple[float, float] = (0.2, 1.0)  # RandomResizedCrop area fraction (per-image views)
+    # Batched: of each pair, one moderate view keeps at least half of the picture, one hard view
+    # may keep a tenth; the fraction is of the entry's region (the whole picture or one part).
+    moderate_crop_scale: tuple[float, float] = (0.5, 1.0)
+    hard_crop_scale: tuple[float, float] = (0.1, 1.0)
+    crop_ratio: tuple[float, float] = (3 / 4, 4 / 3)  # width / height of the crop box, log-uniform
     flip_p: float = 0.5
     rotate_p: float = 0.2
     rotate_degrees: float = 8.0
@@ -45,9 +58,61 @@ class ViewRecipe:
     border_p: float = 0.3
     border_frac: tuple[float, float] = (0.02, 0.12)
     overlay_p: float = 0.3
+    # Batched only.
+    gamma_p: float = 0.2
+    gamma: tuple[float, float] = (0.7, 1.4)  # exponent, log-uniform
+    strong_contrast_p: float = 0.05
+    strong_contrast: tuple[float, float] = (1.6, 2.5)  # contrast factor, clipped to [0, 1] afterwards
+    noise_p: float = 0.2  # then one of Gaussian, shot or impulse noise, equally likely
+    noise_sigma: tuple[float, float] = (0.01, 0.08)  # Gaussian noise, in units of the full pixel range
+    shot_photons: tuple[float, float] = (30.0, 300.0)  # shot noise: variance x / photons, log-uniform
+    impulse_amount: tuple[float, float] = (0.002, 0.02)  # fraction of pixels set to black or white
+    pixelate_p: float = 0.1
+    pixelate_factor: tuple[int, int] = (2, 6)  # block side in pixels, inclusive
+    overlay_scale: tuple[float, float] = (0.15, 0.5)  # overlay width as a fraction of the view side
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
+
+    def validate(self) -> None:
+        """Raise UsageError unless probabilities lie in [0, 1] and ranges are ordered and in bounds."""
+        try:
+            problems = self._problems()
+        except (TypeError, ValueError, IndexError) as exc:  # a string, None or a wrong-length range
+            raise UsageError(f"bad view recipe: {exc}") from exc
+        if problems:
+            raise UsageError("bad view recipe: " + "; ".join(problems))
+
+    def _problems(self) -> list[str]:
+        problems = []
+        for f in fields(self):
+            value = getattr(self, f.name)
+            if isinstance(f.default, tuple):
+                if not (isinstance(value, tuple) and len(value) == 2 and all(map(_is_number, value))
+                        and 0 <= value[0] <= value[1]):
+                    problems.append(f"{f.name} must be a range (low, high) with 0 <= low <= high, got {value!r}")
+            elif not _is_number(value):
+                problems.append(f"{f.name} must be a number, got {value!r}")
+            elif f.name.endswith("_p") and not 0.0 <= value <= 1.0:
+                problems.append(f"{f.name} must be in [0, 1], got {value}")
+        if problems:
+            return problems
+        for name in ("crop_scale", "moderate_crop_scale", "hard_crop_scale"):
+            low, high = getattr(self, name)
+            if not 0 < low <= high <= 1:
+                problems.append(f"{name} must satisfy 0 < low <= high <= 1, got {(low, high)}")
+        checks = [
+            (self.crop_ratio[0] > 0, f"crop_ratio must be positive, got {self.crop_ratio}"),
+            (self.rotate_degrees >= 0, f"rotate_degrees must be >= 0, got {self.rotate_degrees}"),
+            (self.border_frac[1] < 0.5, f"border_frac must stay below 0.5, got {self.border_frac}"),
+            (self.blur_sigma[0] > 0, f"blur_sigma must be positive, got {self.blur_sigma}"),
+            (self.gamma[0] > 0 and self.shot_photons[0] > 0, "gamma and shot_photons must be positive"),
+            (self.pixelate_factor[0] >= 1, f"pixelate_factor must be >= 1, got {self.pixelate_factor}"),
+            (1 <= self.jpeg_quality[0] and self.jpeg_quality[1] <= 100, "jpeg_quality must lie in 1..100"),
+            (0 < self.overlay_scale[1] <= 1, f"overlay_scale must lie in (0, 1], got {self.overlay_scale}"),
+            (self.impulse_amount[1] <= 1, f"impulse_amount must be <= 1, got {self.impulse_amount}"),
+        ]
+        return problems + [message for ok, message in checks if not ok]
 
     @classmethod
     def from_dict(cls, values: dict[str, Any]) -> "ViewRecipe":
@@ -56,6 +121,10 @@ class ViewRecipe:
         if unknown:
             raise UsageError(f"unknown view recipe fields: {', '.join(sorted(unknown))}")
         return cls(**{k: tuple(v) if isinstance(v, list) else v for k, v in values.items()})
+
+
+def _is_number(value: Any) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool)
 
 
 def _rand(low: float = 0.0, high: float = 1.0) -> float:
