@@ -6,8 +6,9 @@ and on the collection, so it is fitted at every full build, on nothing but the s
 a seeded sample of its images is edited into synthetic copies with the calibration's
 mild edit family (indexer/edits.py), and each candidate w is scored by the average
 precision of separating a copy's score to its original from the copy's best score to
-any other image of the collection (a sample), a DISC21-style question. Ties go to the
-weight closest to an even split.
+any other image of the collection (a sample), a DISC21-style question. Weights within
+AP_TOLERANCE of the best count as ties (with a few hundred copies a smaller difference is
+noise), and ties go to the weight closest to an even split.
 """
 
 from __future__ import annotations
@@ -27,6 +28,9 @@ FIT_ORIGINALS = 128  # images edited into copies; 2 copies each
 EDITS_PER_ORIGINAL = 2
 NEGATIVE_SAMPLE = 20_000  # collection images a copy's best wrong match is sought among
 MIN_IMAGES = 20  # below this, the default weight stays
+# Average precision over ~250 copies has a standard error of about 0.02 (binomial, at AP ~0.75), so
+# differences under half of that decide nothing.
+AP_TOLERANCE = 0.01
 
 
 @dataclass
@@ -69,7 +73,7 @@ def choose_weight(xb: np.ndarray, xq: np.ndarray, targets: np.ndarray, learned_d
         negative = np.where(mask, -np.inf, sims).max(axis=1)
         scores[float(w)] = float(average_precision_score(labels, np.r_[positive, negative]))
     best = max(scores.values())
-    weight = min((w for w, ap in scores.items() if ap >= best - 1e-9), key=lambda w: abs(w - 0.5))
+    weight = min((w for w, ap in scores.items() if ap >= best - AP_TOLERANCE), key=lambda w: abs(w - 0.5))
     return WeightFit(weight, scores, copies=len(xq))
 
 

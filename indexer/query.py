@@ -24,6 +24,19 @@ from .store import Store
 log = logging.getLogger(__name__)
 
 QUERY_BATCH = 32
+BACKGROUND_K = 10  # neighbours averaged for a query's background statistic (Pizzi et al. use 10, from memory)
+
+
+def background_statistic(sims: Sequence[float], k: int = BACKGROUND_K) -> float:
+    """The mean of a query's similarities ranked 2 to k + 1 in the collection (0 with fewer than 2).
+
+    Query-adaptive score normalisation (Pizzi et al. 2022, "A self-supervised descriptor for
+    image copy detection", sec. 3.3) subtracts beta times this from every score of the query,
+    so a score says how far a candidate stands out from what the query resembles anyway: a
+    textured photo's many look-alikes no longer score like copies. The background set is the
+    generation's own index; the closest one is skipped since it is the copy, if there is one."""
+    ranked = sorted(sims, reverse=True)[1 : k + 1]
+    return float(np.mean(ranked)) if ranked else 0.0
 
 
 def expand_queries(paths: Sequence[str], extensions: tuple[str, ...]) -> list[str]:
@@ -60,6 +73,7 @@ class Searcher:
         self.size = int(self.card["image_size"])
         self.threshold = self.generation.threshold("near")
         self.verify_top = int(store.settings.verify_top)
+        self.score_norm = float(store.settings.score_norm)
 
     def vectors_for_images(self, images) -> np.ndarray:
         """Query vectors in the generation's space (encoder output, then its whitening)."""
@@ -75,15 +89,18 @@ class Searcher:
         `xq`), the best `verify_top` candidates are verified and re-ranked (indexer/rerank.py)."""
         threshold = self.threshold if threshold is None else threshold
         catalog = catalog if catalog is not None else self.store.catalog
-        D, I = faiss_index.search(self.index, np.ascontiguousarray(xq, dtype=np.float32), k + len(exclude))
+        wanted = max(k, BACKGROUND_K + 1) if self.score_norm else k  # the background statistic needs k + 1
+        D, I = faiss_index.search(self.index, np.ascontiguousarray(xq, dtype=np.float32), wanted + len(exclude))
         paths = catalog.paths_for([int(i) for i in I.ravel() if i >= 0])
         out = []
         for d_row, i_row in zip(D, I):
+            kept = [(float(d), int(i)) for d, i in zip(d_row, i_row) if i >= 0 and int(i) not in exclude]
+            shift = self.score_norm * background_statistic([d for d, _ in kept])
             out.append([
-                {"id": int(i), "path": paths.get(int(i)), "similarity": round(float(d), 6),
-                 "descriptor_similarity": round(float(d), 6), "evidence": None, "duplicate": bool(d >= threshold)}
-                for d, i in zip(d_row, i_row) if i >= 0 and int(i) not in exclude
-            ][:k])
+                {"id": i, "path": paths.get(i), "similarity": round(d - shift, 6),
+                 "descriptor_similarity": round(d, 6), "evidence": None, "duplicate": bool(d >= threshold)}
+                for d, i in kept[:k]
+            ])
         if images is not None and self.verify_top > 0:
             out = self._verified(images, out, threshold, catalog)
         return out

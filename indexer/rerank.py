@@ -39,6 +39,14 @@ def boosted(score: float) -> float:
     return 1.0 - (1.0 - score) / 2.0
 
 
+def verdict_score(result: dict) -> float:
+    """What a result's `duplicate` verdict compares with the calibrated threshold: its descriptor score,
+    boosted when verified (calibration measures unnormalised scores, so the query normalisation of
+    `similarity` is left out)."""
+    d = result["descriptor_similarity"]
+    return boosted(d) if (result.get("evidence") or {}).get("verified") else d
+
+
 def _evidence(v, size: tuple[int, int]) -> dict:
     w, h = size
     box = None if v.box is None else [round(v.box[0] / w, 4), round(v.box[1] / h, 4),
@@ -54,7 +62,8 @@ def rerank(query: Image.Image, results: list[dict], candidates: dict[int, str], 
 
     `candidates` maps result ids to the file to read each candidate's pixels from. Each verified
     result gets the boosted similarity, `descriptor_similarity` (the score before) and `evidence`;
-    the list comes back sorted by the new scores, with `duplicate` redone against `threshold`."""
+    the list comes back sorted by the new scores. A verified result's `duplicate` is redone against
+    `threshold` with its boosted descriptor score (thresholds are calibrated on that scale)."""
     from .verify import VerifyConfig, verify_candidates
 
     head = [r for r in results[:top] if r["id"] in candidates]
@@ -73,11 +82,9 @@ def rerank(query: Image.Image, results: list[dict], candidates: dict[int, str], 
         r["evidence"] = _evidence(v, im.size)
         if v.verified:
             r["similarity"] = round(boosted(r["similarity"]), 6)
-    out = sorted(results, key=lambda r: -r["similarity"])
-    if threshold is not None:
-        for r in out:
-            r["duplicate"] = bool(r["similarity"] >= threshold)
-    return out
+            if threshold is not None:
+                r["duplicate"] = bool(verdict_score(r) >= threshold)
+    return sorted(results, key=lambda r: -r["similarity"])
 
 
 def _smaller(im: Image.Image) -> Image.Image:

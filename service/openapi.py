@@ -81,12 +81,14 @@ SCHEMAS = {
     "Neighbour": {
         "type": "object", "required": ["id", "path", "similarity", "descriptor_similarity", "evidence", "duplicate"],
         "properties": {"id": {"type": "integer"}, "path": NULLABLE_STRING,
-                       "similarity": {"type": "number", "description": "the score, higher is closer: the descriptors' "
-                                      "score, moved halfway to 1 when geometric verification confirms the match"},
+                       "similarity": {"type": "number", "description": "the score, higher is closer, comparable "
+                                      "across queries: the descriptors' score less the query's background statistic "
+                                      "(score_norm), moved halfway to 1 when geometric verification confirms the match"},
                        "descriptor_similarity": {"type": "number", "description": "the descriptors' score alone "
                                                  "(learned and classical cosines, weighed)"},
                        "evidence": {"$ref": "#/components/schemas/Evidence"},
-                       "duplicate": {"type": "boolean", "description": "similarity >= threshold"}},
+                       "duplicate": {"type": "boolean", "description": "descriptor_similarity (moved halfway to 1 "
+                                     "when verified) >= threshold"}},
     },
     "SearchResult": {
         "type": "object", "required": ["generation", "model", "k", "threshold", "threshold_from", "query", "results"],

@@ -185,7 +185,7 @@ def test_calibrate_command_summary_precision_flag_and_verdict_import(store_dir, 
     proc = run_cli("similar", str(store_dir.parent / "photos" / "scene03.png"), "--store", store_dir,
                    "--precision", "0.9", "--json", "-k", "2", check_exit=None)
     if proc.returncode == 0:
-        assert json.loads(proc.stdout.splitlines()[0])["results"][0]["similarity"] > 0.99
+        assert json.loads(proc.stdout.splitlines()[0])["results"][0]["descriptor_similarity"] > 0.99
     else:  # 0.9 is not reachable on this tiny store: said in one line
         assert "no threshold reaches precision 0.9" in proc.stderr
     proc = run_cli("groups", "--store", store_dir, "--precision", "0.9", "--threshold", "0.5", check_exit=2)

@@ -9,7 +9,7 @@ from PIL import Image
 from sklearn.metrics import average_precision_score
 
 from indexer.build import load_vectors
-from indexer.fusion import WEIGHT_GRID, choose_weight, fit_classic_weight
+from indexer.fusion import AP_TOLERANCE, WEIGHT_GRID, choose_weight, fit_classic_weight
 from indexer.pipeline import run_index
 from indexer.settings import load_settings
 from indexer.store import Store
@@ -54,7 +54,7 @@ def test_the_weight_follows_the_informative_part():
         assert side(fit.weight), (informative, fit.average_precision)
         for w in (0.2, 0.5, 0.8):
             assert abs(fit.average_precision[w] - _reference_ap(xb, xq, targets, dl, w)) < 1e-6
-        assert fit.average_precision[fit.weight] == max(fit.average_precision.values())
+        assert fit.average_precision[fit.weight] >= max(fit.average_precision.values()) - AP_TOLERANCE
         assert set(fit.average_precision) == set(WEIGHT_GRID)
 
 

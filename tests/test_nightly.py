@@ -361,7 +361,7 @@ def _assert_serving_previous(store_dir: Path, sources, previous: str) -> None:
         assert searcher.generation.name == previous
         query = str(sources[0] / "00.jpg")   # unchanged between the runs
         (answer,) = searcher.similar_files([query], k=3)
-        assert answer["results"][0]["path"] == query and answer["results"][0]["similarity"] > 0.99
+        assert answer["results"][0]["path"] == query and answer["results"][0]["descriptor_similarity"] > 0.99
 
 
 def _assert_same_end(got: dict, want: dict) -> None:

@@ -79,7 +79,7 @@ def test_query_answers_and_bad_queries_get_their_own_error(folder, tmp_path):
             assert len(results) == 3
             # The indexed file itself comes first, at similarity ~1 (its vector was made from the
             # cached small copy, the query's from the file: same pixels up to JPEG re-encoding).
-            assert results[0]["path"] == answer["query"] and results[0]["similarity"] > 0.99
+            assert results[0]["path"] == answer["query"] and results[0]["descriptor_similarity"] > 0.99
             assert [r["similarity"] for r in results] == sorted((r["similarity"] for r in results), reverse=True)
 
 

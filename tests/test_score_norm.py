@@ -7,6 +7,7 @@ b is the mean similarity to the background neighbours ranked 2..k+1, never count
 """
 
 import numpy as np
+import pytest
 
 from benchmarks.score_norm import Background, fit_background, none
 
@@ -55,3 +56,15 @@ def test_statistic_against_brute_force_on_random_vectors():
         sims = np.array([x @ b for b, j in zip(bg, ids) if j != i])
         expected.append(np.sort(sims)[::-1][1:8].mean())
     np.testing.assert_allclose(background.statistic(xq, qids), expected, atol=1e-5)
+
+
+def test_query_background_statistic_used_by_similar_matches_a_hand_computation():
+    """indexer.query.background_statistic: the mean of ranks 2..k+1 of a query's similarities (the
+    product's form of the same normalisation, with the generation's index as the background)."""
+    from indexer.query import background_statistic
+
+    sims = [0.2, 0.95, 0.5, 0.4, 0.1]
+    # Sorted: .95, .5, .4, .2, .1; skip .95; k = 3 -> (.5 + .4 + .2) / 3.
+    assert background_statistic(sims, k=3) == pytest.approx((0.5 + 0.4 + 0.2) / 3)
+    assert background_statistic(sims, k=10) == pytest.approx((0.5 + 0.4 + 0.2 + 0.1) / 4)
+    assert background_statistic([0.9]) == 0.0

@@ -15,6 +15,7 @@ from indexer.generations import CALIBRATION_FILE
 from indexer.pipeline import run_index
 from indexer.settings import load_settings
 from indexer.store import Store
+from indexer.rerank import verdict_score
 from service import create_app
 
 from .service_support import API_KEY, transformed
@@ -117,7 +118,7 @@ def test_a_calibrated_generation_answers_precision_with_its_threshold(service_st
     data = transformed(service_store.originals["coins"], tmp_path / "q.jpg").read_bytes()
     answer = c.post("/v1/search?precision=0.9", data=data, content_type="image/jpeg").get_json()
     assert answer["threshold"] == gen.threshold("near", 0.9) and answer["threshold_from"] == "precision"
-    assert all(r["duplicate"] == (r["similarity"] >= answer["threshold"]) for r in answer["results"])
+    assert all(r["duplicate"] == (verdict_score(r) >= answer["threshold"]) for r in answer["results"])
     _error(c.post("/v1/search?precision=0.999", data=data, content_type="image/jpeg"), 400)
 
 
