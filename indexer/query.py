@@ -25,17 +25,22 @@ log = logging.getLogger(__name__)
 
 QUERY_BATCH = 32
 BACKGROUND_K = 10  # neighbours averaged for a query's background statistic (Pizzi et al. use 10, from memory)
+BACKGROUND_SEARCH = 32  # neighbours searched for it: room for 21 copies of the query to be skipped
 
 
-def background_statistic(sims: Sequence[float], k: int = BACKGROUND_K) -> float:
-    """The mean of a query's similarities ranked 2 to k + 1 in the collection (0 with fewer than 2).
+def background_statistic(sims: Sequence[float], k: int = BACKGROUND_K, copy_threshold: float = np.inf) -> float:
+    """The mean of a query's k best similarities in the collection after its closest one and every one
+    at or above `copy_threshold` are skipped (0 when none is left).
 
     Query-adaptive score normalisation (Pizzi et al. 2022, "A self-supervised descriptor for
     image copy detection", sec. 3.3) subtracts beta times this from every score of the query,
     so a score says how far a candidate stands out from what the query resembles anyway: a
     textured photo's many look-alikes no longer score like copies. The background set is the
-    generation's own index; the closest one is skipped since it is the copy, if there is one."""
-    ranked = sorted(sims, reverse=True)[1 : k + 1]
+    generation's own index; the closest one is skipped since it is the copy, if there is one, and
+    so are the scores the generation calls copies, so that an image with several copies in the
+    collection is not measured against its own copies."""
+    ranked = sorted(sims, reverse=True)[1:]
+    ranked = [s for s in ranked if s < copy_threshold][:k]
     return float(np.mean(ranked)) if ranked else 0.0
 
 
@@ -89,13 +94,14 @@ class Searcher:
         `xq`), the best `verify_top` candidates are verified and re-ranked (indexer/rerank.py)."""
         threshold = self.threshold if threshold is None else threshold
         catalog = catalog if catalog is not None else self.store.catalog
-        wanted = max(k, BACKGROUND_K + 1) if self.score_norm else k  # the background statistic needs k + 1
+        # The background statistic needs k + 1 neighbours and more for the copies it skips.
+        wanted = max(k, BACKGROUND_SEARCH) if self.score_norm else k
         D, I = faiss_index.search(self.index, np.ascontiguousarray(xq, dtype=np.float32), wanted + len(exclude))
         paths = catalog.paths_for([int(i) for i in I.ravel() if i >= 0])
         out = []
         for d_row, i_row in zip(D, I):
             kept = [(float(d), int(i)) for d, i in zip(d_row, i_row) if i >= 0 and int(i) not in exclude]
-            shift = self.score_norm * background_statistic([d for d, _ in kept])
+            shift = self.score_norm * background_statistic([d for d, _ in kept], copy_threshold=self.threshold)
             out.append([
                 {"id": i, "path": paths.get(i), "similarity": round(d - shift, 6),
                  "descriptor_similarity": round(d, 6), "evidence": None, "duplicate": bool(d >= threshold)}

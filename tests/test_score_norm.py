@@ -68,3 +68,6 @@ def test_query_background_statistic_used_by_similar_matches_a_hand_computation()
     assert background_statistic(sims, k=3) == pytest.approx((0.5 + 0.4 + 0.2) / 3)
     assert background_statistic(sims, k=10) == pytest.approx((0.5 + 0.4 + 0.2 + 0.1) / 4)
     assert background_statistic([0.9]) == 0.0
+    # Scores at or above the generation's copy threshold are the query's copies, not its background:
+    # with a threshold of 0.45, .5 is skipped too -> (.4 + .2 + .1) / 3.
+    assert background_statistic(sims, k=10, copy_threshold=0.45) == pytest.approx((0.4 + 0.2 + 0.1) / 3)
