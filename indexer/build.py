@@ -17,14 +17,14 @@ import numpy as np
 
 from . import generations
 from . import index as faiss_index
+from .classic import DEFAULT_CLASSIC_WEIGHT
 from .errors import ImageReadError, NotReadyError
+from .fusion import fit_classic_weight
 from .groups import build_groups, summarize
 from .images import read_image
 from .model import read_card
 from .pause import pause_at
 from .store import Store
-from .classic import DEFAULT_CLASSIC_WEIGHT
-from .fusion import fit_classic_weight
 from .whiten import fit_whitening
 
 log = logging.getLogger(__name__)

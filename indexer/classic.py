@@ -62,16 +62,20 @@ def dct_matrix(n: int, dtype=torch.float32) -> torch.Tensor:
     return c.to(dtype)
 
 
-def _luma(p: torch.Tensor) -> torch.Tensor:
-    from .encoder import luma
+# Rec. ITU-R BT.601 luma weights (the ones Pillow's convert("L") uses).
+LUMA_WEIGHTS = (0.299, 0.587, 0.114)
 
-    return luma(p)
+
+def luma(p: torch.Tensor) -> torch.Tensor:
+    """(B, 3, H, W) pixels in [0, 1] -> (B, 1, H, W) BT.601 luma."""
+    w = torch.tensor(LUMA_WEIGHTS, dtype=p.dtype, device=p.device).view(1, 3, 1, 1)
+    return (p * w).sum(dim=1, keepdim=True)
 
 
 def classic_descriptor(p: torch.Tensor, name: str) -> torch.Tensor:
     """(B, 3, H, W) pixels in [0, 1] -> (B, classic_dim(name)) unit rows."""
     kind, k = _parse(name)
-    y = _luma(p)
+    y = luma(p)
     if kind == "thumb":
         t = F.adaptive_avg_pool2d(y, k).flatten(1)
         t = t - t.mean(dim=1, keepdim=True)

@@ -21,6 +21,7 @@ from torch import nn
 from torchvision.models import mobilenet_v3_small
 from torchvision.models.resnet import BasicBlock
 
+from .classic import DEFAULT_CLASSIC, check_classic, classic_descriptor, classic_dim, luma
 from .errors import UsageError
 
 # ImageNet channel statistics (common practice). They are kept even though we never
@@ -36,8 +37,6 @@ POOLINGS = ("gem", "avg")
 # own mean and spread of luminance, so brightness and contrast changes barely move the input.
 INPUT_NORMS = ("imagenet", "luma")
 DEFAULT_INPUT_NORM = "luma"
-# Rec. ITU-R BT.601 luma weights (the ones Pillow's convert("L") uses).
-LUMA_WEIGHTS = (0.299, 0.587, 0.114)
 
 
 class GeM(nn.Module):
@@ -136,12 +135,6 @@ def pixels(x: torch.Tensor) -> torch.Tensor:
     return x * std + mean
 
 
-def luma(p: torch.Tensor) -> torch.Tensor:
-    """(B, 3, H, W) pixels in [0, 1] -> (B, 1, H, W) BT.601 luma."""
-    w = torch.tensor(LUMA_WEIGHTS, dtype=p.dtype, device=p.device).view(1, 3, 1, 1)
-    return (p * w).sum(dim=1, keepdim=True)
-
-
 # Below this luma spread (about 5 grey levels) an image counts as flat and is not stretched.
 MIN_LUMA_STD = 0.02
 
@@ -172,8 +165,6 @@ class Encoder(nn.Module):
     def __init__(self, backbone: nn.Module, num_features: int, dim: int = 128, pooling: str = "gem",
                  input_norm: str = "imagenet", classic: str | None = None):
         super().__init__()
-        from .classic import classic_dim
-
         self.backbone = backbone
         self.num_features = num_features
         self.dim = dim
@@ -203,8 +194,6 @@ class Encoder(nn.Module):
         learned = self.forward_head(self.forward_features(x))
         if not self.classic:
             return learned
-        from .classic import classic_descriptor
-
         return torch.cat([learned, classic_descriptor(pixels(x), self.classic)], dim=1)
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
@@ -236,8 +225,6 @@ def create_encoder(arch: str = DEFAULT_ARCH, dim: int = 128, pooling: str = "gem
     """Build a randomly initialised encoder (never downloads weights).
 
     `classic="default"` takes indexer.classic's default descriptor; None stores the learned vector alone."""
-    from .classic import DEFAULT_CLASSIC, check_classic
-
     if arch not in _BACKBONES:
         raise UsageError(f"unknown encoder architecture {arch!r}; choose one of {', '.join(ARCHS)}")
     if pooling not in POOLINGS:

@@ -97,10 +97,11 @@ class Searcher:
         # The background statistic needs k + 1 neighbours and more for the copies it skips.
         wanted = max(k, BACKGROUND_SEARCH) if self.score_norm else k
         D, I = faiss_index.search(self.index, np.ascontiguousarray(xq, dtype=np.float32), wanted + len(exclude))
-        paths = catalog.paths_for([int(i) for i in I.ravel() if i >= 0])
+        rows = [[(float(d), int(i)) for d, i in zip(d_row, i_row) if i >= 0 and int(i) not in exclude]
+                for d_row, i_row in zip(D, I)]
+        paths = catalog.paths_for([i for kept in rows for _, i in kept[:k]])  # only the ones answered
         out = []
-        for d_row, i_row in zip(D, I):
-            kept = [(float(d), int(i)) for d, i in zip(d_row, i_row) if i >= 0 and int(i) not in exclude]
+        for kept in rows:
             shift = self.score_norm * background_statistic([d for d, _ in kept], copy_threshold=self.threshold)
             out.append([
                 {"id": i, "path": paths.get(i), "similarity": round(d - shift, 6),

@@ -76,8 +76,8 @@ def rerank(query: Image.Image, results: list[dict], candidates: dict[int, str], 
             log.debug("cannot verify candidate %s: %s", r["id"], exc)
     if not checked:
         return results
-    q = query if max(query.size) <= VERIFY_SIDE else _smaller(query)
-    for r, im, v in zip(checked, images, verify_candidates(q, images, config=VerifyConfig(max_side=VERIFY_SIDE))):
+    # verify_candidates brings both sides to VERIFY_SIDE itself.
+    for r, im, v in zip(checked, images, verify_candidates(query, images, config=VerifyConfig(max_side=VERIFY_SIDE))):
         r.setdefault("descriptor_similarity", r["similarity"])
         r["evidence"] = _evidence(v, im.size)
         if v.verified:
@@ -85,12 +85,6 @@ def rerank(query: Image.Image, results: list[dict], candidates: dict[int, str], 
             if threshold is not None:
                 r["duplicate"] = bool(verdict_score(r) >= threshold)
     return sorted(results, key=lambda r: -r["similarity"])
-
-
-def _smaller(im: Image.Image) -> Image.Image:
-    im = im.copy()
-    im.thumbnail((VERIFY_SIDE, VERIFY_SIDE), Image.Resampling.BILINEAR)
-    return im
 
 
 def rerank_all(queries: Sequence[Image.Image], answers: list[list[dict]], candidates: dict[int, str], top: int,
