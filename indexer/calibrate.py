@@ -32,6 +32,7 @@ from .embed import embed_images
 from .errors import ImageReadError, NotReadyError, UsageError
 from .generations import threshold_for_precision
 from .images import read_image
+from .query_verdict import QueryVerdictConfig, calibrate_query
 from .rates import counts_at_or_above, fit_mixture, survival, wilson_interval
 from .store import Store
 
@@ -59,14 +60,25 @@ class CalibrationConfig:
     queries: int = 2_000  # images whose neighbours above the floor are the hard negatives
     random_pairs: int = 50_000
     min_verdicts: int = 30  # verdicts needed (with at least 5 of each kind) before they are used
+    query: QueryVerdictConfig = field(default_factory=QueryVerdictConfig)
     seed: int = 0
     tiers: dict = field(default_factory=lambda: {"near": "near-duplicate", "similar": "similar"})
 
+    @classmethod
+    def from_settings(cls, settings, *, target_precision: float | None = None,
+                      similar_target_precision: float | None = None) -> "CalibrationConfig":
+        """The configuration the store's settings ask for; a given target overrides its setting."""
+        return cls(target_precision=target_precision or settings.target_precision,
+                   similar_target_precision=similar_target_precision or settings.similar_target_precision,
+                   query=QueryVerdictConfig(false_flag_rate=settings.false_flag_rate, prior=settings.copy_prior))
+
     def validate(self) -> None:
+        self.query.validate()
         for name in ("target_precision", "similar_target_precision"):
             value = getattr(self, name)
             if not 0.5 <= value < 1.0:
                 raise UsageError(f"{name.replace('_', ' ')} must be in [0.5, 1), not {value}")
+        self.query.validate()
         if self.originals < 10 or self.edits_per_original < 1 or self.queries < 10:
             raise UsageError("calibration needs at least 10 originals, 1 edit each and 10 queries")
 
@@ -93,8 +105,9 @@ def _originals(store: Store, card: dict, ids: np.ndarray, meta: dict, count: int
 
 
 def positive_scores(encoder, size: int, whitening, xb: np.ndarray, rows: list[int], paths: list[str],
-                    strengths: EditStrengths, kinds: tuple[str, ...], per_original: int, rng) -> tuple[np.ndarray, list[str]]:
-    """Cosine between each edited copy and its original's indexed vector; the edit kind of each."""
+                    strengths: EditStrengths, kinds: tuple[str, ...], per_original: int, rng) -> tuple[np.ndarray, list[str], list, list[int]]:
+    """Cosine between each edited copy and its original's indexed vector; the edit kind of each,
+    the copies themselves and the row of each one's original."""
     edited, targets, edit_kinds = [], [], []
     for row, path in zip(rows, paths):
         try:
@@ -110,7 +123,7 @@ def positive_scores(encoder, size: int, whitening, xb: np.ndarray, rows: list[in
     if not edited:
         raise NotReadyError("no original could be read for calibration")
     xq = whitening.apply(embed_images(encoder, edited, size))
-    return np.einsum("ij,ij->i", xq, xb[targets]), edit_kinds
+    return np.einsum("ij,ij->i", xq, xb[targets]), edit_kinds, edited, targets
 
 
 def _known_duplicate(meta_a: dict, meta_b: dict) -> str | None:
@@ -245,6 +258,44 @@ def per_kind_recall(scores: np.ndarray, kinds: list[str], t: float) -> dict:
     return out
 
 
+def _query_verdict(store, index, whitening, encoder, card, ids, meta, same_pairs, near_copies, near_threshold,
+                   config: CalibrationConfig, rng) -> tuple[dict | None, dict]:
+    """The query verdict (query_verdict.py), asked through the searcher that will answer users."""
+    from .query import Searcher
+
+    edited, targets = near_copies
+    searcher = Searcher.for_build(store, index, whitening, encoder, card, near_threshold)
+    strengths, kinds = TIER_EDITS["near"]
+
+    def edit(image, rng):
+        return apply_edit(image, str(rng.choice(list(kinds))), rng, strengths)
+
+    return calibrate_query(searcher, ids, meta, same_pairs, edited, [int(ids[r]) for r in targets], config.query,
+                           rng, edit)
+
+
+def grouping_threshold(near: dict, query: dict | None, n_images: int) -> dict:
+    """The threshold groups are built at, and why.
+
+    The pairwise estimate's threshold when it reaches its target: the collection itself then
+    says how precise its pairs are, whichever side of the query threshold that falls. When it
+    does not (a collection with almost no duplicates pushes the pairwise threshold to the top,
+    however clear its copies are), the query verdict's threshold on the descriptor's scale:
+    groups are then no stricter than what `similar` calls a copy."""
+    t_pairs = float(near["threshold"])
+    expected = float(near.get("duplicate_pairs", 0.0))
+    few = expected < max(1.0, 0.01 * n_images)
+    if query is None or near["target_met"]:
+        reason = (f"pairwise precision {near['target_precision']:.2f} reached" if near["target_met"]
+                  else "pairwise precision target not reached and no query verdict: the most precise threshold")
+        return {"threshold": t_pairs, "source": "pairs", "reason": reason, "almost_no_duplicates": few,
+                "expected_duplicate_pairs": round(expected, 1)}
+    t = min(t_pairs, float(query["descriptor_threshold"]))
+    return {"threshold": t, "source": "query", "almost_no_duplicates": few, "expected_duplicate_pairs": round(expected, 1),
+            "reason": "pairwise precision target not reached: groups use the query verdict's threshold "
+                      "(the descriptor's scale)"}
+
+
 # -- the whole calibration -------------------------------------------------------------------
 def calibrate(store: Store, *, model_dir: Path, index, ids: np.ndarray, xb: np.ndarray, whitening,
               config: CalibrationConfig | None = None, progress=None) -> dict:
@@ -268,6 +319,8 @@ def calibrate(store: Store, *, model_dir: Path, index, ids: np.ndarray, xb: np.n
     for tier, (strengths, kinds) in TIER_EDITS.items():
         positives[tier] = positive_scores(encoder, size, whitening, xb, rows, paths, strengths, kinds,
                                           config.edits_per_original, rng)
+    near_copies = positives["near"][2:]
+    positives = {tier: scores_kinds[:2] for tier, scores_kinds in positives.items()}
 
     a = rng.integers(0, n, config.random_pairs)
     b = (a + rng.integers(1, n, config.random_pairs)) % n  # never a == b
@@ -295,6 +348,11 @@ def calibrate(store: Store, *, model_dir: Path, index, ids: np.ndarray, xb: np.n
     if all(p is None for p in tiers["near"]["curve"]["precision"]):
         raise NotReadyError("calibration could not separate copies from other pairs in this collection "
                             f"({len(hits)} close pairs above {floor:.3f}); the default thresholds stay")
+    query, query_samples = _query_verdict(store, index, whitening, encoder, card, ids, meta, same_pairs, near_copies,
+                                          tiers["near"]["threshold"], config, rng)
+    tiers["near"]["threshold_pairs"] = tiers["near"]["threshold"]
+    groups = grouping_threshold(tiers["near"], query, n)
+    tiers["near"]["threshold"] = groups["threshold"]
     verdicts = verdict_report(verdict_s, verdict_y, grid, config.target_precision, config.min_verdicts)
     if verdicts and verdicts.get("threshold") is not None and verdicts["threshold"] > tiers["near"]["threshold"]:
         tiers["near"]["threshold_synthetic"] = tiers["near"]["threshold"]
@@ -325,9 +383,12 @@ def calibrate(store: Store, *, model_dir: Path, index, ids: np.ndarray, xb: np.n
             "neighbours of the sampled images represent the whole collection (scaled by its size)",
         ],
         "tiers": tiers,
+        "query": query,
+        "groups": groups,
         "verdicts": verdicts,
         "distributions": {tier: positives[tier][0].round(4).tolist() for tier in positives}
-        | {"hard_negatives": hits.round(4).tolist()[:20_000], "random": random_scores[:5_000].round(4).tolist()},
+        | {"hard_negatives": hits.round(4).tolist()[:20_000], "random": random_scores.round(3).tolist()}
+        | query_samples,
     }
     from .calibration_report import summary_text
 

@@ -99,10 +99,8 @@ def cmd_calibrate(args) -> int:
 
     with open_store(args) as store, store.lock():
         settings = store.settings
-        config = CalibrationConfig(
-            target_precision=args.target_precision or settings.target_precision,
-            similar_target_precision=args.similar_target_precision or settings.similar_target_precision,
-        )
+        config = CalibrationConfig.from_settings(settings, target_precision=args.target_precision,
+                                                 similar_target_precision=args.similar_target_precision)
         out = recalibrate(store, config, keep=settings.keep_generations)
         gen_dir = store.generations_dir / out["generation"]
         calibration = json.loads((gen_dir / "calibration.json").read_text("utf-8"))
@@ -164,6 +162,8 @@ def cmd_status(args) -> int:
         ("model", status["model"] or "none yet"),
         ("generation", f"{gen['name']} ({gen['indexed']} images, {gen['groups']['groups']} groups)" if gen else "none yet"),
     ])
+    for name, answer in ((gen or {}).get("questions") or {}).items():
+        print(f"  {name}: {answer['text']}")
     for root in status["source_folders"]:
         print(f"  source: {root}")
     for row in unreadable:
@@ -245,7 +245,8 @@ def _print_answer(answer: dict) -> None:
         print("  (no results)")
     for rank, r in enumerate(answer["results"], 1):
         mark = "duplicate" if r["duplicate"] else ""
-        print(f"  {rank:>3}  {r['similarity']:.3f}  {mark:<9}  #{r['id']}  {r['path']}")
+        chance = "" if r.get("probability") is None else f"p={r['probability']:.2f}"
+        print(f"  {rank:>3}  {r['similarity']:.3f}  {chance:<6}  {mark:<9}  #{r['id']}  {r['path']}")
 
 
 def cmd_groups(args) -> int:

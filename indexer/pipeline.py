@@ -133,8 +133,7 @@ def _build(store: Store, stages: dict, progress, train_config, index_spec, calib
     before = prev.load_groups()["groups"] if prev is not None else []
     built = refresh_generation(
         store, model_dir, settings=settings, index_spec=index_spec,
-        calibration=CalibrationConfig(target_precision=settings.target_precision,
-                                      similar_target_precision=settings.similar_target_precision) if calibrate else None,
+        calibration=CalibrationConfig.from_settings(settings) if calibrate else None,
     )
     stages.update(built.pop("stages", {}))
     out.update(built)
@@ -159,6 +158,8 @@ def _log_summary(summary: dict) -> None:
 
 def store_status(store: Store) -> dict:
     """What `nearsight status` and GET /v1/status report."""
+    from .calibration_report import questions
+
     counts = store.catalog.counts()
     last = store.catalog.last_run("index")
     gen = generations.current(store)
@@ -172,6 +173,7 @@ def store_status(store: Store) -> dict:
         "generation": None if gen is None else {
             "name": gen.name, "indexed": gen.meta.get("indexed"), "groups": gen.meta.get("groups"),
             "thresholds": gen.meta.get("thresholds"), "index_spec": gen.meta.get("index_spec"),
+            "questions": questions(gen.load_calibration()),
         },
         "last_index_run": None
         if last is None

@@ -68,17 +68,40 @@ class Searcher:
     """The current generation's index and model, loaded once, answering many queries."""
 
     def __init__(self, store: Store):
-        self.store = store
-        self.generation = require_current(store)
+        generation = require_current(store)
         # Memory-mapped where FAISS allows: several service processes then share one copy in the page cache.
-        self.index = self.generation.load_index(mmap=True)
-        self.whitening = self.generation.load_whitening()
-        model_dir = store.models_dir / self.generation.meta["model"]
-        self.encoder, self.card = load_model(model_dir)
-        self.size = int(self.card["image_size"])
-        self.threshold = self.generation.threshold("near")
+        encoder, card = load_model(store.models_dir / generation.meta["model"])
+        calibration = generation.load_calibration() or {}
+        self._setup(store, generation.load_index(mmap=True), generation.load_whitening(), encoder, card,
+                    near_threshold=generation.threshold("near"), query_calibration=calibration.get("query"))
+        self.generation = generation
+
+    @classmethod
+    def for_build(cls, store: Store, index, whitening, encoder, card, near_threshold: float) -> "Searcher":
+        """A searcher over a generation being built (not yet published): calibration asks its
+        questions through the very function that answers users' queries."""
+        searcher = cls.__new__(cls)
+        searcher._setup(store, index, whitening, encoder, card, near_threshold=near_threshold, query_calibration=None)
+        searcher.generation = None
+        return searcher
+
+    def _setup(self, store: Store, index, whitening, encoder, card, *, near_threshold: float,
+               query_calibration: dict | None) -> None:
+        self.store = store
+        self.index = index
+        self.whitening = whitening
+        self.encoder, self.card = encoder, card
+        self.size = int(card["image_size"])
+        self.threshold = near_threshold  # the collection's pairwise near-duplicate threshold (descriptor scale)
+        self.query_calibration = query_calibration  # the query verdict (indexer/query_verdict.py), if calibrated
         self.verify_top = int(store.settings.verify_top)
         self.score_norm = float(store.settings.score_norm)
+
+    @property
+    def verdict_threshold(self) -> float:
+        """What a result's `duplicate` is judged against by default: the query verdict's threshold
+        (on the scale of `similarity`) when calibrated, else the near-duplicate threshold."""
+        return float(self.query_calibration["threshold"]) if self.query_calibration else self.threshold
 
     def vectors_for_images(self, images) -> np.ndarray:
         """Query vectors in the generation's space (encoder output, then its whitening)."""
@@ -86,13 +109,14 @@ class Searcher:
 
     def neighbours(self, xq: np.ndarray, k: int, threshold: float | None = None, *,
                    catalog=None, exclude: Collection[int] = (), images=None) -> list[list[dict]]:
-        """Top-k neighbours for each query vector, as dicts with id, path, similarity, duplicate.
+        """Top-k neighbours for each query vector, as dicts with id, path, similarity,
+        descriptor_similarity, evidence, duplicate and probability.
 
         `catalog` is the connection to read paths with (SQLite connections belong to one thread:
         a multi-threaded caller passes its own; default the store's). Ids in `exclude` are left
         out, and k more are asked for so that k remain. With the query `images` (one per row of
-        `xq`), the best `verify_top` candidates are verified and re-ranked (indexer/rerank.py)."""
-        threshold = self.threshold if threshold is None else threshold
+        `xq`), the best `verify_top` candidates are verified and re-ranked (indexer/rerank.py).
+        `duplicate` follows the query verdict (`judge`) unless a `threshold` is given."""
         catalog = catalog if catalog is not None else self.store.catalog
         # The background statistic needs k + 1 neighbours and more for the copies it skips.
         wanted = max(k, BACKGROUND_SEARCH) if self.score_norm else k
@@ -105,20 +129,41 @@ class Searcher:
             shift = self.score_norm * background_statistic([d for d, _ in kept], copy_threshold=self.threshold)
             out.append([
                 {"id": i, "path": paths.get(i), "similarity": round(d - shift, 6),
-                 "descriptor_similarity": round(d, 6), "evidence": None, "duplicate": bool(d >= threshold)}
+                 "descriptor_similarity": round(d, 6), "evidence": None}
                 for d, i in kept[:k]
             ])
         if images is not None and self.verify_top > 0:
-            out = self._verified(images, out, threshold, catalog)
+            out = self._verified(images, out, catalog)
+        for results in out:
+            self.judge(results, threshold)
         return out
 
-    def _verified(self, images, answers: list[list[dict]], threshold: float, catalog) -> list[list[dict]]:
+    def judge(self, results: list[dict], threshold: float | None = None) -> None:
+        """Set each result's `duplicate` and `probability`.
+
+        With the generation's query verdict (calibrated for a stated rate of false flags per query,
+        indexer/query_verdict.py), a result is a duplicate when its final `similarity` (normalised,
+        verified) reaches the verdict's threshold, and `probability` is the calibrated chance that it
+        is a copy. Without one, or with an explicit `threshold`, the verdict compares the descriptor
+        score, boosted when verified (`rerank.verdict_score`), as the collection's thresholds do."""
+        from .query_verdict import copy_probability
+        from .rerank import verdict_score
+
+        verdict = self.query_calibration
+        for r in results:
+            r["probability"] = None if verdict is None else copy_probability(verdict, r["similarity"])
+            if threshold is None and verdict is not None:
+                r["duplicate"] = bool(r["similarity"] >= verdict["threshold"])
+            else:
+                r["duplicate"] = bool(verdict_score(r) >= (self.threshold if threshold is None else threshold))
+
+    def _verified(self, images, answers: list[list[dict]], catalog) -> list[list[dict]]:
         from .rerank import rerank_all
 
         wanted = {r["id"] for results in answers for r in results[: self.verify_top]}
         sources = catalog.pixel_sources(wanted)
         candidates = {i: str(self.store.pixels_path(row)) for i, row in sources.items()}
-        return rerank_all(images, answers, candidates, self.verify_top, threshold)
+        return rerank_all(images, answers, candidates, self.verify_top)
 
     def _own_image(self, file_id: int, catalog):
         """A catalogued image's pixels, from its small copy when there is one (None if unreadable)."""

@@ -102,6 +102,20 @@ def _precision(value: Any) -> float:
     return number
 
 
+def _open_share(value: Any) -> float:
+    number = float(value)
+    if not 0.0 < number < 0.5:
+        raise ValueError(f"expected a share between 0 and 0.5 (0.01 = 1%), got {value!r}")
+    return number
+
+
+def _probability(value: Any) -> float:
+    number = float(value)
+    if not 0.0 < number < 1.0:
+        raise ValueError(f"expected a probability between 0 and 1 (exclusive), got {value!r}")
+    return number
+
+
 @dataclass(frozen=True)
 class Setting:
     name: str
@@ -202,6 +216,21 @@ SETTINGS: tuple[Setting, ...] = (
         0.90,
         _precision,
         "Precision the calibrated (looser) similar-tier threshold aims at.",
+    ),
+    Setting(
+        "false_flag_rate",
+        0.01,
+        _open_share,
+        "Share of queries whose original is not in the collection that may get a wrong result "
+        "flagged as a duplicate: the calibrated query verdict's threshold keeps the upper end of "
+        "its 95 % interval within this (see `nearsight calibrate`).",
+    ),
+    Setting(
+        "copy_prior",
+        0.5,
+        _probability,
+        "Share of queries assumed to be copies of an indexed image when each result's "
+        "`probability` is calibrated (0.5: as likely a copy as not).",
     ),
     Setting(
         "keep_generations",

@@ -15,6 +15,7 @@ from flask import Blueprint, Response, jsonify, request, send_file
 from indexer import __version__
 from indexer.errors import ImageReadError, NotFoundError, UsageError
 from indexer.images import read_image
+from indexer.calibration_report import questions
 from indexer.pipeline import store_status
 
 from . import params
@@ -67,6 +68,7 @@ def status():
     }
     out["thresholds"] = None if snap is None else snap.thresholds()
     out["calibration"] = None if snap is None else snap.calibration_summary()
+    out["questions"] = None if snap is None else questions(snap.generation.calibration)
     out["service"] = {"version": __version__, "started_at": st.started_at, "swaps": st.live.swaps,
                       "load_failures": st.live.load_failures, "reads_need_key": st.config.reads_need_key,
                       "max_upload_bytes": st.config.max_upload_bytes,
@@ -87,7 +89,7 @@ def search():
     args = params.search_args({**form, **request.args})
     snap = snapshot()
     threshold, source = snap.threshold(args["threshold"], args["precision"])
-    results, info = snap.searcher.similar_to_upload(data, args["k"], threshold,
+    results, info = snap.searcher.similar_to_upload(data, args["k"], None if source == "generation" else threshold,
                                                     max_pixels=min(st.config.max_upload_pixels, st.config.max_pixels),
                                                     catalog=st.store().catalog)
     query = {"width": info.width, "height": info.height, "format": info.format, "bytes": len(data)}
@@ -100,7 +102,8 @@ def similar(image_id: int):
     args = params.search_args(request.args)
     snap = snapshot()
     threshold, source = snap.threshold(args["threshold"], args["precision"])
-    results = snap.searcher.similar_to_id(image_id, args["k"], threshold, catalog=state().store().catalog)
+    results = snap.searcher.similar_to_id(image_id, args["k"], None if source == "generation" else threshold,
+                                          catalog=state().store().catalog)
     return _search_answer(snap, results, args, threshold, source, {"id": image_id})
 
 

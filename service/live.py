@@ -95,10 +95,13 @@ class Snapshot:
             return threshold, "request"
         if precision is not None:
             return self.generation.threshold("near", precision), "precision"
-        return self.searcher.threshold, "generation"
+        return self.searcher.verdict_threshold, "generation"
 
     def thresholds(self) -> dict:
+        calibration = self.generation.calibration if isinstance(self.generation.calibration, dict) else {}
+        query = calibration.get("query")
         return {"near": self.searcher.threshold, "similar": self.generation.threshold("similar"),
+                "query": None if query is None else query["threshold"],
                 "source": self.generation.meta.get("thresholds", {}).get("source")}
 
     def calibration_summary(self):

@@ -79,7 +79,8 @@ SCHEMAS = {
                        "reason": {"type": "string"}},
     },
     "Neighbour": {
-        "type": "object", "required": ["id", "path", "similarity", "descriptor_similarity", "evidence", "duplicate"],
+        "type": "object",
+        "required": ["id", "path", "similarity", "descriptor_similarity", "evidence", "duplicate", "probability"],
         "properties": {"id": {"type": "integer"}, "path": NULLABLE_STRING,
                        "similarity": {"type": "number", "description": "the score, higher is closer, comparable "
                                       "across queries: the descriptors' score less the query's background statistic "
@@ -87,8 +88,14 @@ SCHEMAS = {
                        "descriptor_similarity": {"type": "number", "description": "the descriptors' score alone "
                                                  "(learned and classical cosines, weighed)"},
                        "evidence": {"$ref": "#/components/schemas/Evidence"},
-                       "duplicate": {"type": "boolean", "description": "descriptor_similarity (moved halfway to 1 "
-                                     "when verified) >= threshold"}},
+                       "duplicate": {"type": "boolean", "description": "by default, similarity >= the generation's "
+                                     "query verdict threshold (calibrated for a stated share of false flags per query); "
+                                     "with a threshold or precision in the request, or without a query verdict, "
+                                     "descriptor_similarity (moved halfway to 1 when verified) >= threshold"},
+                       "probability": {**NULLABLE_NUMBER, "description": "calibrated probability that this result "
+                                       "is a copy of the query (isotonic regression on the collection's own "
+                                       "synthetic copies and non-copies, at the copy_prior setting); null without "
+                                       "a query verdict"}},
     },
     "SearchResult": {
         "type": "object", "required": ["generation", "model", "k", "threshold", "threshold_from", "query", "results"],
@@ -211,6 +218,12 @@ SCHEMAS = {
             "generation": {"type": "object", "nullable": True, "description": "the generation being served",
                            "properties": {"name": {"type": "string"}, "model": {"type": "string"},
                                           "indexed": {"type": "integer"}, "groups": {"type": "integer"}}},
+            "questions": {"type": "object", "nullable": True,
+                          "description": "the two calibrated questions: `query` (is this result a copy of my image? "
+                                         "threshold on `similarity`, share of false flags per query, recall) and "
+                                         "`groups` (which pairs in this collection are copies? threshold on "
+                                         "`descriptor_similarity`, where it comes from, expected duplicate pairs); "
+                                         "null without a calibration"},
             "published_generation": {"type": "string", "nullable": True,
                                      "description": "the generation the store names now (swapped in shortly if newer)"},
             "thresholds": {"type": "object", "nullable": True},

@@ -158,7 +158,8 @@ def test_similar_and_groups_from_the_command_line(run_cli, tmp_path):
     proc = run_cli("similar", root / "s03.png", bad, "--store", store, "-k", "2", "--json", check_exit=0)
     lines = [json.loads(line) for line in proc.stdout.splitlines()]
     assert [line["query"] for line in lines] == [str(root / "s03.png"), str(bad)]
-    assert set(lines[0]["results"][0]) == {"id", "path", "similarity", "descriptor_similarity", "evidence", "duplicate"}
+    assert set(lines[0]["results"][0]) == {"id", "path", "similarity", "descriptor_similarity", "evidence", "duplicate",
+                                          "probability"}
     assert len(lines[0]["results"]) == 2 and lines[1]["error"]["reason"] == "empty"
 
     folder_query = run_cli("similar", root, "--store", store, "-k", "1", "--json", check_exit=0)

@@ -1,0 +1,138 @@
+"""The query verdict: its threshold, rates and probabilities against reference libraries, and a
+planted collection whose answer is known."""
+
+import json
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from indexer.calibrate import grouping_threshold
+from indexer.pipeline import run_index
+from indexer.query import Searcher
+from indexer.query_verdict import copy_probability, false_flag_threshold, fit_probability, threshold_report
+from indexer.settings import load_settings
+from indexer.store import Store
+
+from .test_pipeline import TINY, _scene
+
+
+def test_false_flag_threshold_keeps_the_wilson_upper_bound_within_the_target():
+    """Reference: statsmodels.stats.proportion.proportion_confint(method="wilson") (Wilson 1927)."""
+    from statsmodels.stats.proportion import proportion_confint
+
+    rng = np.random.default_rng(11)
+    negatives = np.round(rng.beta(2, 5, 2000), 6)  # each a query's best wrong score
+    t, confirmed = false_flag_threshold(negatives, 0.01)
+    k = int((negatives >= t).sum())
+    _lo, hi = proportion_confint(k, len(negatives), alpha=0.05, method="wilson")
+    assert confirmed and hi <= 0.01
+    # One negative more above the threshold would break the bound: the threshold is the lowest that holds.
+    _lo, hi_more = proportion_confint(k + 1, len(negatives), alpha=0.05, method="wilson")
+    assert hi_more > 0.01
+    assert (negatives >= t - 1e-4).sum() > k  # a grid step lower flags more
+    report = threshold_report(np.array([0.9, 0.95, 0.2]), 1, negatives, t)
+    assert report["false_flag_rate"] == round(k / 2000, 4) and report["flagged_negatives"] == k
+    assert report["false_flag_interval"] == pytest.approx(proportion_confint(k, 2000, method="wilson"), abs=1e-4)
+    # Recall counts the missed copy (not returned at all) as not found: 2 of 4.
+    assert report["recall"] == 0.5
+    assert report["recall_interval"] == pytest.approx(proportion_confint(2, 4, method="wilson"), abs=1e-4)
+
+
+def test_too_few_negatives_put_the_threshold_above_all_of_them():
+    # 50 queries cannot confirm 1 % even with no flag (Wilson upper bound 3.84 / 53.84 = 0.071).
+    negatives = np.linspace(0.1, 0.6, 50)
+    t, confirmed = false_flag_threshold(negatives, 0.01)
+    assert not confirmed and t > negatives.max() and t - negatives.max() <= 2e-4
+
+
+def test_probability_is_sklearn_isotonic_regression_at_the_stated_prior():
+    """Reference: sklearn.isotonic.IsotonicRegression fitted directly with the same weights."""
+    from sklearn.isotonic import IsotonicRegression
+
+    rng = np.random.default_rng(2)
+    pos = np.clip(rng.normal(0.8, 0.12, 300), -1, 1)
+    neg = np.clip(rng.normal(0.35, 0.15, 900), -1, 1)
+    for prior in (0.5, 0.1):
+        mapping = fit_probability(pos, neg, prior)
+        w = np.r_[np.full(300, prior / 300), np.full(900, (1 - prior) / 900)]
+        ref = IsotonicRegression(y_min=0, y_max=1, increasing=True, out_of_bounds="clip").fit(
+            np.r_[pos, neg], np.r_[np.ones(300), np.zeros(900)], sample_weight=w)
+        queries = np.linspace(-0.3, 1.2, 61)
+        ours = [copy_probability({"probability": mapping}, q) for q in queries]
+        assert ours == pytest.approx(ref.predict(queries), abs=2e-4)
+    # A lower prior lowers every probability (Bayes' rule, common practice).
+    high, low = fit_probability(pos, neg, 0.5), fit_probability(pos, neg, 0.1)
+    assert copy_probability({"probability": low}, 0.6) < copy_probability({"probability": high}, 0.6)
+
+
+def test_groups_stay_at_the_query_threshold_without_evidence_from_the_collection():
+    near = {"threshold": 0.995, "target_met": False, "target_precision": 0.99, "duplicate_pairs": 0.4}
+    query = {"descriptor_threshold": 0.93}
+    groups = grouping_threshold(near, query, n_images=2000)
+    assert groups["threshold"] == 0.93 and groups["source"] == "query" and groups["almost_no_duplicates"]
+    # With evidence (the pairwise estimate reaches its target) the collection's own threshold holds.
+    met = dict(near, target_met=True, threshold=0.97, duplicate_pairs=300)
+    assert grouping_threshold(met, query, 2000)["threshold"] == 0.97
+    # No query verdict: nothing to compare with.
+    assert grouping_threshold(near, None, 2000)["threshold"] == 0.995
+
+
+# -- a planted collection: no internal duplicates, queries that are copies or not --------------
+@pytest.fixture(scope="module")
+def distinct_store(tmp_path_factory):
+    """60 distinct scenes (no two are copies), indexed with the tiny encoder and calibrated;
+    queries: JPEG re-saves of 12 indexed scenes (copies) and 12 scenes never indexed (non-copies)."""
+    root = tmp_path_factory.mktemp("distinct")
+    folder, queries = root / "photos", root / "queries"
+    folder.mkdir()
+    queries.mkdir()
+    for i in range(60):
+        _scene(folder / f"scene{i:02d}.png", seed=500 + i)
+    copies, others = [], []
+    for i in range(12):
+        with Image.open(folder / f"scene{i:02d}.png") as im:
+            im.convert("RGB").save(queries / f"copy{i:02d}.jpg", quality=85)
+        copies.append((str(queries / f"copy{i:02d}.jpg"), str(folder / f"scene{i:02d}.png")))
+        _scene(queries / f"new{i:02d}.png", seed=900 + i)
+        others.append(str(queries / f"new{i:02d}.png"))
+    store_dir = root / "store"
+    with Store.open(store_dir, create=True, settings=load_settings(environ={})) as store:
+        run_index(store, [folder], progress=False, train_config=TINY)
+    return store_dir, copies, others
+
+
+def test_a_collection_without_duplicates_flags_copies_and_says_so(distinct_store):
+    store_dir, copies, others = distinct_store
+    with Store.open(store_dir, settings=load_settings(environ={})) as store:
+        searcher = Searcher(store)
+        cal = searcher.generation.load_calibration()
+        verdict = cal["query"]
+        # The figures are a count by hand over the stored samples.
+        neg = np.asarray(cal["distributions"]["query_negatives"])
+        pos = np.asarray(cal["distributions"]["query_positives"])
+        t = verdict["threshold"]
+        assert verdict["negatives"] == len(neg) and verdict["flagged_negatives"] == int((neg >= t).sum())
+        assert verdict["false_flag_rate"] == round(int((neg >= t).sum()) / len(neg), 4)
+        assert verdict["recall"] == round(int((pos >= t).sum()) / verdict["positives"], 4)
+        # Every image was asked as it is and edited; none of its neighbours is a copy.
+        assert verdict["negative_queries"] == {"as_indexed": 60, "edited": 60}
+        # The summary says in plain words that there is next to nothing to group.
+        assert cal["groups"]["almost_no_duplicates"]
+        assert "holds almost no duplicates" in (searcher.generation.path / "calibration.txt").read_text()
+        answers = {a["query"]: a for a in searcher.similar_files([q for q, _ in copies] + others, k=3)}
+    flagged_copies = sum(answers[q]["results"][0]["duplicate"] and answers[q]["results"][0]["path"] == orig
+                         for q, orig in copies)
+    flagged_others = sum(any(r["duplicate"] for r in answers[q]["results"]) for q in others)
+    assert flagged_copies >= 11, flagged_copies  # JPEG re-saves at quality 85: the mildest copy there is
+    assert flagged_others <= 1, flagged_others
+    for q, _ in copies:
+        best = answers[q]["results"][0]
+        assert 0.0 <= best["probability"] <= 1.0 and best["probability"] >= answers[q]["results"][1]["probability"]
+
+
+def test_similar_json_carries_probability_beside_similarity(distinct_store, run_cli):
+    store_dir, copies, _ = distinct_store
+    proc = run_cli("similar", copies[0][0], "--store", store_dir, "--json", "-k", "2", check_exit=0)
+    result = json.loads(proc.stdout.splitlines()[0])["results"][0]
+    assert {"similarity", "probability", "duplicate", "descriptor_similarity"} <= set(result)
