@@ -83,9 +83,35 @@ def compute_pairs(index, ids: np.ndarray, xb: np.ndarray, t_similar: float):
     return a[known], b[known], sims[known]
 
 
+def verify_floor_of(thresholds: dict) -> float:
+    """The cosine from which verified neighbours count: the calibration's floor, else the similar threshold."""
+    return float(thresholds.get("verify_floor", thresholds["similar"]))
+
+
+def with_verified_pairs(store: Store, index, q_ids: np.ndarray, xq: np.ndarray, pairs, thresholds: dict):
+    """`pairs` (a, b, sims) joined by the verified pairs among the queries' closest neighbours
+    (indexer/pair_verify.py): a heavily edited copy joins its group on geometric evidence."""
+    from .pair_verify import verified_pairs
+
+    top = int(store.settings.verify_top)
+    if top <= 0 or len(q_ids) == 0:
+        return pairs
+    floor = verify_floor_of(thresholds)
+    va, vb, vs = verified_pairs(store, index, q_ids, xq, top=top, floor=floor, t_near=thresholds["near"])
+    a, b, sims = pairs
+    return faiss_index.canonical_pairs(np.r_[a, va], np.r_[b, vb], np.r_[sims, vs].astype(np.float32))
+
+
 def groups_from_pairs(store: Store, ids: np.ndarray, xb: np.ndarray, a, b, sims, *, t_near: float,
-                      t_similar: float) -> list:
-    """Groups that do not chain over the files `ids` (rows of `xb`) and their pairs."""
+                      t_similar: float, verify_floor: float | None = None) -> list:
+    """Groups that do not chain over the files `ids` (rows of `xb`) and their pairs. With a
+    `verify_floor`, the missing pairs of small near-duplicate components are verified first
+    (pair_verify.complete_components), so that a group of edited copies is not split for
+    want of a score between two of them."""
+    if verify_floor is not None and int(store.settings.verify_top) > 0:
+        from .pair_verify import complete_components
+
+        a, b, sims = complete_components(store, ids, xb, (a, b, sims), t_near=t_near, floor=verify_floor)
     meta = store.catalog.image_meta(ids.tolist())
     _add_pixel_hashes(store, meta, a, b, sims, t_near)
     row = {int(i): n for n, i in enumerate(ids)}
@@ -150,8 +176,10 @@ def build_generation(store: Store, model_dir, *, t_near: float, t_similar: float
                                              calibration=calibration)
     extra[generations.WHITENING_FILE] = whitening.to_bytes()
     started = time.monotonic()
-    a, b, sims = compute_pairs(index, ids, xb, thresholds["similar"])
-    groups = groups_from_pairs(store, ids, xb, a, b, sims, t_near=thresholds["near"], t_similar=thresholds["similar"])
+    a, b, sims = with_verified_pairs(store, index, ids, xb, compute_pairs(index, ids, xb, thresholds["similar"]),
+                                     thresholds)
+    groups = groups_from_pairs(store, ids, xb, a, b, sims, t_near=thresholds["near"], t_similar=thresholds["similar"],
+                               verify_floor=verify_floor_of(thresholds))
     stages["groups"] = round(time.monotonic() - started, 3)
     return publish_generation(store, index, meta, thresholds, groups, items=indexed_items(store, index),
                               pairs=(a, b, sims), extra=extra, stages=stages, keep=keep)
@@ -163,6 +191,7 @@ def calibrate_thresholds(store, model_dir, index, ids, xb, whitening, meta, stag
     else those given. Returns (thresholds, calibration files for the generation); records the outcome
     in `meta` (``calibration``, and ``build.since_calibration`` for the nightly reuse rule)."""
     extra: dict[str, bytes] = {}
+    verify_floor = None
     if calibration is not None:
         from .calibrate import calibrate
         from .calibration_report import plot_png
@@ -179,13 +208,17 @@ def calibrate_thresholds(store, model_dir, index, ids, xb, whitening, meta, stag
             meta["calibration"] = {"skipped": str(exc)}
         else:
             t_near, t_similar = result["tiers"]["near"]["threshold"], result["tiers"]["similar"]["threshold"]
+            verify_floor = result["negatives"]["floor"]
             threshold_source = "calibrated"
             meta["calibration"] = {"summary": result["summary"]["headline"]}
             extra[generations.CALIBRATION_FILE] = json.dumps(result, sort_keys=True).encode()
             extra["calibration.png"] = plot_png(result)
             extra["calibration.txt"] = ("\n".join(result["summary"]["lines"]) + "\n").encode()
         stages["calibrate"] = round(time.monotonic() - started, 3)
-    return {"near": t_near, "similar": t_similar, "source": threshold_source}, extra
+    thresholds = {"near": t_near, "similar": t_similar, "source": threshold_source}
+    if verify_floor is not None:  # where verified neighbours start to count (pair_verify.py)
+        thresholds["verify_floor"] = verify_floor
+    return thresholds, extra
 
 
 def publish_generation(store: Store, index, meta: dict, thresholds: dict, groups: list, *, items, pairs,
@@ -225,7 +258,9 @@ def recalibrate(store: Store, config, *, keep: int = 3) -> dict:
         t_similar=gen.meta["thresholds"]["similar"], threshold_source=gen.meta["thresholds"].get("source", "default"),
         calibration=config, required=True)
     extra[generations.WHITENING_FILE] = whitening.to_bytes()
-    a, b, sims = compute_pairs(index, ids, xb, thresholds["similar"])
-    groups = groups_from_pairs(store, ids, xb, a, b, sims, t_near=thresholds["near"], t_similar=thresholds["similar"])
+    a, b, sims = with_verified_pairs(store, index, ids, xb, compute_pairs(index, ids, xb, thresholds["similar"]),
+                                     thresholds)
+    groups = groups_from_pairs(store, ids, xb, a, b, sims, t_near=thresholds["near"], t_similar=thresholds["similar"],
+                               verify_floor=verify_floor_of(thresholds))
     return publish_generation(store, index, meta, thresholds, groups, items=indexed_items(store, index),
                               pairs=(a, b, sims), extra=extra, stages=stages, keep=keep)

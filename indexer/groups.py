@@ -190,13 +190,16 @@ def _identical_classes(meta: Mapping[int, ImageMeta]) -> dict[int, int]:
 # ---------------------------------------------------------------- splitting components
 
 def _dense(nodes, ia, ib, s, vectors) -> np.ndarray:
-    """m x m similarities for one component: pair list (missing = 0) or exact from vectors."""
+    """m x m similarities for one component: pair list (missing = 0) or exact from vectors, raised
+    to the pair list's score where that is higher."""
     m = nodes.shape[0]
     if vectors is not None:
         V = np.asarray(vectors(nodes), dtype=np.float64)
         if V.ndim != 2 or V.shape[0] != m:
             raise UsageError(f"vectors() returned shape {V.shape} for {m} ids")
         S = V @ V.T
+        # A pair may score above its cosine (a verified pair, indexer/pair_verify.py): it keeps that score.
+        S[ia, ib] = S[ib, ia] = np.maximum(S[ia, ib], s)
     else:
         S = np.zeros((m, m))
         S[ia, ib] = S[ib, ia] = s

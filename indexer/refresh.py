@@ -38,7 +38,7 @@ from scipy.sparse.csgraph import connected_components
 from . import generations
 from . import index as faiss_index
 from .build import build_generation, calibrate_thresholds, compute_pairs, groups_from_pairs, load_vectors, \
-    publish_generation
+    publish_generation, verify_floor_of, with_verified_pairs
 from .groups import Group
 from .model import read_card
 from .pause import pause_at
@@ -173,7 +173,8 @@ def regroup_touched(store: Store, prev, index, whitening, model: str, change: Ch
     dropped = np.isin(pa, gone) | np.isin(pb, gone)
     fresh = np.union1d(change.added, change.replaced)
     xq = _whitened(store, fresh, model, whitening) if len(fresh) else np.zeros((0, index.d), np.float32)
-    na, nb, ns = pairs_of(store, index, fresh, xq, t_similar, model, whitening)
+    na, nb, ns = with_verified_pairs(store, index, fresh, xq, pairs_of(store, index, fresh, xq, t_similar, model,
+                                                                      whitening), thresholds)
     a, b, sims = faiss_index.canonical_pairs(np.r_[pa[~dropped], na], np.r_[pb[~dropped], nb],
                                              np.r_[ps[~dropped], ns].astype(np.float32))
     prev_groups = prev.load_groups()["groups"]
@@ -183,8 +184,8 @@ def regroup_touched(store: Store, prev, index, whitening, model: str, change: Ch
     touched = _components_of(seeds, a, b)
     inside = np.isin(a, touched)
     xs = _whitened(store, touched, model, whitening) if len(touched) else np.zeros((0, index.d), np.float32)
-    regrouped = groups_from_pairs(store, touched, xs, a[inside], b[inside], sims[inside],
-                                  t_near=t_near, t_similar=t_similar) if len(touched) else []
+    regrouped = groups_from_pairs(store, touched, xs, a[inside], b[inside], sims[inside], t_near=t_near,
+                                  t_similar=t_similar, verify_floor=verify_floor_of(thresholds)) if len(touched) else []
     stale_gids = {g["gid"] for g in stale}
     kept = [Group.from_dict(g) for g in prev_groups
             if g["gid"] not in stale_gids and not np.isin([m["id"] for m in g["members"]], touched).any()]
@@ -250,8 +251,10 @@ def _update(store: Store, prev, model_dir, change: Change, reason: str, *, setti
     else:  # other thresholds: every pair and group anew, in the same space
         ids, xb = load_vectors(store, model)
         xb = whitening.apply(xb)
-        pairs = compute_pairs(index, ids, xb, thresholds["similar"])
-        groups = groups_from_pairs(store, ids, xb, *pairs, t_near=thresholds["near"], t_similar=thresholds["similar"])
+        pairs = with_verified_pairs(store, index, ids, xb, compute_pairs(index, ids, xb, thresholds["similar"]),
+                                    thresholds)
+        groups = groups_from_pairs(store, ids, xb, *pairs, t_near=thresholds["near"], t_similar=thresholds["similar"],
+                                   verify_floor=verify_floor_of(thresholds))
         regrouped = {"files_regrouped": int(len(ids)), "groups_kept": 0}
     meta["build"]["regrouped"] = regrouped
     stages["groups"] = round(time.monotonic() - started, 3)

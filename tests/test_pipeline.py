@@ -47,7 +47,7 @@ def test_first_run_trains_embeds_indexes_and_publishes(folder, tmp_path):
         gen = generations.current(store)
         assert gen.name == summary["generation"]
         assert gen.meta["indexed"] == 24 and gen.meta["model"] == summary["model"]
-        assert set(gen.meta["thresholds"]) == {"near", "similar", "source"}
+        assert set(gen.meta["thresholds"]) == {"near", "similar", "source", "verify_floor"}
 
 
 def test_moved_and_copied_files_are_not_embedded_again(folder, tmp_path):

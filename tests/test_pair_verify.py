@@ -1,0 +1,94 @@
+"""Verified pairs for groups: a crop of a real photo joins its group, a neighbouring tile does not.
+
+Photos: scikit-image's bundled open data (skimage.data.astronaut, skimage.data.grass).
+"""
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from indexer.build import load_vectors
+from indexer.generations import require_current
+from indexer.groups import build_groups
+from indexer.pair_verify import complete_components, verified_pairs, verified_score
+from indexer.pipeline import run_index
+from indexer.settings import load_settings
+from indexer.store import Store
+
+from .test_pipeline import TINY
+
+
+@pytest.fixture(scope="module")
+def photo_store(tmp_path_factory):
+    import skimage.data
+
+    root = tmp_path_factory.mktemp("pairs")
+    folder = root / "photos"
+    folder.mkdir()
+    astronaut = Image.fromarray(skimage.data.astronaut()).convert("RGB").resize((384, 384))
+    astronaut.save(folder / "astronaut.png")
+    astronaut.resize((192, 192), Image.Resampling.LANCZOS).save(folder / "astronaut-small.jpg", quality=80)
+    astronaut.crop((40, 40, 361, 361)).save(folder / "astronaut-crop.jpg", quality=85)  # 70 % of the area
+    grass = Image.fromarray(skimage.data.grass()).convert("RGB")
+    grass.crop((0, 0, 256, 256)).save(folder / "grass-left.png")
+    grass.crop((256, 0, 512, 256)).save(folder / "grass-right.png")  # touches the left tile, shares no pixel
+    for name in ("camera", "coffee", "chelsea", "rocket"):  # other photos: enough files to train on
+        Image.fromarray(getattr(skimage.data, name)()).convert("RGB").save(folder / f"{name}.png")
+    store_dir = root / "store"
+    with Store.open(store_dir, create=True, settings=load_settings(environ={})) as store:
+        run_index(store, [folder], progress=False, train_config=TINY, calibrate=False)
+    return store_dir, folder
+
+
+def test_verified_score_is_never_below_the_threshold_once_stored():
+    # float32(0.815) is 0.81499999...: a verified pair stored at the threshold must still pass it.
+    for t in (0.815, 0.6, 0.93, 0.3333):
+        v = verified_score(t - 0.5, t)
+        assert v.dtype == np.float32 and float(v) >= t
+    assert float(verified_score(0.9, 0.5)) == pytest.approx(0.95)  # halfway to 1 (rerank.boosted)
+
+
+def test_missing_pairs_of_a_small_component_are_verified(photo_store):
+    store_dir, folder = photo_store
+    with Store.open(store_dir, settings=load_settings(environ={})) as store:
+        file_id = {name: store.catalog.file_id_for_path(folder / name) for name in
+                   ("astronaut.png", "astronaut-small.jpg", "astronaut-crop.jpg", "grass-left.png", "grass-right.png")}
+        ids = np.array(sorted(file_id.values()), np.int64)
+        xb = np.eye(len(ids), dtype=np.float32)  # every cosine 0: only the pair list and verification count
+        a_, s_, c_ = file_id["astronaut.png"], file_id["astronaut-small.jpg"], file_id["astronaut-crop.jpg"]
+        gl, gr = file_id["grass-left.png"], file_id["grass-right.png"]
+        # The descriptor tied the small copy to both, but left the crop and its original apart; it put the
+        # two grass tiles just above the similar threshold.
+        pairs = (np.array([min(a_, s_), min(s_, c_), min(gl, gr)]), np.array([max(a_, s_), max(s_, c_), max(gl, gr)]),
+                 np.array([0.95, 0.9, 0.7], np.float32))
+        a, b, sims = complete_components(store, ids, xb, pairs, t_near=0.8, floor=-1.0)
+    found = {(int(x), int(y)): float(v) for x, y, v in zip(a, b, sims)}
+    assert found[(min(a_, c_), max(a_, c_))] >= 0.8  # the crop verified against its original
+    assert found[(min(gl, gr), max(gl, gr))] == pytest.approx(0.7)  # the neighbouring tile did not
+    assert len(found) == 4
+    # With the verified pair, the three copies form one near-duplicate group; the tiles stay "similar".
+    meta = {i: {"path": str(i), "content_hash": str(i), "width": 1, "height": 1, "file_size": 1, "format": "PNG",
+                "mtime": 0.0} for i in ids.tolist()}
+    groups = build_groups(a, b, sims, meta, t_near=0.8, t_similar=0.6, vectors=lambda sub: xb[np.searchsorted(ids, sub)])
+    tiers = {frozenset(m.id for m in g.members): g.tier for g in groups}
+    assert tiers == {frozenset({a_, s_, c_}): "near-duplicate", frozenset({gl, gr}): "similar"}
+
+
+def test_each_images_closest_neighbours_are_verified_from_the_index(photo_store):
+    store_dir, folder = photo_store
+    with Store.open(store_dir, settings=load_settings(environ={})) as store:
+        gen = require_current(store)
+        ids, xb = load_vectors(store, gen.meta["model"])
+        xb = gen.load_whitening().apply(xb)
+        index = gen.load_index()
+        # Every neighbour counts (floor -1) and nothing is near yet (t_near 1.0): all 9 x 8 / 2 pairs are candidates.
+        a, b, sims = verified_pairs(store, index, ids, xb, top=8, floor=-1.0, t_near=1.0)
+        names = {i: Path(store.catalog.image_meta([i])[i]["path"]).name for i in ids.tolist()}
+    verified = {frozenset((names[int(x)], names[int(y)])) for x, y in zip(a, b)}
+    astronauts = {"astronaut.png", "astronaut-small.jpg", "astronaut-crop.jpg"}
+    assert verified == {frozenset(p) for p in [("astronaut.png", "astronaut-small.jpg"),
+                                                ("astronaut.png", "astronaut-crop.jpg"),
+                                                ("astronaut-small.jpg", "astronaut-crop.jpg")]}
+    assert all(names[int(x)] in astronauts for x in a) and (sims >= 1.0 - 1e-6).all()
