@@ -8,9 +8,29 @@ import numpy as np
 
 TIER_WORDS = {"near": "Near-duplicates", "similar": "Similar images"}
 
+# Each plotted series: the noun its count goes with (the same words in calibration.txt and the
+# legend, so a reader can match them), what the series shows, and its colour.
+SERIES = {
+    "query_positives": ("edited copies", "score of their original", "#1d4f91"),
+    "query_negatives": ("queries without their original", "best wrong result", "#c4512b"),
+    "random": ("random pairs", "", "#9a9a9a"),
+    "hard_negatives": ("closest pairs", "known duplicates left out", "#c4512b"),
+    "similar": ("copies with strong edits", "", "#5b8fd1"),
+    "near": ("copies with mild edits", "", "#1d4f91"),
+}
+
 
 def _fmt(x, digits: int = 3) -> str:
     return "n/a" if x is None else f"{x:.{digits}f}"
+
+
+def series_count(result: dict, key: str) -> int:
+    """The calibration's own count for a series; its stored distribution may be a sample of it."""
+    if key.startswith("query_"):
+        return result["query"]["positives" if key == "query_positives" else "negatives"]
+    if key in result["tiers"]:
+        return result["tiers"][key]["positives"]
+    return result["negatives"]["random_pairs" if key == "random" else "hard_pairs"]
 
 
 def tier_line(tier: dict) -> str:
@@ -25,18 +45,29 @@ def tier_line(tier: dict) -> str:
     return line
 
 
+def query_line(result: dict) -> str:
+    query = result["query"]
+    return (f"Is this result a copy of my image? Query threshold {query['threshold']:.3f}: false-flag rate "
+            f"{_fmt(query['false_flag_rate'])} on {series_count(result, 'query_negatives'):,} "
+            f"{SERIES['query_negatives'][0]}, recall {_fmt(query['recall'], 2)} on "
+            f"{series_count(result, 'query_positives'):,} {SERIES['query_positives'][0]}.")
+
+
 def summary_text(result: dict) -> dict:
     """A headline (the near-duplicate tier) and a few plain sentences."""
     tiers = result["tiers"]
     lines = [f"{TIER_WORDS[name]}: {tier_line(tier)}" for name, tier in tiers.items()]
+    if result.get("query"):
+        lines.append(query_line(result))
     neg = result["negatives"]
     pos = result["positives"]
     excluded = sum(neg["excluded_known_duplicates"].values())
+    copies = " and ".join(f"{series_count(result, tier):,} {SERIES[tier][0]}" for tier in tiers)
     lines.append(
-        f"Measured on {2 * pos['originals']} edited copies per tier of {pos['originals']} of your images "
-        f"({pos['held_out_originals']} never seen in training), the {neg['hard_pairs']:,} closest pairs of "
+        f"Measured on copies of {pos['originals']} of your images ({pos['held_out_originals']} never seen in "
+        f"training), {copies}; the {neg['hard_pairs']:,} {SERIES['hard_negatives'][0]} of "
         f"{result['collection']['queries']:,} sampled images ({excluded:,} pairs already known to be duplicates "
-        f"left out) and {neg['random_pairs']:,} random pairs."
+        f"left out) and {neg['random_pairs']:,} {SERIES['random'][0]}."
     )
     lines.append(
         f"About {tiers['near']['duplicate_pairs']:,.0f} near-duplicate pairs are estimated among the "
