@@ -153,6 +153,7 @@ def index_untrained(store_dir: Path, folder: Path) -> dict:
 
 def _nearsight_predictions(store_dir: Path, records: list[dict], col: dict[str, int], k: int) -> tuple:
     """(Predictions, calibrated threshold, calibration summary) of one nearsight store."""
+    from indexer.calibration_report import groups_line
     from indexer.images import read_image
     from indexer.query import Searcher
 
@@ -172,10 +173,18 @@ def _nearsight_predictions(store_dir: Path, records: list[dict], col: dict[str, 
                     s.append(hit["similarity"])
             parts.append(metrics.Predictions(np.array(q, np.int64), np.array(r, np.int64), np.array(s)))
         near = (cal or {}).get("tiers", {}).get("near")
-        calibration = None if near is None else {
-            "target": near.get("target_precision"), "estimated_precision": near["at_threshold"]["precision"],
-            "estimated_recall": near["at_threshold"]["recall"], "target_met": near.get("target_met")}
-        return metrics.concat(parts), searcher.threshold, calibration
+        query = (cal or {}).get("query")
+        if query is not None:  # the query verdict: what `duplicate` follows by default
+            calibration = {"question": "query", "target_false_flag_rate": query["target_false_flag_rate"],
+                           "estimated_false_flag_rate": query["false_flag_rate"],
+                           "estimated_recall": query["recall"], "target_met": query["target_confirmed"],
+                           "groups": groups_line(cal) if cal.get("groups") else None}
+        else:
+            calibration = None if near is None else {
+                "question": "pairs", "target": near.get("target_precision"),
+                "estimated_precision": near["at_threshold"]["precision"],
+                "estimated_recall": near["at_threshold"]["recall"], "target_met": near.get("target_met")}
+        return metrics.concat(parts), searcher.verdict_threshold, calibration
 
 
 def query_groups(records: list[dict]) -> dict[str, np.ndarray]:
@@ -205,6 +214,8 @@ def evaluate(pred: metrics.Predictions, gt: np.ndarray, groups: dict[str, np.nda
 
 def verdicts(pred: metrics.Predictions, gt: np.ndarray, families: np.ndarray, threshold: float) -> dict:
     out = {"overall": metrics.verdict(pred, gt, threshold)}
+    out["overall"]["no_match_flagged"] = metrics.flagged_queries(pred, gt, threshold)
+    out["overall"]["best_recall_at_p99"] = metrics.recall_at_precision(pred, gt, 0.99)
     for f in dict.fromkeys(families.tolist()):
         queries = np.flatnonzero(families == f)
         out[f] = metrics.verdict(pred.subset(np.isin(pred.q, queries)), gt, threshold, queries)

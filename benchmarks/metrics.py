@@ -123,6 +123,15 @@ def verdict(pred: Predictions, gt: np.ndarray, threshold: float, queries: np.nda
             "recall": n_correct / n_pos if n_pos else float("nan")}
 
 
+def flagged_queries(pred: Predictions, gt: np.ndarray, threshold: float) -> dict:
+    """Of the queries with no match in the index, how many got any prediction >= threshold (a false flag
+    per query: the error a user asking "is this a copy of my image?" meets)."""
+    no_match = np.flatnonzero(gt < 0)
+    flagged = np.unique(pred.q[(pred.score >= threshold) & (gt[pred.q] < 0)])
+    return {"queries": int(len(no_match)), "flagged": int(len(flagged)),
+            "rate": len(flagged) / len(no_match) if len(no_match) else float("nan")}
+
+
 def top_k(scores: np.ndarray, k: int, q_offset: int = 0) -> Predictions:
     """The k highest scores of each row of a (queries x references) matrix, as Predictions."""
     k = min(k, scores.shape[1])

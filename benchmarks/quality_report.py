@@ -86,20 +86,36 @@ def _per_group_table(results: dict, key: str, groups: list[str], metric: str, la
     return lines
 
 
+def _target_and_estimate(name: str, cal: dict | None) -> tuple[str, str]:
+    if not cal:
+        return ("pHash cut, Hamming <= 10" if name == "phash" else "none"), "n/a"
+    unmet = "" if cal.get("target_met") else " (target not confirmed)"
+    if cal.get("question") == "query":
+        return (f"false flags <= {cal['target_false_flag_rate']:.0%} of queries",
+                f"false flags {_f(cal['estimated_false_flag_rate'])} / recall {_f(cal['estimated_recall'])}{unmet}")
+    return _f(cal["target"], 2), f"precision {_f(cal['estimated_precision'])} / recall {_f(cal['estimated_recall'])}{unmet}"
+
+
 def _verdict_table(results: dict) -> list[str]:
-    lines = ["| system | threshold | target precision | calibration's estimate (precision / recall) | "
-             "called | correct | realised precision (95 % Wilson) | realised recall |",
-             "|---|---:|---:|---|---:|---:|---|---:|"]
+    lines = ["| system | threshold | target | calibration's estimate | called | correct | "
+             "realised precision (95 % Wilson) | realised recall | best recall at precision 0.99 (any threshold) | "
+             "queries without a match flagged |",
+             "|---|---:|---|---|---:|---:|---|---:|---:|---|"]
     for name, entry in results["systems"].items():
         if "verdict" not in entry:
             continue
         v = entry["verdict"]["overall"]
-        cal = entry.get("calibration")
-        target = _f(cal["target"], 2) if cal else ("pHash cut, Hamming <= 10" if name == "phash" else "none")
-        estimate = (f"{_f(cal['estimated_precision'])} / {_f(cal['estimated_recall'])}"
-                    f"{'' if cal.get('target_met') else ' (target not met)'}" if cal else "n/a")
+        target, estimate = _target_and_estimate(name, entry.get("calibration"))
+        flagged = v.get("no_match_flagged")
+        flagged_text = "n/a" if flagged is None else (f"{flagged['flagged']} of {flagged['queries']}: {_f(flagged['rate'])} "
+                                                      f"({_wilson(flagged['flagged'], flagged['queries'])})")
         lines.append(f"| {name} | {v['threshold']:.3f} | {target} | {estimate} | {v['called']} | {v['correct']} | "
-                     f"{_f(v['precision'])} ({_wilson(v['correct'], v['called'])}) | {_f(v['recall'])} |")
+                     f"{_f(v['precision'])} ({_wilson(v['correct'], v['called'])}) | {_f(v['recall'])} | "
+                     f"{_f(v.get('best_recall_at_p99'))} | {flagged_text} |")
+    for name, entry in results["systems"].items():
+        groups = (entry.get("calibration") or {}).get("groups")
+        if groups:
+            lines += ["", f"{name}, what its calibration said about the collection: {groups}"]
     return lines
 
 
@@ -189,10 +205,11 @@ def render(results: dict, command: str) -> str:
         "",
         "## The calibrated `duplicate` verdict, realised",
         "",
-        "nearsight calls a result a duplicate when its similarity reaches the generation's calibrated threshold "
-        "(the `near` tier, aimed at the stated precision on the collection's own pairs). Realised here on every "
-        "top-10 prediction of every query. pHash has no calibration; its row uses the common Hamming <= 10 cut "
-        "for comparison.",
+        "nearsight calls a result a duplicate when its similarity reaches the generation's query verdict "
+        "threshold (calibrated so that at most the stated share of queries whose original is not indexed get a "
+        "flag, on the collection's own images and synthetic copies; indexer/query_verdict.py). Realised here on "
+        "every top-10 prediction of every query. pHash has no calibration; its row uses the common Hamming <= 10 "
+        "cut for comparison.",
         "",
         *_verdict_table(results),
     ]
