@@ -131,7 +131,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=commands.cmd_calibrate)
 
     p = sub.add_parser("verdicts", parents=[common], help="import or count a person's same/different verdicts",
-                       description="Verdicts on pairs of images (same / different) sharpen the calibration. "
+                       description="Verdicts on pairs of images (same / different) act at once on the groups and "
+                                   "the quarantine plan (a pair marked different is split, one marked same joined) "
+                                   "and sharpen the calibration. "
                                    "`verdicts import FILE.csv` stores those of a CSV file with columns a, b (image ids "
                                    "or paths), verdict and optionally note; `verdicts show` counts them.")
     p.add_argument("action", choices=("import", "show"), help="import a CSV file, or show the counts")

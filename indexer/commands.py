@@ -126,7 +126,7 @@ def cmd_verdicts(args) -> int:
             if not args.file:
                 raise UsageError("`verdicts import` needs the CSV file to read")
             stored = import_csv(store, Path(args.file), author=args.author)
-            print(f"stored {stored} verdicts; `nearsight calibrate` uses them")
+            print(f"stored {stored} verdicts; `groups` and `quarantine` apply them now, `calibrate` uses them")
             return 0
         latest = store.catalog.latest_verdicts()
     counts = {"pairs": len(latest), "same": sum(v["verdict"] == "same" for v in latest)}
