@@ -515,6 +515,22 @@ class Catalog:
         )
         return [dict(r) for r in rows]
 
+    def latest_verdict_files(self) -> list[dict]:
+        """The latest verdict per content pair, once for every pair of files (not removed) holding
+        those contents: verdict id, verdict, file_a, file_b; oldest verdict first."""
+        rows = self.conn.execute(
+            "SELECT v.id, v.verdict, fa.id AS file_a, fb.id AS file_b FROM verdicts v "
+            "JOIN (SELECT MAX(id) AS id FROM verdicts GROUP BY content_a, content_b) last ON last.id = v.id "
+            "JOIN files fa ON fa.content_id = v.content_a AND fa.state != 'removed' "
+            "JOIN files fb ON fb.content_id = v.content_b AND fb.state != 'removed' "
+            "ORDER BY v.id, fa.id, fb.id"
+        )
+        return [dict(r) for r in rows]
+
+    def verdicts_version(self) -> int:
+        """The newest verdict's id (0 without any): verdicts are only ever added, so it changes with each."""
+        return self.conn.execute("SELECT COALESCE(MAX(id), 0) FROM verdicts").fetchone()[0]
+
     def latest_verdicts_among(self, file_ids) -> list[dict]:
         """The latest verdict per content pair whose two contents both belong to the given files
         (e.g. the members of one group), oldest first."""

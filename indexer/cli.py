@@ -108,10 +108,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=commands.cmd_similar)
 
     p = sub.add_parser("groups", parents=[common], help="list duplicate groups",
-                       description="List the current generation's duplicate groups, or regroup at --threshold.")
+                       description="List the current generation's duplicate groups, or regroup at --threshold, "
+                                   "as a person's verdicts leave them: a pair marked different is never in one "
+                                   "group, a pair marked same always is.")
     p.add_argument("--threshold", type=float, help="regroup at this cosine similarity (duplicate groups only, no similar tier)")
     p.add_argument("--precision", type=float, help="regroup at the calibrated threshold for this precision")
-    p.add_argument("--tier", choices=("same-bytes", "same-pixels", "near-duplicate", "similar"), help="only groups of this tier")
+    p.add_argument("--tier", choices=("same-bytes", "same-pixels", "person-same", "near-duplicate", "similar"),
+                   help="only groups of this tier")
     p.add_argument("--format", choices=("table", "json", "csv", "html"), default="table", help="output format")
     p.add_argument("--out", help="write to this file (html: default STORE/reports/groups-<generation>.html)")
     p.set_defaults(func=commands.cmd_groups)
@@ -128,7 +131,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=commands.cmd_calibrate)
 
     p = sub.add_parser("verdicts", parents=[common], help="import or count a person's same/different verdicts",
-                       description="Verdicts on pairs of images (same / different) sharpen the calibration. "
+                       description="Verdicts on pairs of images (same / different) act at once on the groups and "
+                                   "the quarantine plan (a pair marked different is split, one marked same joined) "
+                                   "and sharpen the calibration. "
                                    "`verdicts import FILE.csv` stores those of a CSV file with columns a, b (image ids "
                                    "or paths), verdict and optionally note; `verdicts show` counts them.")
     p.add_argument("action", choices=("import", "show"), help="import a CSV file, or show the counts")
@@ -143,7 +148,9 @@ def build_parser() -> argparse.ArgumentParser:
                                    "keeper) and which copies move into DIR, and show it with the bytes freed. With "
                                    "--apply, move them: each source gets its own sub-folder of DIR, each move is "
                                    "checked by content hash and journalled in DIR/manifest-*.jsonl before the next "
-                                   "one. Groups of the similar tier are never acted on; nothing is ever deleted. "
+                                   "one. A file moves only on evidence against the keeper: the same bytes or "
+                                   "pixels, a person's 'same', or a near-duplicate match confirmed by geometric "
+                                   "verification; similar files never move; nothing is ever deleted. "
                                    "Keeper policy: --keep, then --prefer-folder, then --prefer-format, then most "
                                    "pixels, larger file, oldest, path.")
     p.add_argument("--to", required=True, metavar="DIR", help="quarantine folder, outside every source folder")
@@ -151,8 +158,11 @@ def build_parser() -> argparse.ArgumentParser:
     regroup.add_argument("--threshold", type=float, help="regroup at this cosine similarity first")
     regroup.add_argument("--precision", type=float,
                          help="regroup at the calibrated threshold whose estimated precision reaches this")
-    p.add_argument("--tier", choices=("same-bytes", "same-pixels", "near-duplicate"),
-                   help="weakest relation to the keeper that moves (default near-duplicate: all three)")
+    p.add_argument("--tier", choices=("same-bytes", "same-pixels", "person-same", "near-duplicate"),
+                   help="weakest relation to the keeper that moves (default near-duplicate: all four)")
+    p.add_argument("--include-unverified", action="store_true",
+                   help="also move near-duplicates that geometric verification did not confirm (a learned match "
+                        "alone; by default they stay and the plan lists them)")
     p.add_argument("--keep", action="append", dest="keep_paths", metavar="PATTERN",
                    help="never move files matching this path or glob (repeatable; setting keep_paths)")
     p.add_argument("--prefer-folder", action="append", dest="prefer_folders", metavar="PATTERN",

@@ -124,7 +124,7 @@ def cmd_verdicts(args) -> int:
             if not args.file:
                 raise UsageError("`verdicts import` needs the CSV file to read")
             stored = import_csv(store, Path(args.file), author=args.author)
-            print(f"stored {stored} verdicts; `nearsight calibrate` uses them")
+            print(f"stored {stored} verdicts; `groups` and `quarantine` apply them now, `calibrate` uses them")
             return 0
         latest = store.catalog.latest_verdicts()
     counts = {"pairs": len(latest), "same": sum(v["verdict"] == "same" for v in latest)}
@@ -250,20 +250,12 @@ def _print_answer(answer: dict) -> None:
 
 
 def cmd_groups(args) -> int:
-    from .generations import require_current
-    from .groups import Group, groups_to_csv, groups_to_json, summarize
+    from .groups import groups_to_csv, groups_to_json, summarize
+    from .verdict_groups import current_groups
 
     with open_store(args) as store:
-        gen = require_current(store)
-        threshold = _threshold_arg(args, gen)
-        if threshold is not None:
-            from .build import compute_groups, load_vectors
-
-            ids, xb = load_vectors(store, gen.meta["model"])
-            xb = gen.load_whitening().apply(xb)
-            groups = compute_groups(store, gen.load_index(), ids, xb, t_near=threshold, t_similar=threshold)
-        else:
-            groups = [Group.from_dict(g) for g in gen.load_groups()["groups"]]
+        now = current_groups(store, threshold=args.threshold, precision=args.precision)
+        gen, groups = now.generation, now.groups
         if args.tier:
             groups = [g for g in groups if g.tier == args.tier]
         buf = io.StringIO()
@@ -334,11 +326,12 @@ def cmd_serve(args) -> int:
 # -- quarantine, restore -------------------------------------------------------------------------
 def cmd_quarantine(args) -> int:
     from .keepers import KeeperRules
-    from .quarantine import apply_quarantine, plan_quarantine
+    from .plan import plan_quarantine
+    from .quarantine import apply_quarantine
 
     with open_store(args) as store:
         options = dict(tier=args.tier, threshold=args.threshold, precision=args.precision,
-                       rules=KeeperRules.from_settings(store.settings))
+                       rules=KeeperRules.from_settings(store.settings), include_unverified=args.include_unverified)
         if args.apply:
             result = apply_quarantine(store, args.to, **options)
         else:
@@ -368,16 +361,20 @@ def _print_plan(plan: dict) -> None:
     for g in plan["groups"]:
         print(f"\ngroup {g['gid']}  {g['tier']}  keeper {g['keeper']['path']}")
         for m in g["moves"]:
-            print(f"  move  {human_bytes(m['size']):>9}  {m['path']}  ->  {m['dest']}")
-        for k in g["kept"]:
+            of = "" if m["copy_of"]["id"] == g["keeper"]["id"] else f" of {m['copy_of']['path']}, which stays"
+            print(f"  move  {human_bytes(m['size']):>9}  {m['path']}  ->  {m['dest']}  ({m['evidence']}{of})")
+        for k in g["kept"] + g["unverified"]:
             print(f"  stay  {k['path']}  ({k['reason']})")
         for k in g["skipped"]:
             print(f"  skip  {k['path']}  ({k['reason']})")
     s = plan["summary"]
     print(f"\nwould move {s['files']} file(s) from {s['groups']} group(s) into {plan['to']}, "
           f"freeing {human_bytes(s['bytes_freed'])} ({s['bytes_freed']} bytes)")
+    if s["unverified"]:
+        print(f"{s['unverified']} near-duplicate(s) stay: geometric verification did not confirm them "
+              "(review them, or add --include-unverified to move them anyway)")
     if s["similar_groups_ignored"]:
-        print(f"{s['similar_groups_ignored']} group(s) of the similar tier are never acted on")
+        print(f"{s['similar_groups_ignored']} group(s) of the similar tier have nothing to move")
 
 
 RESTORE_WORDS = {"would-restore": "would restore", "restored": "restored", "in-place": "already in place",

@@ -22,6 +22,10 @@ member taken so far.
 Files with the same content hash or the same pixel hash are identical images:
 they are merged into one node first (similarity 1.0), so they always share a
 group and never cost clustering work.
+
+Pairs given as `apart` (a person said "different") lose their edge and count as
+opposite (cosine -1) in the split, so the same complete linkage puts them in
+different groups and nothing chains them back together.
 """
 
 from __future__ import annotations
@@ -41,7 +45,9 @@ from scipy.spatial.distance import squareform
 from .errors import UsageError
 from .index import canonical_pairs
 
-TIERS = ("same-bytes", "same-pixels", "near-duplicate", "similar")  # strongest first
+# Strongest first. "person-same" is never made here: it marks a member a person's verdict
+# joined to a group (indexer/verdict_groups.py).
+TIERS = ("same-bytes", "same-pixels", "person-same", "near-duplicate", "similar")
 _RANK = {tier: rank for rank, tier in enumerate(TIERS)}
 # Complete linkage holds an m x m float64 matrix: 4000 members is 128 MB.
 MAX_LINKAGE = 4000
@@ -187,7 +193,30 @@ def _identical_classes(meta: Mapping[int, ImageMeta]) -> dict[int, int]:
     return {ident: root(ident) for ident in parent}
 
 
+def _apart_nodes(apart, rep: Mapping[int, int]) -> set[tuple[int, int]]:
+    """The pairs kept apart, as (smaller, larger) representatives of their identical classes."""
+    out = set()
+    for x, y in apart:
+        if x not in rep or y not in rep:
+            continue
+        rx, ry = rep[x], rep[y]
+        if rx == ry:
+            raise UsageError(f"images {x} and {y} are kept apart but are the same image (same bytes or pixels)")
+        out.add((min(rx, ry), max(rx, ry)))
+    return out
+
+
 # ---------------------------------------------------------------- splitting components
+
+def _set_apart(S: np.ndarray, reps: np.ndarray, apart_reps: set[tuple[int, int]]) -> None:
+    """Opposite (cosine -1, the largest distance) for every pair kept apart in one component."""
+    if not apart_reps:
+        return
+    where = {int(r): i for i, r in enumerate(reps.tolist())}
+    for x, y in apart_reps:
+        if x in where and y in where:
+            S[where[x], where[y]] = S[where[y], where[x]] = -1.0
+
 
 def _dense(nodes, ia, ib, s, vectors) -> np.ndarray:
     """m x m similarities for one component: pair list (missing = 0) or exact from vectors, raised
@@ -278,15 +307,17 @@ def build_groups(a_ids, b_ids, sims, meta: Mapping[int, ImageMeta | dict], *,
                  t_near: float, t_similar: float,
                  vectors: Callable[[np.ndarray], np.ndarray] | None = None,
                  prefer: Callable[[ImageMeta], object] | None = None,
-                 max_linkage: int = MAX_LINKAGE) -> list[Group]:
+                 max_linkage: int = MAX_LINKAGE,
+                 apart: Iterable[tuple[int, int]] = ()) -> list[Group]:
     """Groups of 2+ images in which every pair has cosine >= `t_similar`.
 
     `meta` maps every id in the pairs (and may map more: identical files are
     grouped by hash even without pairs) to an `ImageMeta` or a dict of its fields.
     `vectors(ids)` may return the unit vectors of those ids for exact in-component
     similarities. `prefer(meta)` returns a sort key placed before `keeper_key`
-    (smaller wins), for keeper rules such as folder priorities. A group's tier is
-    its weakest member tier; "near-duplicate" needs every pair >= `t_near`.
+    (smaller wins), for keeper rules such as folder priorities. No group holds both
+    ids of a pair in `apart`. A group's tier is its weakest member tier;
+    "near-duplicate" needs every pair >= `t_near`.
     Sorted by size, then best similarity to the keeper (both descending).
     """
     _check_thresholds(t_near, t_similar)
@@ -301,10 +332,14 @@ def build_groups(a_ids, b_ids, sims, meta: Mapping[int, ImageMeta | dict], *,
     for ident, r in rep.items():
         classes.setdefault(r, []).append(ident)
 
+    apart_reps = _apart_nodes(apart, rep)
     keep = s >= t_similar
     to_rep = np.vectorize(rep.__getitem__, otypes=[np.int64])
     ra, rb = (to_rep(a[keep]), to_rep(b[keep])) if keep.any() else (a[:0], b[:0])
     ra, rb, s = canonical_pairs(ra, rb, s[keep])
+    if apart_reps:
+        joined = np.array([(x, y) not in apart_reps for x, y in zip(ra.tolist(), rb.tolist())], bool)
+        ra, rb, s = ra[joined], rb[joined], s[joined]
     nodes = np.unique(np.r_[ra, rb, [r for r, c in classes.items() if len(c) > 1]]).astype(np.int64)
     ia, ib = np.searchsorted(nodes, ra), np.searchsorted(nodes, rb)
     graph = coo_matrix((np.ones(ia.shape[0]), (ia, ib)), shape=(nodes.shape[0],) * 2)
@@ -322,6 +357,7 @@ def build_groups(a_ids, b_ids, sims, meta: Mapping[int, ImageMeta | dict], *,
         reps = nodes[local]
         if local.shape[0] <= max_linkage:
             S = _dense(reps, cia, cib, s[edges], vectors)
+            _set_apart(S, reps, apart_reps)
             clique = S[np.triu_indices(len(reps), 1)].min(initial=1.0) >= t_similar
             parts = [np.arange(len(reps))] if clique else _complete_linkage(S, t_similar)
             lookup = S

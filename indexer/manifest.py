@@ -6,7 +6,8 @@ says what was about to happen and what did. Records (``"record"`` key):
 
 - ``run``: the first line: format, version, store, quarantine folder, options.
 - ``intent``: before a move: ``seq``, ``file_id``, ``from``, ``to``, ``hash``
-  (BLAKE2b-256 of the bytes, as in the catalog), ``size``, ``group``, ``keeper``.
+  (BLAKE2b-256 of the bytes, as in the catalog), ``size``, ``group``, ``keeper`` and
+  ``keeper_path`` (the file it duplicates, which stays), ``tier`` and ``evidence`` (why it moves).
 - ``moved``: after the move was verified: ``seq``, ``method``.
 - ``abandoned``: an intent that was not carried out (found so after a kill): ``seq``, ``reason``.
 - ``failed``: the file system refused a move (full disk, read-only folder): ``seq``, ``error``.

@@ -1,236 +1,33 @@
-"""Acting on duplicate groups: move every non-keeper copy into a quarantine folder, reversibly.
+"""Acting on duplicate groups: move the copies a plan lists into a quarantine folder, reversibly.
 
-`plan_quarantine` is pure (it reads the catalog, the current generation and file
-stats, and changes nothing): per group, the keeper chosen by the keeper rules,
-the files that would move and where to, the files kept and why, the files left
-alone because they changed. `apply_quarantine` carries a plan out under the
-store's lock, one verified move at a time (`moves.move_verified`), journalled in a
-manifest (`manifest.py`) and marked in the catalog; it first settles any run in
-the same folder that was killed, and continues that run's manifest.
-
-Only copies of the keeper in the tiers same-bytes, same-pixels and
-near-duplicate are ever moved; groups of the "similar" tier never are.
-Each source gets its own sub-folder of the quarantine folder
-(``source-<id>-<name>/``) under which a file keeps its path relative to the
-source, so two sources with the same relative path cannot collide. nearsight
-never deletes an image: a source file is unlinked only once a verified copy of
-its bytes is in place in the quarantine folder.
+The plan (`plan.plan_quarantine`, re-exported here) says which files move and on what
+evidence. `apply_quarantine` carries it out under the store's lock, one verified move at a
+time (`moves.move_verified`), journalled in a manifest (`manifest.py`) and marked in the
+catalog; it first settles any run in the same folder that was killed, and continues that
+run's manifest. nearsight never deletes an image: a source file is unlinked only once a
+verified copy of its bytes is in place in the quarantine folder, and only while the file it
+duplicates is in place with its catalogued bytes.
 """
 
 from __future__ import annotations
 
 import logging
 import os
-import re
 import time
-from dataclasses import dataclass, field
 from pathlib import Path
 
 from . import manifest
-from .errors import NearsightError, UsageError
+from .errors import NearsightError
 from .fsutil import fsync_dir, hash_file
-from .generations import require_current
-from .groups import TIERS, Group, ImageMeta
 from .keepers import KeeperRules
 from .moves import HashMismatch, holds, is_regular, move_verified, partial_path
+from .plan import GroupPlan, Move, Plan, check_quarantine_dir, plan_quarantine
 from .store import Store
 
 log = logging.getLogger(__name__)
-
-ACTION_TIERS = ("same-bytes", "same-pixels", "near-duplicate")  # strongest first; never "similar"
-_RANK = {tier: rank for rank, tier in enumerate(TIERS)}
 # Tests only: "intent:N" or "moved:N" makes an applying run sleep after writing the Nth file's
 # intent (before its move) or after its move (before its record), so a test can kill it there.
 TEST_PAUSE_ENV = "NEARSIGHT_TEST_QUARANTINE_PAUSE"
-
-
-def source_folder(source_id: int, root: str) -> str:
-    """The quarantine sub-folder of one source: its id keeps two sources named alike apart."""
-    name = re.sub(r"[^A-Za-z0-9._-]+", "_", Path(root).name).strip("._")
-    return f"source-{source_id}-{name}" if name else f"source-{source_id}"
-
-
-def check_quarantine_dir(store: Store, to: str | os.PathLike) -> Path:
-    """The resolved quarantine folder; refused inside (or around) a source, where a scan would read it."""
-    folder = Path(to).expanduser().resolve()
-    if folder.exists() and not folder.is_dir():
-        raise UsageError(f"quarantine folder {to} exists and is not a folder")
-    for source in store.catalog.sources():
-        root = Path(source["root"])
-        if folder == root or root in folder.parents:
-            raise UsageError(f"quarantine folder {folder} is inside the source folder {root}, where the next scan "
-                             "would read the moved files as new images: choose a folder outside every source")
-        if folder in root.parents:
-            raise UsageError(f"quarantine folder {folder} contains the source folder {root}: "
-                             "choose a folder outside every source")
-    return folder
-
-
-# ---------------------------------------------------------------- planning
-
-@dataclass(frozen=True)
-class Move:
-    file_id: int
-    path: str           # where the file is now
-    dest_rel: str       # where it goes, relative to the quarantine folder
-    size: int
-    content_hash: str
-    tier: str           # how it relates to the group's keeper
-
-    def to_dict(self, to: Path | None) -> dict:
-        out = {"id": self.file_id, "path": self.path, "dest_relative": self.dest_rel, "size": self.size,
-               "content_hash": self.content_hash, "tier": self.tier}
-        if to is not None:
-            out["dest"] = str(to / self.dest_rel)
-        return out
-
-
-@dataclass
-class GroupPlan:
-    gid: str
-    tier: str
-    keeper: int
-    keeper_path: str
-    keeper_hash: str
-    moves: list[Move] = field(default_factory=list)
-    kept: list[dict] = field(default_factory=list)      # other members that stay, with the reason
-    skipped: list[dict] = field(default_factory=list)   # members left alone because they changed
-
-    def to_dict(self, to: Path | None) -> dict:
-        return {"gid": self.gid, "tier": self.tier, "keeper": {"id": self.keeper, "path": self.keeper_path},
-                "moves": [m.to_dict(to) for m in self.moves], "kept": self.kept, "skipped": self.skipped,
-                "bytes_freed": sum(m.size for m in self.moves)}
-
-
-@dataclass
-class Plan:
-    generation: str
-    threshold: float | None      # None: the generation's own groups
-    tier: str                    # the weakest tier acted on
-    rules: KeeperRules
-    to: Path | None
-    groups: list[GroupPlan]
-    similar_groups: int          # groups of the "similar" tier, never acted on
-
-    @property
-    def moves(self) -> list[Move]:
-        return [m for g in self.groups for m in g.moves]
-
-    @property
-    def bytes_freed(self) -> int:
-        return sum(m.size for m in self.moves)
-
-    def options(self) -> dict:
-        return {"generation": self.generation, "threshold": self.threshold, "tier": self.tier,
-                "rules": self.rules.to_dict()}
-
-    def to_dict(self) -> dict:
-        return {**self.options(), "to": None if self.to is None else str(self.to),
-                "groups": [g.to_dict(self.to) for g in self.groups],
-                "summary": {"groups": sum(bool(g.moves) for g in self.groups), "files": len(self.moves),
-                            "bytes_freed": self.bytes_freed, "kept": sum(len(g.kept) for g in self.groups),
-                            "skipped": sum(len(g.skipped) for g in self.groups),
-                            "similar_groups_ignored": self.similar_groups}}
-
-
-def _load_groups(store: Store, gen, threshold: float | None, precision: float | None) -> tuple[list[Group], float | None]:
-    """The generation's groups, or groups regrouped at a threshold (given, or read off the calibration)."""
-    if threshold is not None and precision is not None:
-        raise UsageError("give a threshold or a precision, not both")
-    if precision is not None:
-        threshold = gen.threshold("near", precision)
-    if threshold is None:
-        return [Group.from_dict(g) for g in gen.load_groups()["groups"]], None
-    if not 0.0 < threshold <= 1.0:
-        raise UsageError(f"a duplicate threshold is a cosine similarity in (0, 1], not {threshold}")
-    if threshold < float(gen.meta["thresholds"]["near"]):
-        log.warning("threshold %.3f is below the generation's duplicate threshold %.3f: check the plan before --apply",
-                    threshold, gen.meta["thresholds"]["near"])
-    from .build import compute_groups, load_vectors
-
-    ids, xb = load_vectors(store, gen.meta["model"])
-    if len(ids) == 0:
-        return [], threshold
-    xb = gen.load_whitening().apply(xb)
-    return compute_groups(store, gen.load_index(), ids, xb, t_near=threshold, t_similar=threshold), threshold
-
-
-def _present(member, row: dict | None) -> tuple[ImageMeta | None, str | None]:
-    """The member as it is now, or why it cannot be acted on (None, None: already quarantined)."""
-    if row is None or row["state"] == "removed":
-        return None, "no longer in its source folder (removed)"
-    if row["state"] == "quarantined":
-        return None, None
-    if row["state"] != "ok" or row["hash"] != member.meta.content_hash:
-        return None, "changed since the index was built (run `nearsight index` again)"
-    path = str(Path(row["root"]) / row["relpath"])
-    try:
-        st = os.lstat(path)
-    except OSError:
-        return None, "missing from disk"
-    if not is_regular(Path(path)):
-        return None, "not a regular file"
-    if (st.st_size, st.st_mtime_ns) != (row["size"], row["mtime_ns"]):
-        return None, "changed on disk since the last scan"
-    m = member.meta
-    return ImageMeta(path=path, content_hash=row["hash"], width=m.width, height=m.height, file_size=row["size"],
-                     format=m.format, mtime=row["mtime_ns"] / 1e9, pixel_hash=row["pixel_hash"]), None
-
-
-def _relation(meta: ImageMeta, keeper: ImageMeta, group_tier: str) -> str:
-    """How a member relates to the keeper: every member of a same-pixels group is the same picture."""
-    if meta.content_hash == keeper.content_hash:
-        return "same-bytes"
-    if group_tier in ("same-bytes", "same-pixels") or (meta.pixel_hash and meta.pixel_hash == keeper.pixel_hash):
-        return "same-pixels"
-    return "near-duplicate"
-
-
-def _plan_group(group: Group, rows: dict, rules: KeeperRules, tier: str) -> GroupPlan | None:
-    present: dict[int, ImageMeta] = {}
-    skipped = []
-    for member in group.members:
-        meta, reason = _present(member, rows.get(member.id))
-        if meta is not None:
-            present[member.id] = meta
-        elif reason is not None:
-            skipped.append({"id": member.id, "path": member.meta.path, "reason": reason})
-    if len(present) < 2:
-        return None
-    keeper = rules.choose(present)
-    kmeta = present[keeper]
-    plan = GroupPlan(group.gid, group.tier, keeper, kmeta.path, kmeta.content_hash, skipped=skipped)
-    for ident, meta in present.items():
-        if ident == keeper:
-            continue
-        relation = _relation(meta, kmeta, group.tier)
-        if rules.always_kept(meta.path):
-            plan.kept.append({"id": ident, "path": meta.path, "reason": "always kept (keep_paths)"})
-        elif _RANK[relation] > _RANK[tier]:
-            plan.kept.append({"id": ident, "path": meta.path, "reason": f"{relation}, weaker than --tier {tier}"})
-        else:
-            row = rows[ident]
-            dest = f"{source_folder(row['source_id'], row['root'])}/{row['relpath']}"
-            plan.moves.append(Move(ident, meta.path, dest, meta.file_size, meta.content_hash, relation))
-    return plan
-
-
-def plan_quarantine(store: Store, *, tier: str | None = None, threshold: float | None = None,
-                    precision: float | None = None, rules: KeeperRules | None = None,
-                    to: str | os.PathLike | None = None) -> Plan:
-    """What a quarantine would do, changing nothing on disk (regrouping at a threshold may cache
-    pixel hashes in the catalog). `tier` is the weakest tier acted on (default near-duplicate)."""
-    tier = tier or "near-duplicate"
-    if tier not in ACTION_TIERS:
-        raise UsageError(f"tier must be one of {', '.join(ACTION_TIERS)}, not {tier!r}")
-    rules = rules if rules is not None else KeeperRules.from_settings(store.settings)
-    folder = check_quarantine_dir(store, to) if to is not None else None
-    gen = require_current(store)
-    groups, threshold = _load_groups(store, gen, threshold, precision)
-    actionable = [g for g in groups if g.tier in ACTION_TIERS]
-    rows = store.catalog.file_rows(m.id for g in actionable for m in g.members)
-    planned = [p for g in actionable if (p := _plan_group(g, rows, rules, tier)) is not None]
-    return Plan(gen.name, threshold, tier, rules, folder, planned, len(groups) - len(actionable))
 
 
 # ---------------------------------------------------------------- applying
@@ -309,8 +106,8 @@ def _move_one(store: Store, move: Move, dest: Path, group: GroupPlan, journal, s
     """Journal, move and mark one checked file; the reason it was abandoned, or None once moved."""
     src = Path(move.path)
     journal.write("intent", seq=seq, file_id=move.file_id, to=str(dest), size=move.size, group=group.gid,
-                  keeper=group.keeper, keeper_path=group.keeper_path, tier=move.tier, hash=move.content_hash,
-                  **{"from": move.path})
+                  keeper=move.copy_of, keeper_path=move.copy_of_path, tier=move.tier, evidence=move.evidence,
+                  hash=move.content_hash, **{"from": move.path})
     pause("intent", seq)
     try:
         method = move_verified(src, dest, move.content_hash)
@@ -333,12 +130,15 @@ def _carry_out(store: Store, plan: Plan, journal, seq: int) -> tuple[list[dict],
     """Move each planned file after the last `seq` of the journal; (moved, left alone) as dicts."""
     pause = _pause_hook()
     moved, skipped = [], []
+    intact: dict[str, bool] = {}
     for group in plan.groups:
-        # A group's copies move only while a verified keeper stays behind.
-        keeper_ok = not group.moves or holds(Path(group.keeper_path), group.keeper_hash)
         for move in group.moves:
+            # A copy moves only while the file it duplicates stays behind with its catalogued bytes.
+            if move.copy_of_path not in intact:
+                intact[move.copy_of_path] = holds(Path(move.copy_of_path), move.copy_of_hash)
             dest = plan.to / move.dest_rel
-            reason = _precheck(move, dest) if keeper_ok else f"its keeper {group.keeper_path} is missing or changed"
+            reason = _precheck(move, dest) if intact[move.copy_of_path] else \
+                f"the file it duplicates, {move.copy_of_path}, is missing or changed"
             if reason is not None:
                 journal.write("skipped", file_id=move.file_id, reason=reason, **{"from": move.path})
             else:
@@ -364,7 +164,7 @@ def _open_runs(store: Store, folder: Path) -> list[Path]:
 
 def apply_quarantine(store: Store, to: str | os.PathLike, *, tier: str | None = None,
                      threshold: float | None = None, precision: float | None = None,
-                     rules: KeeperRules | None = None) -> dict:
+                     rules: KeeperRules | None = None, include_unverified: bool = False) -> dict:
     """Settle interrupted runs in `to` and continue the latest one's manifest (else start one),
     plan, then move each planned file, verified and journalled, under the store's lock."""
     folder = check_quarantine_dir(store, to)
@@ -378,7 +178,8 @@ def apply_quarantine(store: Store, to: str | os.PathLike, *, tier: str | None = 
                 settled[str(path)] = settle(store, journal)
                 if path != open_runs[-1]:
                     journal.write("end", superseded_by=str(open_runs[-1]))
-        plan = plan_quarantine(store, tier=tier, threshold=threshold, precision=precision, rules=rules, to=folder)
+        plan = plan_quarantine(store, tier=tier, threshold=threshold, precision=precision, rules=rules, to=folder,
+                               include_unverified=include_unverified)
         path = open_runs[-1] if open_runs else manifest.new_path(folder)
         started = time.monotonic()
         with manifest.ManifestWriter(path) as journal:

@@ -22,7 +22,7 @@ never opens a user's original file at query time.
 from __future__ import annotations
 
 import logging
-from typing import Sequence
+from typing import Mapping, Sequence
 
 from PIL import Image
 
@@ -47,6 +47,18 @@ def verdict_score(result: dict) -> float:
     return boosted(d) if (result.get("evidence") or {}).get("verified") else d
 
 
+def read_small(paths: Mapping[int, str]) -> dict[int, Image.Image]:
+    """Each id's pixels at VERIFY_SIDE from its file (a small copy, usually); ids whose file cannot be
+    read (changed or gone since it was indexed) are left out."""
+    out = {}
+    for ident, path in paths.items():
+        try:
+            out[ident] = read_image(path, max_side=VERIFY_SIDE)[0]
+        except (ImageReadError, OSError) as exc:
+            log.debug("cannot read %s (id %s) for verification: %s", path, ident, exc)
+    return out
+
+
 def _evidence(v, size: tuple[int, int]) -> dict:
     w, h = size
     box = None if v.box is None else [round(v.box[0] / w, 4), round(v.box[1] / h, 4),
@@ -67,13 +79,9 @@ def rerank(query: Image.Image, results: list[dict], candidates: dict[int, str], 
     from .verify import VerifyConfig, verify_candidates
 
     head = [r for r in results[:top] if r["id"] in candidates]
-    images, checked = [], []
-    for r in head:
-        try:
-            images.append(read_image(candidates[r["id"]], max_side=VERIFY_SIDE)[0])
-            checked.append(r)
-        except (ImageReadError, OSError) as exc:  # changed or gone since it was indexed
-            log.debug("cannot verify candidate %s: %s", r["id"], exc)
+    small = read_small({r["id"]: candidates[r["id"]] for r in head})
+    checked = [r for r in head if r["id"] in small]
+    images = [small[r["id"]] for r in checked]
     if not checked:
         return results
     # verify_candidates brings both sides to VERIFY_SIDE itself.

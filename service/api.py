@@ -2,7 +2,8 @@
 
 Each view reads its arguments (params.py), asks indexer, and shapes the answer; no SQL here.
 Answers that depend on the index carry the generation they came from, as the field
-``generation`` and the header X-Nearsight-Generation.
+``generation`` and the header X-Nearsight-Generation. Groups are shown as a person's
+verdicts leave them: a verdict acts on the next request.
 """
 
 from __future__ import annotations
@@ -62,7 +63,8 @@ def status():
     out = store_status(st.store())
     out["published_generation"] = (out.pop("generation") or {}).get("name")
     out["generation"] = None if snap is None else {
-        "name": snap.name, "model": snap.model, "indexed": snap.size, "groups": len(snap.groups),
+        "name": snap.name, "model": snap.model, "indexed": snap.size,
+        "groups": len(snap.groups_now(st.store().catalog).groups),
         "index_spec": snap.generation.meta.get("index_spec"),
         "published_at": snap.generation.meta.get("published_at"), "loaded_at": snap.loaded_at,
     }
@@ -120,12 +122,13 @@ def _image_row(image_id: int) -> dict:
 def image(image_id: int):
     row = _image_row(image_id)
     snap = snapshot(required=False)
+    gid_of = snap.groups_now(state().store().catalog).gid_of if snap else {}
     return jsonify(
         id=row["id"], path=_path(row), state=row["state"], reason=row["reason"], size=row["size"],
         mtime=row["mtime_ns"] / 1e9 if row["mtime_ns"] is not None else None,
         width=row["width"], height=row["height"], format=row["format"], content_hash=row["hash"],
         first_seen=row["first_seen"], last_seen=row["last_seen"],
-        group=snap.gid_of.get(image_id) if snap else None, generation=snap.name if snap else None,
+        group=gid_of.get(image_id), generation=snap.name if snap else None,
     )
 
 
@@ -181,12 +184,11 @@ def _jpeg_of(row: dict, side: int) -> Response:
 MEMBER_BRIEF = ("id", "tier", "similarity", "path", "width", "height", "file_size")
 
 
-def _brief(group: dict) -> dict:
-    others = [m["similarity"] for m in group["members"] if m["id"] != group["keeper"]]
-    return {"gid": group["gid"], "tier": group["tier"], "size": group["size"], "keeper": group["keeper"],
-            "reclaimable_bytes": group.get("reclaimable_bytes", 0),
-            "best_similarity": max(others) if others else None,
-            "members": [{k: m.get(k) for k in MEMBER_BRIEF} for m in group["members"]]}
+def _brief(group) -> dict:
+    full = group.to_dict()
+    return {"gid": full["gid"], "tier": full["tier"], "size": full["size"], "keeper": full["keeper"],
+            "reclaimable_bytes": full["reclaimable_bytes"], "best_similarity": group.best_similarity,
+            "members": [{k: m.get(k) for k in MEMBER_BRIEF} for m in full["members"]]}
 
 
 @api.get("/v1/groups")
@@ -197,7 +199,7 @@ def groups():
     max_size = params.int_arg(request.args, "max_size", None, 1, 10**9)
     limit = params.int_arg(request.args, "limit", 20, 1, 200)
     offset = params.int_arg(request.args, "offset", 0, 0, 10**9)
-    found = snap.find_groups(tier=tier, min_size=min_size, max_size=max_size)
+    found = snap.groups_now(state().store().catalog).find(tier=tier, min_size=min_size, max_size=max_size)
     return jsonify(generation=snap.name, total=len(found), offset=offset, limit=limit,
                    groups=[_brief(g) for g in found[offset:offset + limit]])
 
@@ -205,9 +207,9 @@ def groups():
 @api.get("/v1/groups/<gid>")
 def group(gid: str):
     snap = snapshot()
-    found = snap.group(gid)
-    member_ids = [m["id"] for m in found["members"]]
     catalog = state().store().catalog
+    found = snap.groups_now(catalog).group(gid).to_dict()
+    member_ids = [m["id"] for m in found["members"]]
     content_of = catalog.content_ids_of(member_ids)
     by_content: dict[int, list[int]] = {}
     for member in member_ids:
@@ -224,21 +226,25 @@ def group(gid: str):
 # -- the quarantine plan (read-only) ----------------------------------------------------------------
 @api.get("/v1/plan")
 def plan():
-    """What `nearsight quarantine` would move now, from the published generation's own groups and the
-    store's keeper rules; nothing is moved or written (the CLI's --apply is the only way to act)."""
-    from indexer.quarantine import ACTION_TIERS, plan_quarantine
+    """What `nearsight quarantine` would move now, from the published generation's groups as the latest
+    verdicts leave them and the store's keeper rules, with the evidence for each file; nothing is moved or
+    written (the CLI's --apply is the only way to act). Groups with a file to move or a near-duplicate left
+    unverified are listed."""
+    from indexer.plan import ACTION_TIERS, plan_quarantine
 
     tier = request.args.get("tier") or None
     if tier is not None and tier not in ACTION_TIERS:
         raise UsageError(f"tier must be one of {', '.join(ACTION_TIERS)}, not {tier!r}")
+    include_unverified = params.bool_arg(request.args, "include_unverified")
     limit = params.int_arg(request.args, "limit", 20, 1, 200)
     offset = params.int_arg(request.args, "offset", 0, 0, 10**9)
     snapshot()  # 409 while no generation is served
-    planned = plan_quarantine(state().store(), tier=tier).to_dict()
-    acting = [g for g in planned["groups"] if g["moves"]]
-    return jsonify(generation=planned["generation"], tier=planned["tier"], rules=planned["rules"],
-                   summary=planned["summary"], total=len(acting), offset=offset, limit=limit,
-                   groups=acting[offset:offset + limit])
+    planned = plan_quarantine(state().store(), tier=tier, include_unverified=include_unverified).to_dict()
+    listed = [g for g in planned["groups"] if g["moves"] or g["unverified"]]
+    return jsonify(generation=planned["generation"], tier=planned["tier"],
+                   include_unverified=planned["include_unverified"], rules=planned["rules"],
+                   summary=planned["summary"], total=len(listed), offset=offset, limit=limit,
+                   groups=listed[offset:offset + limit])
 
 
 # -- verdicts ---------------------------------------------------------------------------------------

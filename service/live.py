@@ -2,7 +2,9 @@
 
 A `Snapshot` is one generation loaded whole: index, whitening, model, groups and
 calibration are read once, so a request that took a snapshot answers from it to the
-end even if the nightly job publishes (and prunes) generations meanwhile. A
+end even if the nightly job publishes (and prunes) generations meanwhile. Its groups
+are shown as a person's verdicts leave them (indexer/verdict_groups.py), worked out
+again only when a verdict was added since. A
 `LiveGeneration` watches ``generations/CURRENT``; when it names another generation,
 it loads that one beside the old and then replaces the reference in one assignment.
 Requests take the reference once, at their start: in-flight requests finish on the
@@ -21,9 +23,11 @@ from typing import Callable
 from indexer.errors import NearsightError, NotFoundError, StoreError, UsageError
 from indexer.generations import POINTER, Generation
 from indexer.groups import TIERS as GROUP_TIERS
+from indexer.groups import Group
 from indexer.query import Searcher
 from indexer.settings import Settings
 from indexer.store import Store
+from indexer.verdict_groups import judged_groups
 
 log = logging.getLogger(__name__)
 
@@ -53,24 +57,61 @@ def _reader_store(root: Path, settings: Settings) -> Store:
     return Store(root, _NoSharedCatalog(), settings)
 
 
+class GroupView:
+    """The groups as one set of verdicts leaves them, with lookups by gid and by image id."""
+
+    def __init__(self, generation: str, groups: list[Group]):
+        self.generation = generation
+        self.groups = groups
+        self.by_gid = {g.gid: g for g in groups}
+        self.gid_of = {m.id: g.gid for g in groups for m in g.members}
+
+    def group(self, gid: str) -> Group:
+        try:
+            return self.by_gid[gid]
+        except KeyError:
+            raise NotFoundError(f"no group {gid!r} in generation {self.generation} (a verdict may have "
+                                "split or joined it since: list the groups again)") from None
+
+    def find(self, *, tier: str | None, min_size: int, max_size: int | None) -> list[Group]:
+        if tier is not None and tier not in GROUP_TIERS:
+            raise UsageError(f"tier must be one of {', '.join(GROUP_TIERS)}, not {tier!r}")
+        return [g for g in self.groups
+                if (tier is None or g.tier == tier) and g.size >= min_size
+                and (max_size is None or g.size <= max_size)]
+
+
 class Snapshot:
     """One generation, fully loaded: what a request answers from, start to finish."""
 
-    def __init__(self, searcher: Searcher, generation: PinnedGeneration, groups: list[dict]):
+    def __init__(self, searcher: Searcher, generation: PinnedGeneration, groups: list[Group]):
         self.searcher = searcher
         self.generation = generation
         self.name = generation.name
-        self.groups = groups
-        self.by_gid = {g["gid"]: g for g in groups}
-        self.gid_of = {m["id"]: g["gid"] for g in groups for m in g["members"]}
+        self.groups = groups  # as published
         self.loaded_at = time.time()
+        self._view: tuple[int, GroupView] = (0, GroupView(self.name, groups))
+        self._view_lock = threading.Lock()
+
+    def groups_now(self, catalog) -> GroupView:
+        """The groups with the latest verdicts applied (`catalog`: the request thread's connection)."""
+        version = catalog.verdicts_version()
+        with self._view_lock:
+            seen, view = self._view
+            if seen != version:
+                thresholds = self.generation.meta["thresholds"]
+                groups = judged_groups(catalog, self.groups, model=self.model, whitening=self.searcher.whitening,
+                                       t_near=float(thresholds["near"]), t_similar=float(thresholds["similar"]))
+                view = GroupView(self.name, groups)
+                self._view = (version, view)
+        return view
 
     @classmethod
     def load(cls, root: Path, settings: Settings) -> "Snapshot":
         searcher = Searcher(_reader_store(root, settings))
         gen = searcher.generation
         calibration = gen.load_calibration()
-        groups = gen.load_groups()["groups"]
+        groups = [Group.from_dict(g) for g in gen.load_groups()["groups"]]
         if not (gen.path / "meta.json").is_file():
             # Pruned while we read it: load_groups would have returned no groups rather than fail.
             raise StoreError(f"generation {gen.name} was removed while it was being loaded")
@@ -107,19 +148,6 @@ class Snapshot:
     def calibration_summary(self):
         calibration = self.generation.calibration
         return calibration.get("summary") if isinstance(calibration, dict) else None
-
-    def group(self, gid: str) -> dict:
-        try:
-            return self.by_gid[gid]
-        except KeyError:
-            raise NotFoundError(f"no group {gid!r} in generation {self.name}") from None
-
-    def find_groups(self, *, tier: str | None, min_size: int, max_size: int | None) -> list[dict]:
-        if tier is not None and tier not in GROUP_TIERS:
-            raise UsageError(f"tier must be one of {', '.join(GROUP_TIERS)}, not {tier!r}")
-        return [g for g in self.groups
-                if (tier is None or g["tier"] == tier) and g["size"] >= min_size
-                and (max_size is None or g["size"] <= max_size)]
 
 
 class LiveGeneration:

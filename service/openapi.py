@@ -8,7 +8,9 @@ from __future__ import annotations
 
 from .params import MAX_K
 
-TIER_NAMES = ["same-bytes", "same-pixels", "near-duplicate", "similar"]
+TIER_NAMES = ["same-bytes", "same-pixels", "person-same", "near-duplicate", "similar"]
+ACTION_TIER_NAMES = TIER_NAMES[:-1]
+EVIDENCE_NAMES = ["same-bytes", "same-pixels", "person-same", "verified", "unverified (opted in)"]
 ERROR_STATUSES = {
     "400": "The request is malformed: a parameter out of range, a bad body",
     "401": "The API key is missing or wrong (header Authorization: Bearer <key>)",
@@ -139,20 +141,48 @@ SCHEMAS = {
                        "offset": {"type": "integer"}, "limit": {"type": "integer"},
                        "groups": {"type": "array", "items": _ref("GroupBrief")}},
     },
+    "PlannedMove": {
+        "type": "object", "required": ["id", "path", "size", "content_hash", "tier", "evidence"],
+        "properties": {"id": {"type": "integer"}, "path": {"type": "string"}, "dest_relative": {"type": "string"},
+                       "size": {"type": "integer"}, "content_hash": {"type": "string"},
+                       "tier": {"type": "string", "enum": ACTION_TIER_NAMES, "description": "relation to the keeper"},
+                       "evidence": {"type": "string", "enum": EVIDENCE_NAMES,
+                                    "description": "what allows it to move: the same bytes or pixels, a person's "
+                                                   "'same', a near-duplicate match confirmed by geometric "
+                                                   "verification, or (only with include_unverified) a learned "
+                                                   "match alone"}},
+    },
+    "LeftFile": {
+        "type": "object", "required": ["id", "path", "reason"],
+        "properties": {"id": {"type": "integer"}, "path": {"type": "string"}, "reason": {"type": "string"}},
+    },
     "Plan": {
-        "type": "object", "required": ["generation", "tier", "rules", "summary", "total", "offset", "limit", "groups"],
+        "type": "object",
+        "required": ["generation", "tier", "include_unverified", "rules", "summary", "total", "offset", "limit",
+                     "groups"],
         "properties": {
-            "generation": {"type": "string"}, "tier": {"type": "string"}, "rules": {"type": "object"},
+            "generation": {"type": "string"}, "tier": {"type": "string", "enum": ACTION_TIER_NAMES},
+            "include_unverified": {"type": "boolean"}, "rules": {"type": "object"},
             "summary": {"type": "object", "properties": {
                 "groups": {"type": "integer"}, "files": {"type": "integer"}, "bytes_freed": {"type": "integer"},
                 "kept": {"type": "integer"}, "skipped": {"type": "integer"},
+                "unverified": {"type": "integer", "description": "near-duplicates left in place: not verified"},
+                "evidence": {"type": "object", "description": "files to move, by evidence",
+                             "additionalProperties": {"type": "integer"}},
                 "similar_groups_ignored": {"type": "integer"}}},
             "total": {"type": "integer"}, "offset": {"type": "integer"}, "limit": {"type": "integer"},
-            "groups": {"type": "array", "items": {"type": "object", "required": ["gid", "tier", "keeper", "moves"],
-                                                  "properties": {"gid": {"type": "string"}, "tier": {"type": "string"},
-                                                                 "keeper": {"type": "object"},
-                                                                 "moves": {"type": "array", "items": {"type": "object"}},
-                                                                 "bytes_freed": {"type": "integer"}}}},
+            "groups": {"type": "array", "items": {
+                "type": "object", "required": ["gid", "tier", "keeper", "moves", "kept", "skipped", "unverified"],
+                "properties": {"gid": {"type": "string"}, "tier": {"type": "string", "enum": TIER_NAMES},
+                               "keeper": {"type": "object"},
+                               "moves": {"type": "array", "items": _ref("PlannedMove")},
+                               "kept": {"type": "array", "items": _ref("LeftFile")},
+                               "skipped": {"type": "array", "items": _ref("LeftFile")},
+                               "unverified": {"type": "array", "items": _ref("LeftFile"),
+                                              "description": "near-duplicates left in place because geometric "
+                                                             "verification did not confirm their match to the "
+                                                             "keeper, with the reason"},
+                               "bytes_freed": {"type": "integer"}}}},
         },
     },
     "Group": {
@@ -299,7 +329,10 @@ def _paths() -> dict:
             "responses": {"200": {"description": "JPEG", "content": {"image/jpeg": BINARY}},
                           **_errors("400", *read_errors, "404", "422")}}},
         "/v1/groups": {"get": {
-            "operationId": "groups", "summary": "Duplicate groups of the served generation, largest first",
+            "operationId": "groups",
+            "summary": "Duplicate groups of the served generation as the latest verdicts leave them, largest first",
+            "description": "A pair marked different is never in one group (its group is split again without "
+                           "chaining); a pair marked same is (a member joined this way has tier person-same).",
             "parameters": [
                 {"name": "tier", "in": "query", "required": False, "description": "Only groups of this tier",
                  "schema": {"type": "string", "enum": TIER_NAMES}},
@@ -317,11 +350,17 @@ def _paths() -> dict:
         "/v1/plan": {"get": {
             "operationId": "plan",
             "summary": "The quarantine dry run: per group, the keeper and the files `nearsight quarantine --apply` "
-                       "would move (read-only; moving happens only from the command line)",
+                       "would move, with the evidence for each (read-only; moving happens only from the command line)",
+            "description": "Lists the groups with a file to move or a near-duplicate left in place because "
+                           "geometric verification did not confirm it.",
             "parameters": [
                 {"name": "tier", "in": "query", "required": False,
-                 "description": "The weakest tier acted on (default near-duplicate)",
-                 "schema": {"type": "string", "enum": ["same-bytes", "same-pixels", "near-duplicate"]}},
+                 "description": "The weakest relation to the keeper acted on (default near-duplicate)",
+                 "schema": {"type": "string", "enum": ACTION_TIER_NAMES}},
+                {"name": "include_unverified", "in": "query", "required": False,
+                 "description": "Also move near-duplicates that geometric verification did not confirm "
+                                "(`quarantine --include-unverified`)",
+                 "schema": {"type": "boolean", "default": False}},
                 _int_param("limit", "query", "Groups per page", 1, 200, default=20),
                 _int_param("offset", "query", "Groups to skip", 0, 10**9, default=0),
             ],

@@ -38,6 +38,19 @@ def int_arg(source: Mapping[str, Any], name: str, default: int | None, lo: int, 
     return value
 
 
+def bool_arg(source: Mapping[str, Any], name: str, default: bool = False) -> bool:
+    """true / false (also 1 / 0, yes / no), any case; absent or empty is `default`."""
+    raw = source.get(name)
+    if raw is None or raw == "":
+        return default
+    text = str(raw).strip().lower()
+    if text in ("true", "1", "yes"):
+        return True
+    if text in ("false", "0", "no"):
+        return False
+    raise UsageError(f"{name} must be true or false, not {str(raw)[:40]!r}")
+
+
 def float_arg(source: Mapping[str, Any], name: str, lo: float, hi: float, *, open_range: bool = False) -> float | None:
     raw = source.get(name)
     if raw is None or raw == "":

@@ -139,6 +139,37 @@ def test_every_pair_in_every_group_is_above_threshold(max_linkage):
                         pytest.fail(f"{g.gid} and {h.gid} could be one group")
 
 
+@pytest.mark.parametrize("max_linkage", [4000, 3])  # complete linkage; centre split
+def test_a_pair_kept_apart_never_shares_a_group_and_nothing_chains(max_linkage):
+    """Five near copies of one picture with the pair (0, 1) kept apart: scipy's complete linkage on the
+    same distances with that pair at the largest distance (2) is the oracle for the split."""
+    from scipy.cluster.hierarchy import fcluster, linkage
+    from scipy.spatial.distance import squareform
+
+    rng = np.random.default_rng(3)
+    xb = unit(rng.standard_normal((1, 16)) + 0.03 * rng.standard_normal((5, 16)))
+    ids = np.arange(5, dtype=np.int64)
+    a, b, s, S = brute_pairs(xb, ids, 0.9)
+    assert len(a) == 10  # one clique before the verdict
+    groups = build_groups(a, b, s, plain_meta(ids), t_near=0.9, t_similar=0.9, apart=[(1, 0)],
+                          vectors=lambda q: xb[q], max_linkage=max_linkage)
+    assert not any({0, 1} <= {m.id for m in g.members} for g in groups)
+    assert_no_pair_below(groups, S, {v: v for v in ids.tolist()}, 0.9)
+    if max_linkage == 4000:
+        D = 1.0 - S.astype(np.float64)
+        D[0, 1] = D[1, 0] = 2.0
+        np.fill_diagonal(D, 0.0)
+        labels = fcluster(linkage(squareform(np.clip(D, 0, 2), checks=False), "complete"), t=0.1, criterion="distance")
+        want = {frozenset(ids[labels == c].tolist()) for c in np.unique(labels) if (labels == c).sum() > 1}
+        assert partition(groups) == want
+
+
+def test_a_pair_kept_apart_that_is_one_image_is_a_usage_error():
+    meta = plain_meta([1, 2], {2: dict(content_hash="c1")})
+    with pytest.raises(UsageError, match="same image"):
+        build_groups(np.array([1]), np.array([2]), np.array([1.0]), meta, t_near=0.9, t_similar=0.9, apart=[(1, 2)])
+
+
 # ------------------------------------------------------------------ tiers and keepers
 
 def test_tiers_relative_to_keeper():
@@ -228,7 +259,7 @@ def test_reclaimable_bytes_and_summary():
                      t_near=0.95, t_similar=0.9)[0]
     assert g.keeper == 1 and reclaimable_bytes(g) == 500
     assert summarize([g]) == {"groups": 1, "files_in_groups": 3, "reclaimable_bytes": 500,
-                              "groups_by_tier": {"same-bytes": 0, "same-pixels": 0,
+                              "groups_by_tier": {"same-bytes": 0, "same-pixels": 0, "person-same": 0,
                                                  "near-duplicate": 1, "similar": 0}}
 
 

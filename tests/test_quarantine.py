@@ -501,3 +501,96 @@ def test_a_quarantine_folder_inside_a_source_is_a_one_line_usage_error(exact, ru
     assert both.returncode == 2 and "not allowed with argument" in both.stderr      # argparse's own message
     uncalibrated = run_cli("quarantine", "--store", store_dir, "--to", "q", "--precision", "0.9")
     assert uncalibrated.returncode == 1 and "calibrat" in uncalibrated.stderr.strip().splitlines()[-1]
+
+
+# ---------------------------------------------------------------- what may move without a person
+
+def _skimage(name: str) -> Image.Image:
+    import skimage.data
+
+    return Image.fromarray(getattr(skimage.data, name)()).convert("RGB")
+
+
+def _force_vectors(store: Store, copies: dict[Path, Path]) -> None:
+    """Give each file the stored vector of another, as an encoder fooled by a look-alike would, and
+    publish a generation grouped from those vectors (cosine 1.0, above any duplicate threshold)."""
+    from indexer.build import build_generation
+
+    model = generations.current(store).meta["model"]
+    ids = {p: store.catalog.file_id_for_path(p) for pair in copies.items() for p in pair}
+    contents = store.catalog.content_ids_of(ids.values())
+    stored = store.catalog.file_vectors(ids.values(), model)
+    store.catalog.put_vectors(model, [contents[ids[copy]] for copy in copies],
+                              [stored[ids[original]] for original in copies.values()])
+    build_generation(store, store.models_dir / model, t_near=EXACT["near_threshold"],
+                     t_similar=EXACT["similar_threshold"])
+
+
+def test_look_alike_textures_stay_and_a_verified_crop_moves(tmp_path, trained_models):
+    """Two non-overlapping halves of scikit-image's gravel photo, forced to one vector (a learned
+    match at cosine 1.0), are left in place by a default quarantine; a real crop and JPEG re-save of
+    scikit-image's astronaut, forced likewise, moves with evidence "verified" (ORB + RANSAC).
+    Bytes are checked with hashlib's SHA-256."""
+    photos = tmp_path / "photos"
+    photos.mkdir()
+    gravel, astronaut = _skimage("gravel"), _skimage("astronaut")
+    w, h = gravel.size
+    gravel.crop((0, 0, w // 2, h)).save(photos / "gravel-left.png")
+    gravel.crop((w // 2, 0, w, h)).save(photos / "gravel-right.png")
+    astronaut.save(photos / "astronaut.png")  # the most pixels: the keeper of its group
+    aw, ah = astronaut.size
+    astronaut.crop((aw // 10, ah // 10, aw // 10 + int(aw * 0.8), ah // 10 + int(ah * 0.8))).save(
+        photos / "astronaut-crop.jpg", quality=85)
+    store_dir = _build(tmp_path, trained_models, [photos], **EXACT)
+    qdir = tmp_path / "quarantine"
+    before = tree(photos)
+    with _open(store_dir, **EXACT) as store:
+        _force_vectors(store, {photos / "gravel-right.png": photos / "gravel-left.png",
+                               photos / "astronaut-crop.jpg": photos / "astronaut.png"})
+        plan = plan_quarantine(store).to_dict()
+        by_path = {m["path"]: m for g in plan["groups"] for m in g["moves"]}
+        left_alone = {u["path"]: u for g in plan["groups"] for u in g["unverified"]}
+        gravel_group = [g for g in plan["groups"] if Path(g["keeper"]["path"]).name.startswith("gravel")]
+        assert len(gravel_group) == 1 and gravel_group[0]["tier"] == "near-duplicate"  # grouped, so at stake
+        assert not gravel_group[0]["moves"] and len(gravel_group[0]["unverified"]) == 1
+        assert next(iter(left_alone.values()))["reason"].startswith("not verified against the keeper")
+        assert by_path[str(photos / "astronaut-crop.jpg")]["evidence"] == "verified"
+        assert plan["summary"]["evidence"] == {"verified": 1} and plan["summary"]["unverified"] == 1
+
+        opted_in = plan_quarantine(store, include_unverified=True).to_dict()
+        assert opted_in["summary"]["evidence"] == {"verified": 1, "unverified (opted in)": 1}
+
+        result = apply_quarantine(store, qdir)
+    assert [m["path"] for m in result["moved_files"]] == [str(photos / "astronaut-crop.jpg")]
+    assert sha256(result["moved_files"][0]["dest"]) == before[str(photos / "astronaut-crop.jpg")]
+    for name in ("gravel-left.png", "gravel-right.png", "astronaut.png"):
+        assert sha256(photos / name) == before[str(photos / name)]
+    intent = next(r for r in records(result["manifest"]) if r["record"] == "intent")
+    assert intent["evidence"] == "verified" and intent["keeper_path"] == str(photos / "astronaut.png")
+
+
+def test_exact_copies_of_a_file_that_stays_still_move_as_its_copies(tmp_path, trained_models):
+    """The right half of the gravel photo stays (its learned match to the left half, the keeper by
+    folder preference, is not verified), but a byte-identical copy of it (shutil) moves as a copy of
+    that half, not of the keeper. SHA-256 checks."""
+    photos = tmp_path / "photos"
+    (photos / "masters").mkdir(parents=True)
+    gravel = _skimage("gravel")
+    w, h = gravel.size
+    gravel.crop((0, 0, w // 2, h)).save(photos / "masters" / "gravel-left.png")
+    gravel.crop((w // 2, 0, w, h)).save(photos / "gravel-right.png")
+    shutil.copy(photos / "gravel-right.png", photos / "gravel-right-copy.png")
+    store_dir = _build(tmp_path, trained_models, [photos], **EXACT)
+    before = tree(photos)
+    rules = KeeperRules(prefer_folders=("masters",))
+    with _open(store_dir, **EXACT) as store:
+        _force_vectors(store, {photos / "gravel-right.png": photos / "masters" / "gravel-left.png"})
+        (group,) = plan_quarantine(store, rules=rules).to_dict()["groups"]
+        assert group["keeper"]["path"] == str(photos / "masters" / "gravel-left.png")
+        (move,) = group["moves"]
+        halves = {str(photos / "gravel-right.png"), str(photos / "gravel-right-copy.png")}
+        assert move["evidence"] == "same-bytes" and {move["path"], move["copy_of"]["path"]} == halves
+        assert [u["path"] for u in group["unverified"]] == [move["copy_of"]["path"]]
+        result = apply_quarantine(store, tmp_path / "quarantine", rules=rules)
+    assert result["moved"] == 1 and sha256(result["moved_files"][0]["dest"]) == before[move["path"]]
+    assert all(sha256(p) == before[p] for p in before if p != move["path"])

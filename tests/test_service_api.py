@@ -243,12 +243,15 @@ def test_plan_is_the_quarantine_dry_run_and_moves_nothing(client, served):
     page = client.get("/v1/plan?limit=200").json()
     want = plan_quarantine(served["store"]).to_dict()
     assert page["summary"] == want["summary"] and page["generation"] == want["generation"]
-    assert [g["gid"] for g in page["groups"]] == [g["gid"] for g in want["groups"] if g["moves"]]
+    assert [g["gid"] for g in page["groups"]] == [g["gid"] for g in want["groups"] if g["moves"] or g["unverified"]]
+    assert page["include_unverified"] is False and all(m["evidence"] != "unverified (opted in)"
+                                                       for g in page["groups"] for m in g["moves"])
     assert page["summary"]["files"] == sum(len(g["moves"]) for g in page["groups"])
     assert {p: hashlib.sha256(Path(p).read_bytes()).hexdigest() for p in paths} == before
     narrow = client.get("/v1/plan?tier=same-bytes&limit=200").json()
     assert all(m["tier"] == "same-bytes" for g in narrow["groups"] for m in g["moves"])
     _assert_error(client.get("/v1/plan?tier=similar"), 400, "bad_request")
+    _assert_error(client.get("/v1/plan?include_unverified=perhaps"), 400, "bad_request")
 
 
 def _judgeable_pair(served):
@@ -281,14 +284,19 @@ def test_verdicts_need_the_key_and_round_trip_through_the_catalog(client, writer
 
     listed = client.get("/v1/verdicts?limit=1000").json()
     assert stored_id in [v["id"] for v in listed["verdicts"]]
-    detail = client.get(f"/v1/groups/{group['gid']}").json()
-    assert any({v["a"], v["b"]} == {a, b} and v["verdict"] == "different" for v in detail["verdicts"])
+    # The verdict acts at once: the group that held the pair is split, so its gid is gone.
+    _assert_error(client.get(f"/v1/groups/{group['gid']}"), 404, "not_found")
+    page = client.get("/v1/groups?limit=200").json()["groups"]
+    assert not any({a, b} <= {m["id"] for m in g["members"]} for g in page)
 
-    # A later verdict on the same pair is the one that counts.
+    # A later verdict on the same pair is the one that counts: "same" brings the published group back.
     writer.post_json("/v1/verdicts", {"verdicts": [{"file_a": b, "file_b": a, "verdict": "same"}], "author": "t"})
     with Catalog(served["store"].root / "catalog.sqlite") as catalog:
         pair = [v for v in catalog.latest_verdicts() if {v["file_a"], v["file_b"]} == {a, b}]
     assert [v["verdict"] for v in pair] == ["same"]
+    detail = client.get(f"/v1/groups/{group['gid']}").json()
+    assert [m["id"] for m in detail["members"]] == [m["id"] for m in group["members"]]
+    assert [v["verdict"] for v in detail["verdicts"] if {v["a"], v["b"]} == {a, b}] == ["same"]
 
 
 @pytest.mark.parametrize("body, status", [

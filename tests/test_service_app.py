@@ -140,7 +140,7 @@ def test_a_new_generation_is_swapped_in_and_the_old_snapshot_still_answers(servi
     catalog = app.extensions["nearsight"].store().catalog
     assert [r["id"] for r in old.searcher.similar_to_id(1, 3, catalog=catalog)] == \
         [r["id"] for r in first.get_json()["results"]]
-    assert old.group(old.groups[0]["gid"]) is old.groups[0]
+    assert old.groups_now(catalog).group(old.groups[0].gid) is old.groups[0]
     later = c.get("/v1/images/1/similar?k=3")
     assert later.headers["X-Nearsight-Generation"] == summary["generation"]
     assert c.get("/v1/status").get_json()["service"]["swaps"] == 1

@@ -100,7 +100,9 @@
     while (n >= 1024 && i < units.length - 1) { n /= 1024; i++; }
     return (i ? n.toFixed(1) : n) + " " + units[i];
   }
-  function tierName(t) { return { "same-bytes": "same bytes", "same-pixels": "same pixels" }[t] || t; }
+  function tierName(t) {
+    return { "same-bytes": "same bytes", "same-pixels": "same pixels", "person-same": "marked same" }[t] || t;
+  }
 
   function showView(name) {
     for (const view of document.querySelectorAll(".view")) view.hidden = view.id !== "view-" + name;
@@ -272,7 +274,9 @@
         });
         state.group.verdicts = (state.group.verdicts || []).concat(
           [{ a: a.id, b: b.id, verdict: verdict, id: body.verdicts[0].id }]);
-        toast(`Marked ${verdict}: #${a.id} and #${b.id}`);
+        // The groups list and the plan apply a verdict at once: "different" splits this pair.
+        toast(`Marked ${verdict}: #${a.id} and #${b.id}` +
+              (verdict === "different" ? " (no longer grouped together)" : ""));
         if (state.pairIndex + 1 < state.pairs.length) movePair(1);
         else renderPair(state.group.gid, state.pairIndex);
       } catch (e) {

@@ -1,0 +1,98 @@
+"""A person's verdict acts at once: a real `python -m indexer serve` on 127.0.0.1
+(tests/service_support.py), real HTTP requests (the standard library's http.client), the
+store's catalog and published generation read directly, and files checked by hashlib's
+SHA-256 (FIPS 180-4) after a real quarantine with apply on the same store.
+"""
+
+import hashlib
+from pathlib import Path
+
+import pytest
+
+from indexer import generations
+from indexer.quarantine import apply_quarantine
+from indexer.settings import load_settings
+from indexer.store import Store
+
+from .service_support import API_KEY, ServerProcess
+
+
+@pytest.fixture
+def server(service_store):
+    """A server of its own on a copy of the store: the verdicts a test posts reach no other test."""
+    process = ServerProcess(service_store.copy("verdicts")).start()
+    yield process
+    process.stop()
+
+
+def _published(store_dir: Path) -> tuple[list[dict], dict[int, dict]]:
+    with Store.open(store_dir, settings=load_settings(environ={})) as store:
+        return generations.current(store).load_groups()["groups"], store.catalog.image_meta()
+
+
+def _sha256(path) -> str:
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+
+
+def _together(groups: list[dict], a: int, b: int) -> list[dict]:
+    return [g for g in groups if {a, b} <= {m["id"] for m in g["members"]}]
+
+
+def _plan_ids(group: dict) -> set[int]:
+    return {group["keeper"]["id"]} | {f["id"] for part in ("moves", "kept", "unverified", "skipped")
+                                      for f in group[part]}
+
+
+def test_different_splits_the_pair_in_groups_and_plan_and_quarantine_leaves_both(server, tmp_path):
+    published, _ = _published(server.store)
+    # A copy with the same pixels as its keeper: without a verdict it is moved, whatever the encoder learned.
+    group = next(g for g in published if any(m["tier"] == "same-pixels" for m in g["members"]))
+    a = group["keeper"]
+    b = next(m["id"] for m in group["members"] if m["tier"] == "same-pixels")
+    client, writer = server.client(), server.client(API_KEY)
+    before = client.get("/v1/plan?limit=200").json()
+    assert any(m["id"] in (a, b) and m["copy_of"]["id"] in (a, b) for g in before["groups"] for m in g["moves"])
+
+    r = writer.post_json("/v1/verdicts", {"verdicts": [{"file_a": b, "file_b": a, "verdict": "different"}],
+                                          "origin": "review"})
+    assert r.status == 201, r.body
+
+    groups = client.get("/v1/groups?limit=200").json()
+    assert groups["total"] == len(groups["groups"]) and not _together(groups["groups"], a, b)
+    plan = client.get("/v1/plan?limit=200").json()
+    assert not any({a, b} <= _plan_ids(g) for g in plan["groups"])
+    images = {i: client.get(f"/v1/images/{i}").json() for i in (a, b)}
+    assert images[a]["group"] is None or images[a]["group"] != images[b]["group"]
+
+    paths = {i: images[i]["path"] for i in (a, b)}
+    hashes = {i: _sha256(p) for i, p in paths.items()}
+    with Store.open(server.store, settings=load_settings(environ={})) as store:
+        result = apply_quarantine(store, tmp_path / "quarantine")
+    assert result["moved"] and not {a, b} & {m["id"] for m in result["moved_files"]}
+    assert {i: _sha256(p) for i, p in paths.items()} == hashes  # both still in place, bytes unchanged
+    client.close()
+    writer.close()
+
+
+def test_same_joins_two_ungrouped_files_at_once_and_the_plan_moves_one_on_that_evidence(server):
+    published, meta = _published(server.store)
+    grouped = {m["id"] for g in published for m in g["members"]}
+    # Two tiles of different photos that no group holds.
+    x, y = [i for i, m in sorted(meta.items()) if i not in grouped and "_t11" in m["path"]][:2]
+    client, writer = server.client(), server.client(API_KEY)
+    assert writer.post_json("/v1/verdicts", {"file_a": x, "file_b": y, "verdict": "same"}).status == 201
+
+    groups = client.get("/v1/groups?limit=200").json()["groups"]
+    (group,) = _together(groups, x, y)
+    assert group["tier"] == "person-same" and group["size"] == 2
+    joined = next(m for m in group["members"] if m["id"] != group["keeper"])
+    assert joined["tier"] == "person-same"
+    assert client.get(f"/v1/images/{x}").json()["group"] == group["gid"]
+    detail = client.get(f"/v1/groups/{group['gid']}").json()
+    assert [(v["verdict"], {v["a"], v["b"]}) for v in detail["verdicts"]] == [("same", {x, y})]
+
+    plan = client.get("/v1/plan?limit=200").json()
+    (planned,) = [g for g in plan["groups"] if g["gid"] == group["gid"]]
+    assert [(m["id"], m["evidence"]) for m in planned["moves"]] == [(joined["id"], "person-same")]
+    client.close()
+    writer.close()
