@@ -26,7 +26,7 @@ import numpy as np
 from . import index as faiss_index
 from .errors import ImageReadError
 from .images import read_image
-from .rerank import VERIFY_SIDE, boosted
+from .rerank import VERIFY_SIDE, boosted, small_features
 
 log = logging.getLogger(__name__)
 
@@ -63,6 +63,13 @@ class _SmallCopies:
         if len(self.cache) > CACHE_IMAGES:
             self.cache.popitem(last=False)
         return image
+
+    def features(self, file_id: int):
+        """The file's keypoints as a verification candidate (kept across calls: rerank.small_features)."""
+        row = self.sources.get(file_id)
+        if row is None:
+            return None
+        return small_features({file_id: str(self.store.pixels_path(row))}).get(file_id)
 
 
 def candidate_neighbours(index, q_ids: np.ndarray, xq: np.ndarray, *, top: int, floor: float,
@@ -101,7 +108,7 @@ def verified_pairs(store, index, q_ids: np.ndarray, xq: np.ndarray, *, top: int,
         query = images.get(q)
         if query is None:
             continue
-        pairs = [(j, d, im) for j, d in candidates if (im := images.get(j)) is not None]
+        pairs = [(j, d, f) for j, d in candidates if (f := images.features(j)) is not None]
         checked += len(pairs)
         for (j, d, _im), v in zip(pairs, verify_candidates(query, [im for _, _, im in pairs], config=config)):
             if v.verified:
@@ -152,7 +159,7 @@ def complete_components(store, ids: np.ndarray, xb: np.ndarray, pairs, *, t_near
     va, vb, vs = [], [], []
     for x, candidates in work.items():
         query = images.get(x)
-        todo = [(y, d, im) for y, d in candidates if (im := images.get(y)) is not None]
+        todo = [(y, d, f) for y, d in candidates if (f := images.features(y)) is not None]
         if query is None or not todo:
             continue
         for (y, d, _im), v in zip(todo, verify_candidates(query, [im for _, _, im in todo], config=config)):

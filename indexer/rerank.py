@@ -22,6 +22,8 @@ never opens a user's original file at query time.
 from __future__ import annotations
 
 import logging
+import functools
+import os
 from typing import Mapping, Sequence
 
 from PIL import Image
@@ -32,6 +34,7 @@ from .images import read_image
 log = logging.getLogger(__name__)
 
 VERIFY_SIDE = 256  # both images are verified at this longest side (the small copies' default size)
+FEATURE_CACHE = 4096  # candidates' keypoints kept (~20 KB each): the same files come back query after query
 
 
 def boosted(score: float) -> float:
@@ -59,6 +62,28 @@ def read_small(paths: Mapping[int, str]) -> dict[int, Image.Image]:
     return out
 
 
+def small_features(paths: Mapping[int, str]) -> dict:
+    """Each id's ORB features at VERIFY_SIDE (verify.Features), like `read_small` but kept in memory
+    while a file keeps its size and modification time: a collection's close neighbours are asked
+    for again and again (calibration, grouping, a busy service), and reading and describing them
+    is most of verification's cost. Ids whose file cannot be read are left out."""
+    out = {}
+    for ident, path in paths.items():
+        try:
+            st = os.stat(path)
+            out[ident] = _features_at(str(path), st.st_mtime_ns, st.st_size)
+        except (ImageReadError, OSError) as exc:
+            log.debug("cannot read %s (id %s) for verification: %s", path, ident, exc)
+    return out
+
+
+@functools.lru_cache(maxsize=FEATURE_CACHE)
+def _features_at(path: str, _mtime_ns: int, _size: int):
+    from .verify import VerifyConfig, features_or_reason
+
+    return features_or_reason(read_image(path, max_side=VERIFY_SIDE)[0], VerifyConfig(max_side=VERIFY_SIDE))
+
+
 def _evidence(v, size: tuple[int, int]) -> dict:
     w, h = size
     box = None if v.box is None else [round(v.box[0] / w, 4), round(v.box[1] / h, 4),
@@ -79,15 +104,15 @@ def rerank(query: Image.Image, results: list[dict], candidates: dict[int, str], 
     from .verify import VerifyConfig, verify_candidates
 
     head = [r for r in results[:top] if r["id"] in candidates]
-    small = read_small({r["id"]: candidates[r["id"]] for r in head})
-    checked = [r for r in head if r["id"] in small]
-    images = [small[r["id"]] for r in checked]
+    known = small_features({r["id"]: candidates[r["id"]] for r in head})
+    checked = [r for r in head if r["id"] in known]
+    features = [known[r["id"]] for r in checked]
     if not checked:
         return results
-    # verify_candidates brings both sides to VERIFY_SIDE itself.
-    for r, im, v in zip(checked, images, verify_candidates(query, images, config=VerifyConfig(max_side=VERIFY_SIDE))):
+    # verify_candidates brings the query to VERIFY_SIDE itself.
+    for r, f, v in zip(checked, features, verify_candidates(query, features, config=VerifyConfig(max_side=VERIFY_SIDE))):
         r.setdefault("descriptor_similarity", r["similarity"])
-        r["evidence"] = _evidence(v, im.size)
+        r["evidence"] = _evidence(v, f.size)
         if v.verified:
             r["similarity"] = round(boosted(r["similarity"]), 6)
             if threshold is not None:

@@ -169,25 +169,29 @@ def verify_pair(
 
 def verify_candidates(
     query: Image.Image,
-    candidates: list[Image.Image],
+    candidates: list[Image.Image | Features],
     *,
     max_side: int | None = None,
     min_inliers: int | None = None,
     config: VerifyConfig | None = None,
 ) -> list[Verification]:
-    """Verify each candidate against one query, whose keypoints (and mirrored ones) are computed once."""
+    """Verify each candidate against one query, whose keypoints (and mirrored ones) are computed once.
+
+    A candidate may be given as its Features, extracted with the same configuration (a caller
+    that meets the same candidates again keeps them: `rerank.candidate_features`)."""
     cfg = _config(config, {"max_side": max_side, "min_inliers": min_inliers})
     _require_image(query, "query")
     for i, im in enumerate(candidates):
-        _require_image(im, f"candidate {i}")
-    direct = _features_or_reason(query, cfg)
+        if not isinstance(im, Features):
+            _require_image(im, f"candidate {i}")
+    direct = features_or_reason(query, cfg)
     mirrored: list[Features] = []  # filled on first need, then reused for every candidate
     out = []
     for im in candidates:
         if direct.reason:
             out.append(Verification(False, reason=f"query: {direct.reason}"))
             continue
-        target = _features_or_reason(im, cfg)
+        target = im if isinstance(im, Features) else features_or_reason(im, cfg)
         if target.reason:
             out.append(Verification(False, reason=f"candidate: {target.reason}"))
             continue
@@ -206,7 +210,7 @@ def _require_image(im, what: str) -> None:
         raise UsageError(f"verify: {what} must be a PIL image, not {type(im).__name__}")
 
 
-def _features_or_reason(im: Image.Image, cfg: VerifyConfig) -> Features:
+def features_or_reason(im: Image.Image, cfg: VerifyConfig) -> Features:
     """extract_features, with an unconvertible image turned into empty features and a reason."""
     try:
         return extract_features(im, cfg)
