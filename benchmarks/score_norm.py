@@ -18,7 +18,7 @@ and a vector never counts itself.
 
 Measured in benchmarks/ablation.py, not adopted by nearsight: on the quality
 benchmark it moved µAP by about +0.02 and recall at precision 0.99 by about 0, less
-than fusion and verification gave (benchmarks/results/quality.md, "Ablation").
+than fusion and verification gave (benchmarks/results/ablation.md, "Ablation").
 """
 
 from __future__ import annotations

@@ -188,7 +188,7 @@ SETTINGS: tuple[Setting, ...] = (
         "Query-adaptive score normalisation for similar and the service: beta times the mean of the "
         "query's similarities ranked 2-11 in the collection is subtracted from its scores, so a score "
         "means the same whatever the query resembles. 0 turns it off. Measured with verification: "
-        "recall at precision 0.99 0.70 -> 0.85 (benchmarks/results/quality.md, ablation).",
+        "recall at precision 0.99 0.70 -> 0.85 (benchmarks/results/ablation.md).",
     ),
     Setting(
         "near_threshold",
