@@ -138,18 +138,19 @@ def test_the_page_fits_a_phone_width(browser, live_server):
         # The resize reaches the renderer asynchronously: on a busy machine the first layout can
         # still be the desktop one, so wait for the viewport before loading and measuring.
         _wait(lambda: driver.execute_script("return window.innerWidth;") <= 390, what="a 390 px viewport")
-        driver.get(live_server.base + "/#/groups")
-        _wait(lambda: driver.find_elements("css selector", ".group-card"), what="group cards")
         measure = ("return [document.documentElement.scrollWidth - document.documentElement.clientWidth, "
                    "window.innerWidth];")
-        overflow, width = driver.execute_script(measure)
-        if overflow > 0:  # measured mid-layout? measure again once the page has settled
-            time.sleep(1.0)
+        for view, ready in (("groups", ".group-card"), ("judge", "#judge-list li button.judge-open")):
+            driver.get(f"{live_server.base}/#/{view}")
+            _wait(lambda: driver.find_elements("css selector", ready), what=f"the {view} view")
             overflow, width = driver.execute_script(measure)
-        assert overflow <= 0, f"the page is {overflow} px wider than a {width} px screen"
-        shot = artifacts_dir() / "review-phone.png"
-        driver.save_screenshot(str(shot))
-        print(f"screenshot: {shot}")
+            if overflow > 0:  # measured mid-layout? measure again once the page has settled
+                time.sleep(1.0)
+                overflow, width = driver.execute_script(measure)
+            assert overflow <= 0, f"the {view} view is {overflow} px wider than a {width} px screen"
+            shot = artifacts_dir() / f"review-phone-{view}.png"
+            driver.save_screenshot(str(shot))
+            print(f"screenshot: {shot}")
     finally:
         driver.set_window_size(1280, 900)
 
