@@ -69,6 +69,17 @@ class MixtureFit:
         # exp(a - b t) - exp(a - b) over b, written so that a large a and b do not overflow.
         return (np.exp(np.clip(self.a - self.b * t, -700, 700)) - np.exp(np.clip(self.a - self.b, -700, 700))) / self.b
 
+    def duplicate_probability(self, s, positive_scores) -> np.ndarray:
+        """P(a hit scoring s is a real duplicate): the mixture's duplicate term over both terms at s,
+        D p(s) / (D p(s) + exp(a - b s)), with p the positives' density as the fit measured it (their
+        Gaussian KDE, a share `pos_mass_above_floor` of it above the floor)."""
+        s = np.asarray(s, dtype=np.float64)
+        density = stats.gaussian_kde(np.asarray(positive_scores, dtype=np.float64))(s.ravel()).reshape(s.shape)
+        duplicates = self.dup_hits * density / max(self.pos_mass_above_floor, 1e-12)
+        wrong = np.exp(np.clip(self.a - self.b * s, -700, 700))
+        total = duplicates + wrong
+        return np.divide(duplicates, total, out=np.zeros_like(total), where=total > 0)
+
     def total_duplicate_hits(self) -> float:
         """Real duplicate hits at any similarity (those below the floor inferred from the positives)."""
         return self.dup_hits / max(self.pos_mass_above_floor, 1e-9)

@@ -247,6 +247,20 @@ def plan():
                    groups=listed[offset:offset + limit])
 
 
+# -- the pairs to judge first -----------------------------------------------------------------------
+@api.get("/v1/review/pairs")
+def review_pairs():
+    """The pairs whose verdict would tell most about the duplicate threshold, best first
+    (indexer/review_queue.py); a judged pair leaves the queue with the next request."""
+    limit = params.int_arg(request.args, "limit", 20, 1, 200)
+    offset = params.int_arg(request.args, "offset", 0, 0, 10**9)
+    snap = snapshot()
+    queue = snap.review_queue(state().store().catalog)
+    return jsonify(generation=snap.name, threshold=queue.threshold, probability_from=queue.source,
+                   left_out=queue.left_out, total=len(queue.pairs), offset=offset, limit=limit,
+                   pairs=[p.to_dict() for p in queue.pairs[offset:offset + limit]])
+
+
 # -- verdicts ---------------------------------------------------------------------------------------
 VERDICT_FIELDS = ("id", "file_a", "file_b", "verdict", "origin", "author", "note", "created_at")
 

@@ -25,6 +25,7 @@ from indexer.generations import POINTER, Generation
 from indexer.groups import TIERS as GROUP_TIERS
 from indexer.groups import Group
 from indexer.query import Searcher
+from indexer.review_queue import ReviewQueue, review_queue
 from indexer.settings import Settings
 from indexer.store import Store
 from indexer.verdict_groups import judged_groups
@@ -92,6 +93,8 @@ class Snapshot:
         self.loaded_at = time.time()
         self._view: tuple[int, GroupView] = (0, GroupView(self.name, groups))
         self._view_lock = threading.Lock()
+        self._queue: tuple[int, ReviewQueue | None] = (0, None)
+        self._queue_lock = threading.Lock()
 
     def groups_now(self, catalog) -> GroupView:
         """The groups with the latest verdicts applied (`catalog`: the request thread's connection)."""
@@ -105,6 +108,16 @@ class Snapshot:
                 view = GroupView(self.name, groups)
                 self._view = (version, view)
         return view
+
+    def review_queue(self, catalog) -> ReviewQueue:
+        """The pairs to judge first (indexer/review_queue.py), worked out again when a verdict was added."""
+        version = catalog.verdicts_version()
+        with self._queue_lock:
+            seen, queue = self._queue
+            if queue is None or seen != version:
+                queue = review_queue(catalog, self.generation)
+                self._queue = (version, queue)
+        return queue
 
     @classmethod
     def load(cls, root: Path, settings: Settings) -> "Snapshot":

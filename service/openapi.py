@@ -207,6 +207,40 @@ SCHEMAS = {
                                                   "id": {"type": "integer"}}}},
         },
     },
+    "PairFile": {
+        "type": "object", "required": ["id", "path"],
+        "properties": {"id": {"type": "integer"}, "path": {"type": "string"}, "width": {"type": "integer"},
+                       "height": {"type": "integer"}, "file_size": {"type": "integer"}},
+    },
+    "ReviewPair": {
+        "type": "object", "required": ["a", "b", "similarity", "probability", "round", "why"],
+        "properties": {
+            "a": _ref("PairFile"), "b": _ref("PairFile"),
+            "similarity": {"type": "number", "description": "the pair's score, as groups were built from it"},
+            "probability": {**NULLABLE_NUMBER, "description": "estimated probability that a person calls the pair "
+                            "the same picture (see probability_from); null without a calibration"},
+            "round": {"type": "integer", "minimum": 0,
+                      "description": "pairs are dealt in rounds; within a round each image is in at most one pair"},
+            "why": {"type": "string", "description": "why the pair is offered, in words"},
+        },
+    },
+    "ReviewPage": {
+        "type": "object",
+        "required": ["generation", "threshold", "probability_from", "left_out", "total", "offset", "limit", "pairs"],
+        "properties": {
+            "generation": {"type": "string"},
+            "threshold": {"type": "number", "description": "the near-duplicate threshold groups are built at"},
+            "probability_from": {"type": "string", "nullable": True, "enum": ["verdicts", "calibration", None],
+                                 "description": "verdicts: the isotonic fit to a person's verdicts; calibration: "
+                                                "the pairwise mixture's posterior; null: no calibration, pairs "
+                                                "ordered by closeness to the threshold"},
+            "left_out": {"type": "object", "description": "pairs not offered, per reason (judged, same-bytes, "
+                                                          "same-pixels, absent)",
+                         "additionalProperties": {"type": "integer"}},
+            "total": {"type": "integer"}, "offset": {"type": "integer"}, "limit": {"type": "integer"},
+            "pairs": {"type": "array", "items": _ref("ReviewPair")},
+        },
+    },
     "VerdictIn": {
         "type": "object", "required": ["file_a", "file_b", "verdict"], "additionalProperties": False,
         "properties": {"file_a": {"type": "integer", "minimum": 1}, "file_b": {"type": "integer", "minimum": 1},
@@ -365,6 +399,17 @@ def _paths() -> dict:
                 _int_param("offset", "query", "Groups to skip", 0, 10**9, default=0),
             ],
             "responses": {"200": _json(_ref("Plan"), "One page of the plan"),
+                          **_errors("400", *read_errors, "409")}}},
+        "/v1/review/pairs": {"get": {
+            "operationId": "review_pairs",
+            "summary": "The pairs whose verdict would tell most about the duplicate threshold, best first",
+            "description": "Pairs near the near-duplicate threshold that no one has judged yet (nor of the same "
+                           "bytes or pixels), the estimated probability of \"same\" nearest one half first, dealt "
+                           "so that each image is in at most one pair per round. A pair judged through "
+                           "POST /v1/verdicts leaves the queue with the next request.",
+            "parameters": [_int_param("limit", "query", "Pairs per page", 1, 200, default=20),
+                           _int_param("offset", "query", "Pairs to skip", 0, 10**9, default=0)],
+            "responses": {"200": _json(_ref("ReviewPage"), "One page of pairs to judge"),
                           **_errors("400", *read_errors, "409")}}},
         "/v1/verdicts": {
             "get": {

@@ -2,7 +2,8 @@
 Debian's chromedriver (packages chromium and chromium-driver, installed by scripts/system-deps.sh).
 
 Keyboard only: the page is reached with Tab and Enter, a pair is marked with the S key, and the
-catalog is then read directly to see the verdict stored. Search by choosing a file finds the
+catalog is then read directly to see the verdict stored. The first view lists the pairs to judge;
+a click on Same there stores a verdict and brings the next pair, and the D key marks that one. Search by choosing a file finds the
 photo a transformed upload came from. Screenshots (desktop and a 390 px phone width) are saved
 under test-artifacts/ (git-ignored) and their paths printed.
 """
@@ -15,7 +16,7 @@ import pytest
 
 from indexer.catalog import Catalog
 
-from .service_support import API_KEY, COPIED, artifacts_dir, transformed
+from .service_support import API_KEY, COPIED, ServerProcess, artifacts_dir, transformed
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 CHROMEDRIVER = shutil.which("chromedriver") or ("/usr/bin/chromedriver" if Path("/usr/bin/chromedriver").exists() else None)
@@ -80,9 +81,11 @@ def test_review_a_pair_with_the_keyboard_and_the_verdict_is_stored(browser, live
     driver = browser
     # The address `nearsight serve` prints: the key travels in the fragment, never to the server.
     driver.get(live_server.base + "/#key=" + API_KEY)
-    _wait(lambda: driver.find_elements("css selector", ".group-card"), what="group cards")
+    _wait(lambda: driver.find_element("id", "view-judge").is_displayed(), what="the first view")
     assert "#key=" not in driver.current_url            # the page drops the key from the address
     _wait(lambda: "generation" in driver.find_element("id", "status-line").text, what="status line")
+    driver.get(live_server.base + "/#/groups")
+    _wait(lambda: driver.find_elements("css selector", ".group-card"), what="group cards")
 
     card = _tab_to(driver, "group-card")
     gid = card.get_attribute("href").rsplit("/", 1)[1]
@@ -135,17 +138,60 @@ def test_the_page_fits_a_phone_width(browser, live_server):
         # The resize reaches the renderer asynchronously: on a busy machine the first layout can
         # still be the desktop one, so wait for the viewport before loading and measuring.
         _wait(lambda: driver.execute_script("return window.innerWidth;") <= 390, what="a 390 px viewport")
-        driver.get(live_server.base + "/#/groups")
-        _wait(lambda: driver.find_elements("css selector", ".group-card"), what="group cards")
         measure = ("return [document.documentElement.scrollWidth - document.documentElement.clientWidth, "
                    "window.innerWidth];")
-        overflow, width = driver.execute_script(measure)
-        if overflow > 0:  # measured mid-layout? measure again once the page has settled
-            time.sleep(1.0)
+        for view, ready in (("groups", ".group-card"), ("judge", "#judge-list li button.judge-open")):
+            driver.get(f"{live_server.base}/#/{view}")
+            _wait(lambda: driver.find_elements("css selector", ready), what=f"the {view} view")
             overflow, width = driver.execute_script(measure)
-        assert overflow <= 0, f"the page is {overflow} px wider than a {width} px screen"
-        shot = artifacts_dir() / "review-phone.png"
-        driver.save_screenshot(str(shot))
-        print(f"screenshot: {shot}")
+            if overflow > 0:  # measured mid-layout? measure again once the page has settled
+                time.sleep(1.0)
+                overflow, width = driver.execute_script(measure)
+            assert overflow <= 0, f"the {view} view is {overflow} px wider than a {width} px screen"
+            shot = artifacts_dir() / f"review-phone-{view}.png"
+            driver.save_screenshot(str(shot))
+            print(f"screenshot: {shot}")
     finally:
         driver.set_window_size(1280, 900)
+
+
+@pytest.fixture
+def queue_server(service_store):
+    """A server of its own: the verdict clicked below reaches no other test."""
+    process = ServerProcess(service_store.copy("browser-queue")).start()
+    yield process
+    process.stop()
+
+
+def _shown_pair(driver) -> tuple[int, int]:
+    return tuple(int(driver.find_element("id", cap).text.split("#", 1)[1].split(" ", 1)[0])
+                 for cap in ("judge-cap-a", "judge-cap-b"))
+
+
+def test_the_first_view_lists_pairs_to_judge_and_a_click_stores_a_verdict(browser, queue_server):
+    driver = browser
+    driver.get(queue_server.base + "/#key=" + API_KEY)
+    _wait(lambda: driver.find_element("id", "view-judge").is_displayed(), what="the pairs to judge")
+    listed = _wait(lambda: driver.find_elements("css selector", "#judge-list li button.judge-open"), what="listed pairs")
+    assert len(listed) > 1
+    _wait(lambda: driver.find_element("id", "judge-cap-a").text.startswith("#"), what="the pair shown")
+    a, b = _shown_pair(driver)
+    shot = artifacts_dir() / "review-judge.png"
+    driver.save_screenshot(str(shot))
+    print(f"screenshot: {shot}")
+
+    driver.find_element("id", "judge-same").click()
+    _wait(lambda: "Marked same" in driver.find_element("id", "toast").text, what="confirmation")
+    with Catalog(queue_server.store / "catalog.sqlite") as catalog:
+        stored = [v for v in catalog.latest_verdicts() if {v["file_a"], v["file_b"]} == {a, b}]
+    assert [(v["verdict"], v["origin"]) for v in stored] == [("same", "review")]
+    # The next pair comes, and the judged one is no longer listed.
+    _wait(lambda: set(_shown_pair(driver)) != {a, b}, what="the next pair")
+    assert len(driver.find_elements("css selector", "#judge-list li button.judge-open")) == len(listed) - 1
+    # The group view's keys work here too: D marks the pair shown now as different.
+    c, d = _shown_pair(driver)
+    _press(driver, "d")
+    _wait(lambda: "Marked different" in driver.find_element("id", "toast").text, what="second confirmation")
+    with Catalog(queue_server.store / "catalog.sqlite") as catalog:
+        stored = [v for v in catalog.latest_verdicts() if {v["file_a"], v["file_b"]} == {c, d}]
+    assert [(v["verdict"], v["origin"]) for v in stored] == [("different", "review")]

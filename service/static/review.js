@@ -1,4 +1,5 @@
-// nearsight review page: browse duplicate groups, compare pairs, mark same / different, search.
+// nearsight review page: judge the pairs that count most, browse duplicate groups, compare pairs,
+// mark same / different, search.
 // Plain JavaScript, no build step. Every piece of data comes from the JSON API under /v1.
 "use strict";
 
@@ -15,6 +16,7 @@
     pairs: [],         // [keeper, member] pairs of that group
     pairIndex: 0,
     retry: null,       // what to do again once a key is given
+    judge: { pairs: [], index: 0, page: null },  // the pairs to judge (GET /v1/review/pairs), one page
   };
 
   // -- talking to the API ------------------------------------------------------------------
@@ -106,7 +108,8 @@
 
   function showView(name) {
     for (const view of document.querySelectorAll(".view")) view.hidden = view.id !== "view-" + name;
-    for (const [link, views] of [["nav-groups", ["groups", "group", "pair"]], ["nav-search", ["search"]]]) {
+    for (const [link, views] of [["nav-judge", ["judge"]], ["nav-groups", ["groups", "group", "pair"]],
+                                 ["nav-search", ["search"]]]) {
       if (views.includes(name)) $(link).setAttribute("aria-current", "page");
       else $(link).removeAttribute("aria-current");
     }
@@ -126,6 +129,114 @@
       $("status-line").textContent = "Status unavailable: " + e.message;
     }
   }
+
+  // -- the pairs to judge first ----------------------------------------------------------------
+  // The server orders them (indexer/review_queue.py): near the duplicate threshold, the estimated
+  // chance of "same" nearest even first. A judged pair leaves the queue, so a new page starts at 0.
+  const SOURCE_WORDS = { verdicts: "your verdicts so far", calibration: "the calibration" };
+
+  async function loadJudgePage() {
+    const page = await api("/v1/review/pairs?" + new URLSearchParams({ limit: PAGE_SIZE, offset: 0 }));
+    state.judge = { pairs: page.pairs, index: 0, page: page };
+  }
+
+  async function renderJudge() {
+    showView("judge");
+    $("judge-summary").textContent = "Loading the pairs to judge…";
+    try {
+      await loadJudgePage();  // afresh each time: verdicts given in a group leave the queue too
+    } catch (e) {
+      $("judge-summary").textContent = e.message;
+      state.retry = renderJudge;
+      return;
+    }
+    showJudgePair();
+  }
+
+  function fileCaption(f) {
+    return `#${f.id} · ${f.width}×${f.height} · ${bytes(f.file_size)} · ${f.path}`;
+  }
+
+  function showJudgePair() {
+    const { pairs, page } = state.judge;
+    const source = SOURCE_WORDS[page.probability_from];
+    $("judge-summary").textContent = page.total
+      ? `${page.total} pairs near the duplicate threshold ${page.threshold.toFixed(3)} have no verdict yet. ` +
+        (source ? `First come those whose chance of being the same picture, as estimated from ${source}, ` +
+                  "is nearest even: your verdict counts most there."
+                : "No calibration yet: the pairs nearest the threshold come first.")
+      : "No pair near the duplicate threshold is left to judge.";
+    $("judge-current").hidden = !pairs.length;
+    renderJudgeList();
+    if (!pairs.length) return;
+    const index = state.judge.index = Math.min(Math.max(0, state.judge.index), pairs.length - 1);
+    const pair = pairs[index];
+    $("judge-state").textContent = `Pair ${index + 1} of ${pairs.length} on this page: ${pair.why}.`;
+    showImage($("judge-img-a"), preview(pair.a.id), "first: " + basename(pair.a.path));
+    showImage($("judge-img-b"), preview(pair.b.id), "second: " + basename(pair.b.path));
+    $("judge-cap-a").textContent = fileCaption(pair.a);
+    $("judge-cap-b").textContent = fileCaption(pair.b);
+    $("judge-prev").disabled = index === 0;
+    $("judge-next").disabled = index + 1 >= pairs.length;
+  }
+
+  function renderJudgeList() {
+    const list = $("judge-list");
+    list.replaceChildren();
+    state.judge.pairs.forEach((pair, i) => {
+      const imgA = el("img"), imgB = el("img");
+      showImage(imgA, thumb(pair.a.id), basename(pair.a.path));
+      showImage(imgB, thumb(pair.b.id), basename(pair.b.path));
+      const chance = pair.probability == null ? "" : ` · chance of same ${Math.round(pair.probability * 100)}%`;
+      const facts = el("div", { class: "facts" }, [
+        el("div", { text: `${basename(pair.a.path)} and ${basename(pair.b.path)}` }),
+        el("div", { class: "muted", text: `similarity ${pair.similarity.toFixed(3)}${chance}` }),
+      ]);
+      const open = el("button", { type: "button", class: "judge-open",
+                                  text: i === state.judge.index ? "Shown above" : "Judge this pair" });
+      if (i === state.judge.index) { open.disabled = true; open.setAttribute("aria-current", "true"); }
+      open.addEventListener("click", () => { state.judge.index = i; showJudgePair(); $("judge-title").focus(); });
+      list.append(el("li", {}, [imgA, imgB, facts, open]));
+    });
+    if (!state.judge.pairs.length) list.append(el("li", { text: "Nothing to judge here." }));
+  }
+
+  function moveJudge(step) {
+    const next = state.judge.index + step;
+    if (next < 0 || next >= state.judge.pairs.length) return;
+    state.judge.index = next;
+    showJudgePair();
+  }
+
+  async function judge(verdict) {
+    const pair = state.judge.pairs[state.judge.index];
+    if (!pair) return;
+    const send = async () => {
+      try {
+        await api("/v1/verdicts", {
+          method: "POST",
+          headers: { "Content-Type": "application/json" },
+          body: JSON.stringify({ file_a: pair.a.id, file_b: pair.b.id, verdict: verdict, origin: "review" }),
+        });
+        toast(`Marked ${verdict}: #${pair.a.id} and #${pair.b.id}`);
+        state.group = null;  // the groups apply the verdict at once: load them again when opened
+        // The next pair comes: the judged one leaves this page, and an empty page asks for the next.
+        state.judge.pairs = state.judge.pairs.filter((p) => p !== pair);
+        state.judge.page.total = Math.max(0, state.judge.page.total - 1);
+        if (!state.judge.pairs.length) await loadJudgePage();
+        showJudgePair();
+      } catch (e) {
+        toast("Not stored: " + e.message, true);
+        if (e.status === 401 || e.status === 403) state.retry = send;
+      }
+    };
+    await send();
+  }
+
+  $("judge-same").addEventListener("click", () => judge("same"));
+  $("judge-different").addEventListener("click", () => judge("different"));
+  $("judge-next").addEventListener("click", () => moveJudge(1));
+  $("judge-prev").addEventListener("click", () => moveJudge(-1));
 
   // -- groups --------------------------------------------------------------------------------
   async function renderGroups() {
@@ -292,24 +403,34 @@
   $("pair-next").addEventListener("click", () => movePair(1));
   $("pair-prev").addEventListener("click", () => movePair(-1));
 
-  // Each image is shown at its own size (up to the screen's width); "same width" scales both to fill.
+  // Each image is shown at its own size (up to the screen's width); "same width" scales both to fill
+  // (in the group's pairs and in the pairs to judge alike).
   function toggleFit() {
     const fit = $("side-by-side").classList.toggle("fit");
-    $("pair-fit").setAttribute("aria-pressed", String(fit));
+    $("judge-side").classList.toggle("fit", fit);
+    for (const button of document.querySelectorAll(".fit-toggle")) button.setAttribute("aria-pressed", String(fit));
   }
   $("pair-fit").addEventListener("click", toggleFit);
+  $("judge-fit").addEventListener("click", toggleFit);
+
+  // The same keys in both views where a pair is shown: S, D, N, P, F (and Esc back to a group).
+  const PAIR_KEYS = {
+    pair: { s: () => mark("same"), d: () => mark("different"), n: () => movePair(1), p: () => movePair(-1) },
+    judge: { s: () => judge("same"), d: () => judge("different"), n: () => moveJudge(1), p: () => moveJudge(-1) },
+  };
 
   document.addEventListener("keydown", (event) => {
-    if ($("view-pair").hidden || event.altKey || event.ctrlKey || event.metaKey) return;
+    const view = !$("view-pair").hidden ? "pair" : !$("view-judge").hidden && state.judge.pairs.length ? "judge" : null;
+    if (!view || event.altKey || event.ctrlKey || event.metaKey) return;
     const tag = (event.target.tagName || "").toLowerCase();
     if (tag === "input" || tag === "select" || tag === "textarea") return;
-    const key = event.key.toLowerCase();
-    if (key === "s") { event.preventDefault(); mark("same"); }
-    else if (key === "d") { event.preventDefault(); mark("different"); }
-    else if (key === "n" || key === "arrowright") { event.preventDefault(); movePair(1); }
-    else if (key === "p" || key === "arrowleft") { event.preventDefault(); movePair(-1); }
+    const key = { arrowright: "n", arrowleft: "p" }[event.key.toLowerCase()] || event.key.toLowerCase();
+    const act = PAIR_KEYS[view][key];
+    if (act) { event.preventDefault(); act(); }
     else if (key === "f") { event.preventDefault(); toggleFit(); }
-    else if (key === "escape" && state.group) { location.hash = "#/group/" + encodeURIComponent(state.group.gid); }
+    else if (key === "escape" && view === "pair" && state.group) {
+      location.hash = "#/group/" + encodeURIComponent(state.group.gid);
+    }
   });
 
   // -- search by image -------------------------------------------------------------------------------
@@ -378,19 +499,20 @@
 
   // -- routing -----------------------------------------------------------------------------------------
   function route() {
-    const hash = location.hash || "#/groups";
+    const hash = location.hash || "#/judge";
     const parts = hash.replace(/^#\/?/, "").split("/").map(decodeURIComponent);
     if (parts[0] === "group" && parts[1]) renderGroup(parts[1]);
     else if (parts[0] === "pair" && parts[1]) renderPair(parts[1], parseInt(parts[2], 10) || 0);
     else if (parts[0] === "search") renderSearch();
-    else renderGroups();
+    else if (parts[0] === "groups") renderGroups();
+    else renderJudge();
   }
 
   // `nearsight serve` prints the page's address with #key=...: keep the key for this tab, drop it from the URL.
   if (location.hash.startsWith("#key=")) {
     state.key = decodeURIComponent(location.hash.slice(5));
     sessionStorage.setItem(KEY_STORE, state.key);
-    history.replaceState(null, "", location.pathname + "#/groups");
+    history.replaceState(null, "", location.pathname + "#/judge");
   }
   window.addEventListener("hashchange", route);
   loadStatus();
