@@ -266,12 +266,17 @@ def cmd_groups(args) -> int:
         elif args.format == "html":
             from .report import write_html_report
 
+            from .calibration_report import questions
+
             out = Path(args.out or store.reports_dir / f"groups-{gen.name}.html")
+            summary = {"store": str(store.root), "generation": gen.name,
+                       "near-duplicate threshold": gen.meta["thresholds"]["near"],
+                       "similar threshold": gen.meta["thresholds"]["similar"],
+                       "thresholds from": gen.meta["thresholds"]["source"]}
+            for name, answer in (questions(gen.load_calibration()) or {}).items():
+                summary[f"{name}: {answer['question']}"] = answer["text"]
             write_html_report(groups, out, thumbnail=_thumbnail_reader(store), title="nearsight: duplicate groups",
-                              summary={"store": str(store.root), "generation": gen.name,
-                                       "near-duplicate threshold": gen.meta["thresholds"]["near"],
-                                       "similar threshold": gen.meta["thresholds"]["similar"],
-                                       "thresholds from": gen.meta["thresholds"]["source"]})
+                              summary=summary)
             print(f"wrote {out} ({len(groups)} groups)")
             return 0
         else:

@@ -34,6 +34,8 @@ h1 { font-size: 1.4rem; margin: 0 0 .75rem; }
 .summary div { background: #fff; border: 1px solid var(--line); border-radius: 6px; padding: .5rem .75rem; }
 .summary dt { color: var(--muted); font-size: .8rem; }
 .summary dd { margin: 0; font-size: 1.1rem; font-weight: 600; overflow-wrap: anywhere; }
+.summary div.wide { grid-column: 1 / -1; }
+.summary div.wide dd { font-size: .9rem; font-weight: 400; }
 section { background: #fff; border: 1px solid var(--line); border-radius: 8px; padding: .75rem;
           margin: 0 0 1rem; }
 section h2 { font-size: 1rem; margin: 0 0 .6rem; font-weight: 600; }
@@ -115,7 +117,8 @@ def _summary(groups: list[Group], extra: dict) -> str:
     items = {"groups": str(totals["groups"]), "files in groups": str(totals["files_in_groups"]),
              "could be freed": human_bytes(totals["reclaimable_bytes"])}
     items.update({str(k): str(v) for k, v in extra.items()})
-    cells = "".join(f"<div><dt>{html.escape(k)}</dt><dd>{html.escape(v)}</dd></div>"
+    # A sentence (a calibrated question's answer) takes a row of its own, in body type.
+    cells = "".join(f'<div{" class=wide" if len(v) > 60 else ""}><dt>{html.escape(k)}</dt><dd>{html.escape(v)}</dd></div>'
                     for k, v in items.items())
     return f'<dl class="summary">{cells}</dl>'
 

@@ -136,3 +136,18 @@ def test_similar_json_carries_probability_beside_similarity(distinct_store, run_
     proc = run_cli("similar", copies[0][0], "--store", store_dir, "--json", "-k", "2", check_exit=0)
     result = json.loads(proc.stdout.splitlines()[0])["results"][0]
     assert {"similarity", "probability", "duplicate", "descriptor_similarity"} <= set(result)
+
+
+def test_status_and_the_report_show_both_questions(distinct_store, run_cli, tmp_path):
+    store_dir, _, _ = distinct_store
+    status = json.loads(run_cli("status", "--store", store_dir, "--json", check_exit=0).stdout)
+    questions = status["generation"]["questions"]
+    cal = json.loads((store_dir / "generations" / status["generation"]["name"] / "calibration.json").read_text())
+    assert questions["query"]["threshold"] == cal["query"]["threshold"]
+    assert questions["groups"]["threshold"] == cal["groups"]["threshold"] == status["generation"]["thresholds"]["near"]
+    text = run_cli("status", "--store", store_dir, check_exit=0).stdout
+    assert "query: a result is called a copy of your image from score" in text and "groups: " in text
+    out = tmp_path / "report.html"
+    run_cli("groups", "--store", store_dir, "--format", "html", "--out", out, check_exit=0)
+    page = out.read_text()
+    assert "is this result a copy of my image?" in page and "which pairs in this collection are copies?" in page
