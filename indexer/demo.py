@@ -178,7 +178,8 @@ def run_demo(out: Path, *, seed: int = 7, originals: int = 160, progress: bool |
             f"look-alike pairs wrongly called duplicates: {len(called & lookalikes)} of {len(lookalikes)}",
             f"calibration: {calibration['summary']['headline']}" if calibration else
             f"calibration: none ({gen.meta.get('calibration', {}).get('skipped', 'not run')})",
-            f"realised on every pair at threshold {realised['threshold']:.3f}: called {realised['called']}, "
+            f"descriptor scores alone, every pair at threshold {realised['threshold']:.3f} (no geometric evidence): "
+            f"called {realised['called']}, "
             f"correct {realised['correct']} of {realised['planted']} planted; precision {realised['precision']:.3f}, "
             f"recall {realised['recall']:.3f}",
             f"groups: {len(groups)}; report: nearsight groups --store {store_dir} --format html",
