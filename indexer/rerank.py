@@ -12,8 +12,8 @@ candidates, and every unverified score, is kept. Verification never lowers a sco
 true copy that fails it (heavy blur, a flat image) keeps its descriptor's score.
 
 Measured (benchmarks/results/ablation.md): on the quality benchmark, top 3 at 256 px
-lifted µAP from 0.885 to 0.941 and recall at precision 0.99 from 0.74 to 0.92 for about
-30 ms a query on 2 cores.
+lifted µAP from 0.885 to 0.941 and recall at precision 0.99 from 0.74 to 0.92; a whole query
+with every step on costs 17.7 ms on 2 cores (benchmarks/results/query.md).
 
 Candidates are read from the store's small copies (256 px by default), so verification
 never opens a user's original file at query time.

@@ -178,8 +178,8 @@ SETTINGS: tuple[Setting, ...] = (
         _positive_int,
         "Candidates of each query (similar, the service) checked by geometric verification (ORB "
         "keypoints under one similarity transform, on the small copies); a verified candidate's score "
-        "moves halfway to 1. 0 turns it off. Measured: top 3 lifted µAP 0.885 -> 0.941 for about 30 ms "
-        "a query (benchmarks/results/ablation.md).",
+        "moves halfway to 1. 0 turns it off. Measured: top 3 lifted µAP 0.885 -> 0.941 (benchmarks/results/"
+        "ablation.md); a whole query costs 17.7 ms on 2 cores (benchmarks/results/query.md).",
     ),
     Setting(
         "score_norm",
