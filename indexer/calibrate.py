@@ -105,9 +105,9 @@ def _originals(store: Store, card: dict, ids: np.ndarray, meta: dict, count: int
 
 
 def positive_scores(encoder, size: int, whitening, xb: np.ndarray, rows: list[int], paths: list[str],
-                    strengths: EditStrengths, kinds: tuple[str, ...], per_original: int, rng) -> tuple[np.ndarray, list[str], list, list[int]]:
+                    strengths: EditStrengths, kinds: tuple[str, ...], per_original: int, rng) -> tuple:
     """Cosine between each edited copy and its original's indexed vector; the edit kind of each,
-    the copies themselves and the row of each one's original."""
+    the copies themselves, the row of each one's original and the copies' vectors."""
     edited, targets, edit_kinds = [], [], []
     for row, path in zip(rows, paths):
         try:
@@ -123,7 +123,7 @@ def positive_scores(encoder, size: int, whitening, xb: np.ndarray, rows: list[in
     if not edited:
         raise NotReadyError("no original could be read for calibration")
     xq = whitening.apply(embed_images(encoder, edited, size))
-    return np.einsum("ij,ij->i", xq, xb[targets]), edit_kinds, edited, targets
+    return np.einsum("ij,ij->i", xq, xb[targets]), edit_kinds, edited, targets, xq
 
 
 def _known_duplicate(meta_a: dict, meta_b: dict) -> str | None:
@@ -263,7 +263,7 @@ def _query_verdict(store, index, whitening, encoder, card, ids, meta, same_pairs
     """The query verdict (query_verdict.py), asked through the searcher that will answer users."""
     from .query import Searcher
 
-    edited, targets = near_copies
+    edited, targets, xq = near_copies
     searcher = Searcher.for_build(store, index, whitening, encoder, card, near_threshold)
     strengths, kinds = TIER_EDITS["near"]
 
@@ -271,7 +271,7 @@ def _query_verdict(store, index, whitening, encoder, card, ids, meta, same_pairs
         return apply_edit(image, str(rng.choice(list(kinds))), rng, strengths)
 
     return calibrate_query(searcher, ids, meta, same_pairs, edited, [int(ids[r]) for r in targets], config.query,
-                           rng, edit)
+                           rng, edit, xq_edited=xq)
 
 
 def grouping_threshold(near: dict, query: dict | None, n_images: int) -> dict:

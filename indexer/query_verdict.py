@@ -141,10 +141,12 @@ def known_duplicates(ids: np.ndarray, meta: dict, content: dict, same_pairs: set
     return out
 
 
-def positive_answers(searcher, edited: list, targets: list[int], dups: dict[int, set[int]]) -> tuple[list[dict], int]:
+def positive_answers(searcher, edited: list, targets: list[int], dups: dict[int, set[int]],
+                     xq: np.ndarray | None = None) -> tuple[list[dict], int]:
     """For each synthetic copy, the result that is its original (or a known duplicate of it):
-    a list of those results, and how many copies did not get their original back."""
-    xq = searcher.vectors_for_images(edited)
+    a list of those results, and how many copies did not get their original back. `xq`: the
+    copies' vectors when the caller has them already (the searcher's own `vectors_for_images`)."""
+    xq = searcher.vectors_for_images(edited) if xq is None else xq
     found, misses = [], 0
     for start in range(0, len(edited), 32):
         answers = searcher.neighbours(xq[start : start + 32], ANSWERED, images=edited[start : start + 32])
@@ -191,15 +193,15 @@ def own_images(searcher, ids: np.ndarray, rows: list[int], max_side: int) -> lis
 
 
 def calibrate_query(searcher, ids: np.ndarray, meta: dict, same_pairs: set, edited: list, targets: list[int],
-                    config: QueryVerdictConfig, rng, edit) -> tuple[dict, dict]:
+                    config: QueryVerdictConfig, rng, edit, xq_edited: np.ndarray | None = None) -> tuple[dict, dict]:
     """The query verdict for the generation `searcher` answers from: (verdict, score samples).
 
     `edited` are synthetic copies of the indexed files `targets` (calibrate.py's positives);
-    `edit(image, rng)` makes an edited negative query."""
+    `edit(image, rng)` makes an edited negative query; `xq_edited` are the copies' vectors if known."""
     config.validate()
     content = searcher.store.catalog.content_ids_of(ids.tolist())
     dups = known_duplicates(ids, meta, content, same_pairs)
-    found, misses = positive_answers(searcher, edited, targets, dups)
+    found, misses = positive_answers(searcher, edited, targets, dups, xq_edited)
     n = len(ids)
     plain = set(rng.choice(n, min(config.plain_negatives, n), replace=False).tolist())
     edited_rows = set(rng.choice(n, min(config.edited_negatives, n), replace=False).tolist())
