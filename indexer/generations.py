@@ -26,15 +26,17 @@ import shutil
 import time
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-import faiss
 import numpy as np
 
-from . import index as faiss_index
 from .errors import NotReadyError, StoreError, UsageError
 from .fsutil import atomic_write_bytes, atomic_write_text, fsync_dir
 from .pause import pause_at
 from .store import Store
+
+if TYPE_CHECKING:
+    import faiss
 
 log = logging.getLogger(__name__)
 
@@ -57,6 +59,8 @@ class Generation:
     meta: dict
 
     def load_index(self, *, mmap: bool = False) -> faiss.Index:
+        from . import index as faiss_index  # FAISS only where an index is read: listing commands start fast
+
         return faiss_index.load_index(self.path / INDEX_FILE, mmap=mmap, params=self.meta.get("search_params"))
 
     def load_whitening(self):
@@ -171,6 +175,8 @@ def publish(store: Store, index: faiss.Index | None, meta: dict, groups: dict | 
     for filename, src in (links or {}).items():
         _link_or_copy(src, tmp / filename)
     if index is not None:
+        from . import index as faiss_index
+
         faiss_index.save_index(index, tmp / INDEX_FILE)
     if groups is not None:
         atomic_write_text(tmp / GROUPS_FILE, json.dumps(groups, sort_keys=True))

@@ -43,7 +43,6 @@ from scipy.sparse.csgraph import connected_components
 from scipy.spatial.distance import squareform
 
 from .errors import UsageError
-from .index import canonical_pairs
 
 # Strongest first. "person-same" is never made here: it marks a member a person's verdict
 # joined to a group (indexer/verdict_groups.py).
@@ -320,6 +319,8 @@ def build_groups(a_ids, b_ids, sims, meta: Mapping[int, ImageMeta | dict], *,
     "near-duplicate" needs every pair >= `t_near`.
     Sorted by size, then best similarity to the keeper (both descending).
     """
+    from .index import canonical_pairs  # here, not at import: listing groups needs no FAISS (start-up)
+
     _check_thresholds(t_near, t_similar)
     a, b, s = _check_pairs(a_ids, b_ids, sims)
     meta = {int(k): _as_meta(k, v) for k, v in meta.items()}

@@ -279,7 +279,6 @@ def current_groups(store, *, threshold: float | None = None, precision: float | 
     """The current generation's groups, or groups regrouped at a threshold (given, or read off the
     calibration for `precision`), with a person's latest verdicts applied: what `groups`, the service
     and the quarantine plan all show and act on."""
-    from .build import compute_groups, load_vectors
     from .generations import require_current
 
     if threshold is not None and precision is not None:
@@ -298,6 +297,8 @@ def current_groups(store, *, threshold: float | None = None, precision: float | 
         if threshold < float(gen.meta["thresholds"]["near"]):
             log.warning("threshold %.3f is below the generation's duplicate threshold %.3f: check the groups "
                         "before acting on them", threshold, gen.meta["thresholds"]["near"])
+        from .build import compute_groups, load_vectors  # regrouping needs the index; listing does not (start-up)
+
         ids, xb = load_vectors(store, gen.meta["model"])
         groups = [] if len(ids) == 0 else compute_groups(store, gen.load_index(), ids, whitening.apply(xb),
                                                          t_near=threshold, t_similar=threshold)
