@@ -103,12 +103,8 @@ def test_verdict_mapping_is_sklearn_isotonic_regression_and_precision_has_wilson
 
 
 # -- a real store ----------------------------------------------------------------------------------
-@pytest.fixture(scope="module")
-def store_dir(tmp_path_factory):
-    """40 distinct scenes, 6 of them with a resized JPEG copy and one exact copy (contamination the
-    negatives must leave out), indexed with the tiny test encoder and calibrated."""
-    root = tmp_path_factory.mktemp("cal")
-    folder = root / "photos"
+def write_scenes_with_copies(folder) -> None:
+    """40 distinct scenes, 6 of them with a resized JPEG copy and one exact copy."""
     folder.mkdir()
     for i in range(40):
         _scene(folder / f"scene{i:02d}.png", seed=100 + i)
@@ -116,6 +112,15 @@ def store_dir(tmp_path_factory):
             im = Image.open(folder / f"scene{i:02d}.png")
             im.resize((im.width // 2, im.height // 2)).save(folder / f"scene{i:02d}-small.jpg", quality=85)
     (folder / "scene07-copy.png").write_bytes((folder / "scene07.png").read_bytes())
+
+
+@pytest.fixture(scope="module")
+def store_dir(tmp_path_factory):
+    """write_scenes_with_copies (the copies are contamination the negatives must leave out), indexed
+    with the tiny test encoder and calibrated."""
+    root = tmp_path_factory.mktemp("cal")
+    folder = root / "photos"
+    write_scenes_with_copies(folder)
     store_dir = root / "store"
     with Store.open(store_dir, create=True, settings=load_settings(environ={})) as store:
         run_index(store, [folder], progress=False, train_config=TINY)

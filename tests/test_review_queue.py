@@ -20,7 +20,8 @@ from indexer.settings import load_settings
 from indexer.store import Store
 from indexer.verdicts import verdict_report
 
-from .test_pipeline import TINY, _scene
+from .test_calibrate import write_scenes_with_copies
+from .test_pipeline import TINY
 
 
 @pytest.fixture(scope="module")
@@ -31,13 +32,7 @@ def store_dir(tmp_path_factory):
     the queue has pairs on both sides of the threshold. Tiny encoder, calibrated."""
     root = tmp_path_factory.mktemp("queue")
     folder = root / "photos"
-    folder.mkdir()
-    for i in range(40):
-        _scene(folder / f"scene{i:02d}.png", seed=100 + i)
-        if i < 6:
-            im = Image.open(folder / f"scene{i:02d}.png")
-            im.resize((im.width // 2, im.height // 2)).save(folder / f"scene{i:02d}-small.jpg", quality=85)
-    (folder / "scene07-copy.png").write_bytes((folder / "scene07.png").read_bytes())
+    write_scenes_with_copies(folder)
     Image.open(folder / "scene08.png").save(folder / "scene08-pixels.png", compress_level=1)
     blends = [(7, 9, 0.3)] + [(10 + k, 20 + k, 0.15 + 0.7 * k / 11) for k in range(12)]
     for i, j, share in blends:
