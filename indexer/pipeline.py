@@ -156,8 +156,9 @@ def _log_summary(summary: dict) -> None:
     log.info("stages (s): %s", ", ".join(f"{k} {v}" for k, v in summary["stages"].items()))
 
 
-def store_status(store: Store) -> dict:
-    """What `nearsight status` and GET /v1/status report."""
+def store_status(store: Store, *, with_questions: bool = True) -> dict:
+    """What `nearsight status` and GET /v1/status report. `with_questions` reads the generation's
+    calibration for its two questions (the service has them loaded already and says False)."""
     from .calibration_report import questions
 
     counts = store.catalog.counts()
@@ -173,7 +174,7 @@ def store_status(store: Store) -> dict:
         "generation": None if gen is None else {
             "name": gen.name, "indexed": gen.meta.get("indexed"), "groups": gen.meta.get("groups"),
             "thresholds": gen.meta.get("thresholds"), "index_spec": gen.meta.get("index_spec"),
-            "questions": questions(gen.load_calibration()),
+            "questions": questions(gen.load_calibration()) if with_questions else None,
         },
         "last_index_run": None
         if last is None

@@ -60,7 +60,7 @@ def metrics():
 def status():
     st = state()
     snap = snapshot(required=False)
-    out = store_status(st.store())
+    out = store_status(st.store(), with_questions=False)
     out["published_generation"] = (out.pop("generation") or {}).get("name")
     out["generation"] = None if snap is None else {
         "name": snap.name, "model": snap.model, "indexed": snap.size,
