@@ -208,16 +208,28 @@
     showJudgePair();
   }
 
+  // One verdict POST; on 401/403 it is kept so that entering the key sends it again.
+  async function postVerdict(a, b, verdict, stored) {
+    const send = async () => {
+      try {
+        const body = await api("/v1/verdicts", {
+          method: "POST",
+          headers: { "Content-Type": "application/json" },
+          body: JSON.stringify({ file_a: a, file_b: b, verdict: verdict, origin: "review" }),
+        });
+        await stored(body);
+      } catch (e) {
+        toast("Not stored: " + e.message, true);
+        if (e.status === 401 || e.status === 403) state.retry = send;
+      }
+    };
+    await send();
+  }
+
   async function judge(verdict) {
     const pair = state.judge.pairs[state.judge.index];
     if (!pair) return;
-    const send = async () => {
-      try {
-        await api("/v1/verdicts", {
-          method: "POST",
-          headers: { "Content-Type": "application/json" },
-          body: JSON.stringify({ file_a: pair.a.id, file_b: pair.b.id, verdict: verdict, origin: "review" }),
-        });
+    await postVerdict(pair.a.id, pair.b.id, verdict, async () => {
         toast(`Marked ${verdict}: #${pair.a.id} and #${pair.b.id}`);
         state.group = null;  // the groups apply the verdict at once: load them again when opened
         // The next pair comes: the judged one leaves this page, and an empty page asks for the next.
@@ -225,12 +237,7 @@
         state.judge.page.total = Math.max(0, state.judge.page.total - 1);
         if (!state.judge.pairs.length) await loadJudgePage();
         showJudgePair();
-      } catch (e) {
-        toast("Not stored: " + e.message, true);
-        if (e.status === 401 || e.status === 403) state.retry = send;
-      }
-    };
-    await send();
+    });
   }
 
   $("judge-same").addEventListener("click", () => judge("same"));
@@ -376,13 +383,7 @@
   async function mark(verdict) {
     if (!state.group || !state.pairs.length) return;
     const [a, b] = state.pairs[state.pairIndex];
-    const send = async () => {
-      try {
-        const body = await api("/v1/verdicts", {
-          method: "POST",
-          headers: { "Content-Type": "application/json" },
-          body: JSON.stringify({ file_a: a.id, file_b: b.id, verdict: verdict, origin: "review" }),
-        });
+    await postVerdict(a.id, b.id, verdict, async (body) => {
         state.group.verdicts = (state.group.verdicts || []).concat(
           [{ a: a.id, b: b.id, verdict: verdict, id: body.verdicts[0].id }]);
         // The groups list and the plan apply a verdict at once: "different" splits this pair.
@@ -390,12 +391,7 @@
               (verdict === "different" ? " (no longer grouped together)" : ""));
         if (state.pairIndex + 1 < state.pairs.length) movePair(1);
         else renderPair(state.group.gid, state.pairIndex);
-      } catch (e) {
-        toast("Not stored: " + e.message, true);
-        if (e.status === 401 || e.status === 403) state.retry = send;
-      }
-    };
-    await send();
+    });
   }
 
   $("mark-same").addEventListener("click", () => mark("same"));
