@@ -101,11 +101,14 @@ def _budget_config(minutes: float, quick: bool):
     return TrainConfig(minutes=minutes)
 
 
+SETTINGS_OVERRIDES: dict[str, str] = {}  # benchmarks/rescore.py --set: nothing else changes the defaults
+
+
 def _store(path: Path, create: bool = True):
     from indexer.settings import load_settings
     from indexer.store import Store
 
-    return Store.open(path, create=create, settings=load_settings(environ={}))
+    return Store.open(path, create=create, settings=load_settings(environ={}, overrides=SETTINGS_OVERRIDES))
 
 
 def index_trained(store_dir: Path, folder: Path, minutes: float, quick: bool) -> dict:
@@ -299,6 +302,8 @@ def run(args) -> dict:
     work = args.work
     refs, extra, names, transforms, records = prepare(args)
     folder = work / "collection"
+    # What benchmarks/rescore.py needs to score a changed query path on these stores without retraining.
+    (work / "queries.json").write_text(json.dumps({"names": names, "records": records}, default=str))
     col = {name: i for i, name in enumerate(names)}
     gt = np.array([r["gt"] for r in records], np.int64)
     groups = query_groups(records)

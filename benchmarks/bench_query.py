@@ -1,4 +1,4 @@
-"""What one query costs with every step on: decode, embed, search, normalise, verify the best 3.
+"""What one query costs with every step on: decode, embed (the image and its mirror), search, normalise, verify.
 
 Reads the queries of a quality-benchmark work folder (benchmarks/bench_quality.py --work WORK
 writes them) and answers them against its trained store exactly as `nearsight similar` does
@@ -61,6 +61,8 @@ def main() -> int:
     parser.add_argument("--queries", type=int, default=600)
     parser.add_argument("--batch", type=int, default=32, help="queries per batch (`similar` uses 32)")
     parser.add_argument("--out", type=Path)
+    parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
+                        help="a setting other than its default (e.g. mirror_view=off); repeatable")
     args = parser.parse_args()
 
     from indexer import rerank
@@ -68,11 +70,12 @@ def main() -> int:
     from indexer.settings import load_settings
     from indexer.store import Store
 
+    overrides = dict(item.split("=", 1) for item in args.set)
     files = sorted(str(p) for p in (args.work / "queries").rglob("*") if p.is_file())
     rng = np.random.default_rng(0)
     paths = [files[i] for i in sorted(rng.choice(len(files), min(args.queries, len(files)), replace=False).tolist())]
     before = machine(LIBRARIES)
-    with Store.open(args.work / "stores" / args.store, settings=load_settings(environ={})) as store:
+    with Store.open(args.work / "stores" / args.store, settings=load_settings(environ={}, overrides=overrides)) as store:
         searcher = Searcher(store)
         _answer(searcher, paths[: args.batch], args.batch)  # load the model and index pages once
         forget = rerank._features_at.cache_clear
@@ -91,7 +94,9 @@ def main() -> int:
         "",
         f"Command: `.venv/bin/python benchmarks/bench_query.py --work {args.work}` ({len(paths)} queries of the "
         f"quality benchmark, batches of {args.batch}, against its store `{args.store}`: top 10, score "
-        "normalisation, geometric verification of the best 3 on the small copies).",
+        "normalisation, the query's mirror image and the picture inside a frame searched too, geometric "
+        "verification of the best 3 on the small copies"
+        + (f"; settings changed: {', '.join(args.set)}" if args.set else "") + ").",
         "",
         "| stage | ms per query: keypoints forgotten before every batch | ... kept from the pass's start | "
         "... kept from an earlier pass |",

@@ -12,6 +12,7 @@ from pathlib import Path
 from typing import Collection, Iterator, Sequence
 
 import numpy as np
+from PIL import ImageOps
 
 from . import index as faiss_index
 from .embed import embed_images
@@ -64,6 +65,40 @@ def expand_queries(paths: Sequence[str], extensions: tuple[str, ...]) -> list[st
     return out
 
 
+def _better_of(direct: list[tuple[float, int]], mirrored: list[tuple[float, int]],
+               head: int | None = None) -> list[tuple[float, bool, int]]:
+    """(similarity, whether it came from the mirror, id) for every id of either list, with its better
+    similarity, best first. With `head`, a mirror's score is taken only where it ranks among the first
+    `head` (the candidates verification will check); elsewhere the direct score stands, and an id the
+    direct list lacks is left out."""
+    best: dict[int, tuple[float, bool]] = {i: (d, False) for d, i in direct}
+    for d, i in mirrored:
+        if d > best.get(i, (-np.inf, False))[0]:
+            best[i] = (d, True)
+    ranked = sorted(((d, m, i) for i, (d, m) in best.items()), key=lambda t: -t[0])
+    if head is None:
+        return ranked
+    own = dict((i, d) for d, i in direct)
+    kept = ranked[:head] + [(own[i], False, i) for _, m, i in ranked[head:] if m and i in own] + \
+        [t for t in ranked[head:] if not t[1]]
+    return sorted(kept, key=lambda t: -t[0])
+
+
+def _settle_views(results: list[dict], direct: dict[int, float], shift: float) -> None:
+    """A result that scored through another view of the query (its mirror, the picture inside its frame)
+    keeps that score only when verification confirmed it; otherwise it falls back to its direct score,
+    or leaves the list when the image as given did not find it. Re-sorted in place."""
+    for r in list(results):
+        if not r.pop("_other_view", False) or (r.get("evidence") or {}).get("verified"):
+            continue
+        if r["id"] in direct:
+            d = direct[r["id"]]
+            r["similarity"], r["descriptor_similarity"] = round(d - shift, 6), round(d, 6)
+        else:
+            results.remove(r)
+    results.sort(key=lambda r: -r["similarity"])
+
+
 class Searcher:
     """The current generation's index and model, loaded once, answering many queries."""
 
@@ -96,6 +131,8 @@ class Searcher:
         self.query_calibration = query_calibration  # the query verdict (indexer/query_verdict.py), if calibrated
         self.verify_top = int(store.settings.verify_top)
         self.score_norm = float(store.settings.score_norm)
+        self.frame_views = bool(store.settings.frame_views)
+        self.mirror_view = str(store.settings.mirror_view)
 
     @property
     def verdict_threshold(self) -> float:
@@ -120,23 +157,66 @@ class Searcher:
         catalog = catalog if catalog is not None else self.store.catalog
         # The background statistic needs k + 1 neighbours and more for the copies it skips.
         wanted = max(k, BACKGROUND_SEARCH) if self.score_norm else k
-        D, I = faiss_index.search(self.index, np.ascontiguousarray(xq, dtype=np.float32), wanted + len(exclude))
-        rows = [[(float(d), int(i)) for d, i in zip(d_row, i_row) if i >= 0 and int(i) not in exclude]
-                for d_row, i_row in zip(D, I)]
-        paths = catalog.paths_for([i for kept in rows for _, i in kept[:k]])  # only the ones answered
+        n = wanted + len(exclude)
+        rows = self._search(xq, n, exclude)
+        verifying = images is not None and self.verify_top > 0
+        # The background statistic comes from the image as given: other views' scores are not its background.
+        shifts = [self.score_norm * background_statistic([d for d, _ in kept], copy_threshold=self.threshold)
+                  for kept in rows]
+        extra = [[] for _ in rows]
+        if images is not None and self.mirror_view == "max":
+            mirrored = self._search(self.vectors_for_images([ImageOps.mirror(im) for im in images]), n, exclude)
+            rows = [[(d, i) for d, _, i in _better_of(kept, more)] for kept, more in zip(rows, mirrored)]
+        elif verifying and self.mirror_view == "verified":
+            # Only what the mirror finds as a near-duplicate on the descriptor's scale: a mirrored copy
+            # scores like a copy there, while the other half of a symmetric subject (two wings of one
+            # butterfly in two files), which verification would also confirm as mirrored, does not.
+            extra = [[(d, i) for d, i in found if d >= self.threshold] for found in
+                     self._search(self.vectors_for_images([ImageOps.mirror(im) for im in images]), n, exclude)]
+        if verifying and self.frame_views:
+            extra = self._with_frame_views(images, extra, n, exclude)
+        # Another view's candidate takes a place only among those verification checks, and keeps it only
+        # when verified (`_settle_views`): a view may not raise a look-alike's score on its own.
+        head = self.verify_top
+        merged = [_better_of(kept, more, head)[: k + head] for kept, more in zip(rows, extra)]
+        paths = catalog.paths_for([i for kept in merged for _, _, i in kept])  # only the ones answered
         out = []
-        for kept in rows:
-            shift = self.score_norm * background_statistic([d for d, _ in kept], copy_threshold=self.threshold)
+        for kept, shift in zip(merged, shifts):
             out.append([
                 {"id": i, "path": paths.get(i), "similarity": round(d - shift, 6),
-                 "descriptor_similarity": round(d, 6), "evidence": None}
-                for d, i in kept[:k]
+                 "descriptor_similarity": round(d, 6), "evidence": None, **({"_other_view": True} if m else {})}
+                for d, m, i in kept
             ])
-        if images is not None and self.verify_top > 0:
+        if verifying:
             out = self._verified(images, out, catalog)
+        for results, kept, shift in zip(out, rows, shifts):
+            _settle_views(results, dict((i, d) for d, i in kept), shift)
+            del results[k:]
         for results in out:
             self.judge(results, threshold)
         return out
+
+    def _search(self, xq: np.ndarray, n: int, exclude: Collection[int]) -> list[list[tuple[float, int]]]:
+        """Per query row, its (similarity, id) neighbours best first, ids in `exclude` left out."""
+        D, I = faiss_index.search(self.index, np.ascontiguousarray(xq, dtype=np.float32), n)
+        return [[(float(d), int(i)) for d, i in zip(d_row, i_row) if i >= 0 and int(i) not in exclude]
+                for d_row, i_row in zip(D, I)]
+
+    def _with_frame_views(self, images, extra: list[list[tuple[float, int]]], n: int,
+                          exclude: Collection[int]) -> list[list[tuple[float, int]]]:
+        """`extra` (per query, candidates found through other views) with each framed query image
+        (indexer/frames.py) searched once more as the picture inside its frame. Images without a frame,
+        most of them, cost one scan of their edges."""
+        from .frames import inside_frame
+
+        framed = [(row, view) for row, view in enumerate(map(inside_frame, images)) if view is not None]
+        if not framed:
+            return extra
+        found = self._search(self.vectors_for_images([view for _, view in framed]), n, exclude)
+        extra = list(extra)
+        for (row, _), more in zip(framed, found):
+            extra[row] = [(d, i) for d, _, i in _better_of(extra[row], more)]
+        return extra
 
     def judge(self, results: list[dict], threshold: float | None = None) -> None:
         """Set each result's `duplicate` and `probability`.

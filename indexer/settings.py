@@ -81,6 +81,16 @@ def _origins(value: Any) -> tuple[str, ...]:
     return tuple(str(item).strip().rstrip("/") for item in items if str(item).strip())
 
 
+MIRROR_MODES = ("off", "verified", "max")
+
+
+def _mirror_mode(value: Any) -> str:
+    text = str(value).strip().lower()
+    if text not in MIRROR_MODES:
+        raise ValueError(f"expected one of {', '.join(MIRROR_MODES)}, got {value!r}")
+    return text
+
+
 def _fraction(value: Any) -> float:
     number = float(value)
     if not number >= 0:
@@ -189,6 +199,21 @@ SETTINGS: tuple[Setting, ...] = (
         "query's similarities ranked 2-11 in the collection is subtracted from its scores, so a score "
         "means the same whatever the query resembles. 0 turns it off. Measured with verification: "
         "recall at precision 0.99 0.70 -> 0.85 (benchmarks/results/ablation.md).",
+    ),
+    Setting(
+        "frame_views",
+        True,
+        _parse_bool,
+        "A query image with a uniform frame (a border, letterbox bars) is also searched as the picture "
+        "inside it, and each candidate keeps the better score (indexer/frames.py). false turns it off.",
+    ),
+    Setting(
+        "mirror_view",
+        "verified",
+        _mirror_mode,
+        "Queries are also searched as their mirror image. verified: a candidate found through the mirror "
+        "counts only when geometric verification confirms a mirrored copy; max: a candidate keeps the "
+        "better of its two scores; off: the image as given only.",
     ),
     Setting(
         "near_threshold",

@@ -8,7 +8,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from PIL import Image, ImageEnhance
+from PIL import Image, ImageEnhance, ImageOps
 
 from indexer.pipeline import run_index
 from indexer.query import Searcher
@@ -19,20 +19,28 @@ from indexer.train import TrainConfig
 from .test_train import skimage_photos
 
 
-def _edits(im: Image.Image) -> dict[str, Image.Image]:
-    """The four edits the issue names; each is a common way a photo gets copied."""
+def _centre_crop(im: Image.Image, area: float) -> Image.Image:
     w, h = im.size
-    side = np.sqrt(0.7)  # a centred crop keeping 70% of the area
+    side = np.sqrt(area)
     cw, ch = round(w * side), round(h * side)
+    return im.crop(((w - cw) // 2, (h - ch) // 2, (w - cw) // 2 + cw, (h - ch) // 2 + ch))
+
+
+def _edits(im: Image.Image) -> dict[str, Image.Image]:
+    """Common ways a photo gets copied: the first four, then a mirror image, half the area, and a frame."""
+    w, h = im.size
     return {
         "jpeg-q30": im,  # saved below at quality 30
-        "crop-70%": im.crop(((w - cw) // 2, (h - ch) // 2, (w - cw) // 2 + cw, (h - ch) // 2 + ch)),
+        "crop-70%": _centre_crop(im, 0.7),
         "resize-50%": im.resize((w // 2, h // 2), Image.Resampling.LANCZOS),
         "brighter": ImageEnhance.Brightness(im).enhance(1.3),
+        "mirror": ImageOps.mirror(im),
+        "crop-50%": _centre_crop(im, 0.5),
+        "framed": ImageOps.expand(im, border=round(0.12 * max(w, h)), fill=(0, 0, 0)),
     }
 
 
-EDIT_KINDS = ("jpeg-q30", "crop-70%", "resize-50%", "brighter")
+EDIT_KINDS = ("jpeg-q30", "crop-70%", "resize-50%", "brighter", "mirror", "crop-50%", "framed")
 
 
 @pytest.fixture(scope="module")
@@ -72,6 +80,9 @@ def photo_store(tmp_path_factory):
     # Was a known gap (13 of 16 after 120 steps); with the luma-standardised input and the DCT part
     # of the descriptor, 16 of 16 brightened photos are found first (measured 2026-12-02).
     "brighter",
+    # The query's mirror image is searched too, and a mirrored match counts once verified
+    # (indexer/query.py); the picture inside a frame is searched too (indexer/frames.py).
+    "mirror", "crop-50%", "framed",
 ])
 def test_transformed_scikit_image_photos_find_their_original_first(photo_store, kind):
     store_dir, queries = photo_store
@@ -80,7 +91,14 @@ def test_transformed_scikit_image_photos_find_their_original_first(photo_store, 
     misses = [(q, a["results"][0]["path"]) for (q, expected), a in zip(queries[kind], answers)
               if a["results"][0]["path"] != expected]
     print(f"{kind}: rank-1 {len(answers) - len(misses)}/{len(answers)}")
-    assert not misses, misses
+    assert len(misses) <= ALLOWED_MISSES.get(kind, 0), misses
+
+
+# Floors below 16 of 16, measured 2026-12-02 after 120 steps (15 of 16 each):
+# - crop-50%: colorwheel's centre crop finds its centre tile first, which lies wholly inside the crop;
+# - framed: hubble_deep_field's dark sky meets the black frame on every side, so no frame is found
+#   (tests/test_query_views.py states that case) and the descriptor alone does not find it first.
+ALLOWED_MISSES = {"crop-50%": 1, "framed": 1}
 
 
 @pytest.mark.slow

@@ -1,0 +1,86 @@
+"""Score the query path of the code as it is now on stores a quality run already trained.
+
+A development aid: `bench_quality.py` trains and indexes (about 15 minutes); a change that
+acts only after training (how a query is described, searched, normalised, verified) can be
+measured again on the same stores in a minute or two, with the same metrics.
+
+    .venv/bin/python benchmarks/rescore.py --work /tmp/nearsight-bench-quality [--store train-10min]
+
+Prints the overall figures, recall@1 and µAP per family, and the realised verdict.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import logging
+import time
+from pathlib import Path
+
+import numpy as np
+
+from benchmarks import metrics
+from benchmarks import bench_quality
+from benchmarks.bench_quality import _nearsight_predictions, _store, evaluate, query_groups, verdicts
+
+
+def _recalibrated_copy(store_dir: Path) -> Path:
+    """A copy of the store (beside it, named *-rescored), recalibrated by the current code."""
+    import shutil
+
+    from indexer.build import recalibrate
+    from indexer.calibrate import CalibrationConfig
+
+    copy = store_dir.with_name(store_dir.name + "-rescored")
+    shutil.rmtree(copy, ignore_errors=True)
+    shutil.copytree(store_dir, copy, symlinks=True)
+    t0 = time.monotonic()
+    with _store(copy, create=False) as store:
+        recalibrate(store, CalibrationConfig.from_settings(store.settings), keep=store.settings.keep_generations)
+    print(f"recalibrated a copy of {store_dir.name} in {time.monotonic() - t0:.0f} s")
+    return copy
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--work", type=Path, default=Path("/tmp/nearsight-bench-quality"))
+    parser.add_argument("--store", default="train-10min", help="store under WORK/stores (default train-10min)")
+    parser.add_argument("--k", type=int, default=10)
+    parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
+                        help="a setting for this scoring (e.g. mirror_view=off); repeatable")
+    parser.add_argument("--recalibrate", action="store_true",
+                        help="calibrate a copy of the store with the current code (and --set) first, "
+                             "as `nearsight calibrate` would; the trained store is left as it is")
+    args = parser.parse_args()
+    logging.basicConfig(level=logging.WARNING)
+    bench_quality.SETTINGS_OVERRIDES.update(dict(item.split("=", 1) for item in args.set))
+    store_dir = args.work / "stores" / args.store
+    if args.recalibrate:
+        store_dir = _recalibrated_copy(store_dir)
+    saved = json.loads((args.work / "queries.json").read_text())
+    names, records = saved["names"], saved["records"]
+    col = {name: i for i, name in enumerate(names)}
+    gt = np.array([r["gt"] for r in records], np.int64)
+    groups = query_groups(records)
+    t0 = time.monotonic()
+    pred, threshold, _ = _nearsight_predictions(store_dir, records, col, args.k)
+    wall = time.monotonic() - t0
+    figures = evaluate(pred, gt, groups)
+    verdict = verdicts(pred, gt, groups["family"], threshold)["overall"]
+    o = figures["overall"]
+    print(f"{args.store}: µAP {o['uap']:.3f}  R@1 {o['r1']:.3f}  R@P90 {o['r_p90']:.3f}  R@P99 {o['r_p99']:.3f}"
+          f"  ({len(records)} queries in {wall:.0f} s)")
+    print(f"verdict at {threshold:.3f}: precision {verdict['precision']:.3f}  recall {verdict['recall']:.3f}"
+          f"  no-match flagged {verdict['no_match_flagged']['flagged']}"
+          f" of {verdict['no_match_flagged']['queries']}")
+    print("family      µAP    R@1")
+    for family, f in figures["family"].items():
+        print(f"{family:10s} {f['uap']:.3f}  {f['r1']:.3f}")
+    print("transform            µAP    R@1")
+    for name, f in figures["transform"].items():
+        if f["r1"] < 0.95:
+            print(f"{name:20s} {f['uap']:.3f}  {f['r1']:.3f}")
+
+
+if __name__ == "__main__":
+    main()
