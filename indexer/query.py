@@ -133,6 +133,7 @@ class Searcher:
         self.score_norm = float(store.settings.score_norm)
         self.frame_views = bool(store.settings.frame_views)
         self.mirror_view = str(store.settings.mirror_view)
+        self.verify_more = int(store.settings.verify_more) if self.verify_top else 0
 
     @property
     def verdict_threshold(self) -> float:
@@ -156,7 +157,7 @@ class Searcher:
         `duplicate` follows the query verdict (`judge`) unless a `threshold` is given."""
         catalog = catalog if catalog is not None else self.store.catalog
         # The background statistic needs k + 1 neighbours and more for the copies it skips.
-        wanted = max(k, BACKGROUND_SEARCH) if self.score_norm else k
+        wanted = max(k, BACKGROUND_SEARCH) if self.score_norm else max(k, self.verify_top + self.verify_more)
         n = wanted + len(exclude)
         rows = self._search(xq, n, exclude)
         verifying = images is not None and self.verify_top > 0
@@ -178,7 +179,10 @@ class Searcher:
         # Another view's candidate takes a place only among those verification checks, and keeps it only
         # when verified (`_settle_views`): a view may not raise a look-alike's score on its own.
         head = self.verify_top
-        merged = [_better_of(kept, more, head)[: k + head] for kept, more in zip(rows, extra)]
+        # Every candidate verification may reach is answered (cut to k at the end): the best result
+        # must not depend on k.
+        reach = max(k, head + self.verify_more if verifying else 0) + head
+        merged = [_better_of(kept, more, head)[:reach] for kept, more in zip(rows, extra)]
         paths = catalog.paths_for([i for kept in merged for _, _, i in kept])  # only the ones answered
         out = []
         for kept, shift in zip(merged, shifts):
@@ -240,10 +244,11 @@ class Searcher:
     def _verified(self, images, answers: list[list[dict]], catalog) -> list[list[dict]]:
         from .rerank import rerank_all
 
-        wanted = {r["id"] for results in answers for r in results[: self.verify_top]}
+        reach = self.verify_top + self.verify_more
+        wanted = {r["id"] for results in answers for r in results[:reach]}
         sources = catalog.pixel_sources(wanted)
         candidates = {i: str(self.store.pixels_path(row)) for i, row in sources.items()}
-        return rerank_all(images, answers, candidates, self.verify_top)
+        return rerank_all(images, answers, candidates, self.verify_top, more=self.verify_more)
 
     def _own_image(self, file_id: int, catalog):
         """A catalogued image's pixels, from its small copy when there is one (None if unreadable)."""

@@ -192,6 +192,14 @@ SETTINGS: tuple[Setting, ...] = (
         "ablation.md); a whole query costs 17.7 ms on 2 cores (benchmarks/results/query.md).",
     ),
     Setting(
+        "verify_more",
+        12,
+        _positive_int,
+        "When a query's best candidate is not verified after the first verify_top, this many more are "
+        "verified (a hard crop often ranks its original a little lower). Measured on the quality "
+        "benchmark: µAP 0.925 -> 0.945, crops' recall@1 0.72 -> 0.80; 0 turns it off.",
+    ),
+    Setting(
         "score_norm",
         1.0,
         _fraction,

@@ -63,3 +63,23 @@ def test_only_the_top_candidates_are_verified_and_unreadable_ones_are_skipped(fi
     assert "evidence" in by_id[2] and "evidence" not in by_id[1]  # beyond the top 2: not verified
     # (`Searcher.neighbours` gives every result evidence=None and its descriptor score before re-ranking.)
     assert [r["similarity"] for r in out] == sorted((r["similarity"] for r in out), reverse=True)
+
+
+def test_more_candidates_are_verified_only_when_the_best_is_not(files):
+    """`rerank_more`: the crop's own tile ranked fourth by the descriptor is verified and moves first
+    when the first two fail; when the best candidate verifies, nothing past `top` is checked."""
+    from indexer.rerank import rerank_more
+
+    paths, query = files
+    candidates = {1: str(paths["left"]), 2: str(paths["right"]), 3: str(paths["astronaut"]), 4: str(paths["right"])}
+    results = [{"id": 2, "similarity": 0.9}, {"id": 3, "similarity": 0.89}, {"id": 4, "similarity": 0.87},
+               {"id": 1, "similarity": 0.85}]
+    without = rerank_more(query, [dict(r) for r in results], candidates, top=2, more=0)
+    assert without[0]["id"] == 2 and "evidence" not in {r["id"]: r for r in without}[1]
+    more = rerank_more(query, [dict(r) for r in results], candidates, top=2, more=2)
+    assert more[0]["id"] == 1 and more[0]["evidence"]["verified"]
+    assert more[0]["similarity"] == pytest.approx(boosted(0.85)) == pytest.approx(0.925)
+    # The left tile first: verified at once, so the other candidates past top=1 stay unchecked.
+    first = rerank_more(query, [dict(results[3])] + [dict(r) for r in results[:3]], candidates, top=1, more=3)
+    assert first[0]["id"] == 1 and all("evidence" not in r for r in first[1:])
+
