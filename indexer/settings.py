@@ -189,7 +189,7 @@ SETTINGS: tuple[Setting, ...] = (
         "Candidates of each query (similar, the service) checked by geometric verification (ORB "
         "keypoints under one similarity transform, on the small copies); a verified candidate's score "
         "moves halfway to 1. 0 turns it off. Measured: top 3 lifted µAP 0.885 -> 0.941 (benchmarks/results/"
-        "ablation.md); a whole query costs 17.7 ms on 2 cores (benchmarks/results/query.md).",
+        "ablation.md); the cost per query is in benchmarks/results/query.md.",
     ),
     Setting(
         "verify_more",
