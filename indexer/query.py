@@ -65,14 +65,14 @@ def expand_queries(paths: Sequence[str], extensions: tuple[str, ...]) -> list[st
     return out
 
 
-def _better_of(direct: list[tuple[float, int]], mirrored: list[tuple[float, int]],
+def _better_of(direct: list[tuple[float, int]], other: list[tuple[float, int]],
                head: int | None = None) -> list[tuple[float, bool, int]]:
-    """(similarity, whether it came from the mirror, id) for every id of either list, with its better
-    similarity, best first. With `head`, a mirror's score is taken only where it ranks among the first
-    `head` (the candidates verification will check); elsewhere the direct score stands, and an id the
-    direct list lacks is left out."""
+    """(similarity, whether it came from the other view, id) for every id of either list, with its better
+    similarity, best first. With `head`, the other view's score is taken only where it ranks among the
+    first `head` (the candidates verification will check); elsewhere the direct score stands, and an id
+    the direct list lacks is left out."""
     best: dict[int, tuple[float, bool]] = {i: (d, False) for d, i in direct}
-    for d, i in mirrored:
+    for d, i in other:
         if d > best.get(i, (-np.inf, False))[0]:
             best[i] = (d, True)
     ranked = sorted(((d, m, i) for i, (d, m) in best.items()), key=lambda t: -t[0])
@@ -166,14 +166,14 @@ class Searcher:
                   for kept in rows]
         extra = [[] for _ in rows]
         if images is not None and self.mirror_view == "max":
-            mirrored = self._search(self.vectors_for_images([ImageOps.mirror(im) for im in images]), n, exclude)
-            rows = [[(d, i) for d, _, i in _better_of(kept, more)] for kept, more in zip(rows, mirrored)]
+            rows = [[(d, i) for d, _, i in _better_of(kept, more)]
+                    for kept, more in zip(rows, self._mirror_rows(images, n, exclude))]
         elif verifying and self.mirror_view == "verified":
             # Only what the mirror finds as a near-duplicate on the descriptor's scale: a mirrored copy
             # scores like a copy there, while the other half of a symmetric subject (two wings of one
             # butterfly in two files), which verification would also confirm as mirrored, does not.
-            extra = [[(d, i) for d, i in found if d >= self.threshold] for found in
-                     self._search(self.vectors_for_images([ImageOps.mirror(im) for im in images]), n, exclude)]
+            extra = [[(d, i) for d, i in found if d >= self.threshold]
+                     for found in self._mirror_rows(images, n, exclude)]
         if verifying and self.frame_views:
             extra = self._with_frame_views(images, extra, n, exclude)
         # Another view's candidate takes a place only among those verification checks, and keeps it only
@@ -205,6 +205,10 @@ class Searcher:
         D, I = faiss_index.search(self.index, np.ascontiguousarray(xq, dtype=np.float32), n)
         return [[(float(d), int(i)) for d, i in zip(d_row, i_row) if i >= 0 and int(i) not in exclude]
                 for d_row, i_row in zip(D, I)]
+
+    def _mirror_rows(self, images, n: int, exclude: Collection[int]) -> list[list[tuple[float, int]]]:
+        """`_search` of each query image's mirror image."""
+        return self._search(self.vectors_for_images([ImageOps.mirror(im) for im in images]), n, exclude)
 
     def _with_frame_views(self, images, extra: list[list[tuple[float, int]]], n: int,
                           exclude: Collection[int]) -> list[list[tuple[float, int]]]:
