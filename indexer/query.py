@@ -153,7 +153,9 @@ class Searcher:
         `catalog` is the connection to read paths with (SQLite connections belong to one thread:
         a multi-threaded caller passes its own; default the store's). Ids in `exclude` are left
         out, and k more are asked for so that k remain. With the query `images` (one per row of
-        `xq`), the best `verify_top` candidates are verified and re-ranked (indexer/rerank.py).
+        `xq`), the best `verify_top` candidates are verified and re-ranked (indexer/rerank.py);
+        a query whose best candidate is still unverified then has its other views searched (its
+        mirror image, the picture inside its frame) and `verify_more` more candidates verified.
         `duplicate` follows the query verdict (`judge`) unless a `threshold` is given."""
         catalog = catalog if catalog is not None else self.store.catalog
         # The background statistic needs k + 1 neighbours and more for the copies it skips.
@@ -164,41 +166,63 @@ class Searcher:
         # The background statistic comes from the image as given: other views' scores are not its background.
         shifts = [self.score_norm * background_statistic([d for d, _ in kept], copy_threshold=self.threshold)
                   for kept in rows]
-        extra = [[] for _ in rows]
         if images is not None and self.mirror_view == "max":
             rows = [[(d, i) for d, _, i in _better_of(kept, more)]
                     for kept, more in zip(rows, self._mirror_rows(images, n, exclude))]
-        elif verifying and self.mirror_view == "verified":
-            # Only what the mirror finds as a near-duplicate on the descriptor's scale: a mirrored copy
-            # scores like a copy there, while the other half of a symmetric subject (two wings of one
-            # butterfly in two files), which verification would also confirm as mirrored, does not.
-            extra = [[(d, i) for d, i in found if d >= self.threshold]
-                     for found in self._mirror_rows(images, n, exclude)]
-        if verifying and self.frame_views:
-            extra = self._with_frame_views(images, extra, n, exclude)
-        # Another view's candidate takes a place only among those verification checks, and keeps it only
-        # when verified (`_settle_views`): a view may not raise a look-alike's score on its own.
         head = self.verify_top
         # Every candidate verification may reach is answered (cut to k at the end): the best result
         # must not depend on k.
         reach = max(k, head + self.verify_more if verifying else 0) + head
-        merged = [_better_of(kept, more, head)[:reach] for kept, more in zip(rows, extra)]
-        paths = catalog.paths_for([i for kept in merged for _, _, i in kept])  # only the ones answered
-        out = []
-        for kept, shift in zip(merged, shifts):
-            out.append([
-                {"id": i, "path": paths.get(i), "similarity": round(d - shift, 6),
-                 "descriptor_similarity": round(d, 6), "evidence": None, **({"_other_view": True} if m else {})}
-                for d, m, i in kept
-            ])
+        out = self._answers([_better_of(kept, [])[:reach] for kept in rows], shifts, catalog)
         if verifying:
-            out = self._verified(images, out, catalog)
+            from .rerank import query_features
+
+            keys = [query_features(im) for im in images]  # each query's keypoints and matches, kept for both rounds
+            out = self._verified(keys, out, catalog, more=False)
+            # The mirrored query's keypoints, the other views and the further candidates only for a query
+            # whose best is not confirmed yet: a copy found as given (most queries) costs none of them.
+            pending = [q for q, results in enumerate(out)
+                       if not (results and (results[0].get("evidence") or {}).get("verified"))]
+            if pending:
+                again = self._other_views([images[q] for q in pending], [keys[q] for q in pending],
+                                          [rows[q] for q in pending], n, exclude, reach,
+                                          [shifts[q] for q in pending], catalog)
+                for q, results in zip(pending, again):
+                    out[q] = results
         for results, kept, shift in zip(out, rows, shifts):
             _settle_views(results, dict((i, d) for d, i in kept), shift)
             del results[k:]
         for results in out:
             self.judge(results, threshold)
         return out
+
+    def _answers(self, merged: list[list[tuple[float, bool, int]]], shifts: Sequence[float], catalog) -> list[list[dict]]:
+        """Result dicts of (similarity, other view, id) lists, each score less its query's shift."""
+        paths = catalog.paths_for([i for kept in merged for _, _, i in kept])  # only the ones answered
+        return [[{"id": i, "path": paths.get(i), "similarity": round(d - shift, 6),
+                  "descriptor_similarity": round(d, 6), "evidence": None, **({"_other_view": True} if m else {})}
+                 for d, m, i in kept]
+                for kept, shift in zip(merged, shifts)]
+
+    def _other_views(self, images, keys, rows, n: int, exclude: Collection[int], reach: int, shifts, catalog):
+        """The answers of queries whose best candidate did not verify among the first `verify_top`:
+        candidates their other views find join the direct ones (`_better_of`), the mirrored query is
+        tried too, and verification goes on to `verify_more` more (`keys`: the queries' kept
+        keypoints and matches, so nothing matched in the first round is matched again)."""
+        extra = [[] for _ in rows]
+        if self.mirror_view == "verified":
+            # Only what the mirror finds as a near-duplicate on the descriptor's scale: a mirrored copy
+            # scores like a copy there, while the other half of a symmetric subject (two wings of one
+            # butterfly in two files), which verification would also confirm as mirrored, does not.
+            extra = [[(d, i) for d, i in found if d >= self.threshold]
+                     for found in self._flipped_rows(images, n, exclude)]
+        if self.frame_views:
+            extra = self._with_frame_views(images, extra, n, exclude)
+        # Another view's candidate takes a place only among those verification checks, and keeps it only
+        # when verified (`_settle_views`): a view may not raise a look-alike's score on its own.
+        out = self._answers([_better_of(kept, more, self.verify_top)[:reach] for kept, more in zip(rows, extra)],
+                            shifts, catalog)
+        return self._verified(keys, out, catalog, more=True)
 
     def _search(self, xq: np.ndarray, n: int, exclude: Collection[int]) -> list[list[tuple[float, int]]]:
         """Per query row, its (similarity, id) neighbours best first, ids in `exclude` left out."""
@@ -209,6 +233,13 @@ class Searcher:
     def _mirror_rows(self, images, n: int, exclude: Collection[int]) -> list[list[tuple[float, int]]]:
         """`_search` of each query image's mirror image."""
         return self._search(self.vectors_for_images([ImageOps.mirror(im) for im in images]), n, exclude)
+
+    def _flipped_rows(self, images, n: int, exclude: Collection[int]) -> list[list[tuple[float, int]]]:
+        """Per query image, `_search` of its mirror image and of it turned upside down (flipped top to
+        bottom), in one forward pass, each id with the better of its two similarities."""
+        views = [ImageOps.mirror(im) for im in images] + [ImageOps.flip(im) for im in images]
+        found = self._search(self.vectors_for_images(views), n, exclude)
+        return [[(d, i) for d, _, i in _better_of(a, b)] for a, b in zip(found[: len(images)], found[len(images):])]
 
     def _with_frame_views(self, images, extra: list[list[tuple[float, int]]], n: int,
                           exclude: Collection[int]) -> list[list[tuple[float, int]]]:
@@ -245,14 +276,18 @@ class Searcher:
             else:
                 r["duplicate"] = bool(verdict_score(r) >= (self.threshold if threshold is None else threshold))
 
-    def _verified(self, images, answers: list[list[dict]], catalog) -> list[list[dict]]:
+    def _verified(self, queries, answers: list[list[dict]], catalog, *, more: bool) -> list[list[dict]]:
+        """`rerank_all` of the answers (`queries`: images or their rerank.query_features): the first
+        `verify_top` of each by the query as given; with `more`, by its mirror image too and, when the
+        best is still unverified, the next `verify_more`."""
         from .rerank import rerank_all
 
-        reach = self.verify_top + self.verify_more
+        reach = self.verify_top + (self.verify_more if more else 0)
         wanted = {r["id"] for results in answers for r in results[:reach]}
         sources = catalog.pixel_sources(wanted)
         candidates = {i: str(self.store.pixels_path(row)) for i, row in sources.items()}
-        return rerank_all(images, answers, candidates, self.verify_top, more=self.verify_more)
+        return rerank_all(queries, answers, candidates, self.verify_top, more=self.verify_more if more else 0,
+                          mirrored=more)
 
     def _own_image(self, file_id: int, catalog):
         """A catalogued image's pixels, from its small copy when there is one (None if unreadable)."""

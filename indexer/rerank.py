@@ -81,9 +81,9 @@ def small_features(paths: Mapping[int, str]) -> dict:
 
 @functools.lru_cache(maxsize=FEATURE_CACHE)
 def _features_at(path: str, _mtime_ns: int, _size: int):
-    from .verify import VerifyConfig, features_or_reason
+    from .verify import features_or_reason
 
-    return features_or_reason(read_image(path, max_side=VERIFY_SIDE)[0], VerifyConfig(max_side=VERIFY_SIDE))
+    return features_or_reason(read_image(path, max_side=VERIFY_SIDE)[0], verify_config())
 
 
 def _evidence(v, size: tuple[int, int]) -> dict:
@@ -95,15 +95,17 @@ def _evidence(v, size: tuple[int, int]) -> dict:
             "mirrored": bool(v.mirrored), "reason": v.reason}
 
 
-def rerank(query: Image.Image, results: list[dict], candidates: dict[int, str], top: int,
-           threshold: float | None = None) -> list[dict]:
-    """Verify the first `top` results (dicts with id and similarity, best first) against `query`.
+def rerank(query, results: list[dict], candidates: dict[int, str], top: int,
+           threshold: float | None = None, *, mirrored: bool = True) -> list[dict]:
+    """Verify the first `top` results (dicts with id and similarity, best first) against `query`
+    (an image, or its verify.QueryFeatures at VERIFY_SIDE).
 
     `candidates` maps result ids to the file to read each candidate's pixels from. Each verified
     result gets the boosted similarity, `descriptor_similarity` (the score before) and `evidence`;
     the list comes back sorted by the new scores. A verified result's `duplicate` is redone against
-    `threshold` with its boosted descriptor score (thresholds are calibrated on that scale)."""
-    from .verify import VerifyConfig, verify_candidates
+    `threshold` with its boosted descriptor score (thresholds are calibrated on that scale).
+    `mirrored=False` leaves out the mirrored query's try (verify.VerifyConfig.try_mirrored)."""
+    from .verify import verify_candidates
 
     head = [r for r in results[:top] if r["id"] in candidates]
     known = small_features({r["id"]: candidates[r["id"]] for r in head})
@@ -112,7 +114,7 @@ def rerank(query: Image.Image, results: list[dict], candidates: dict[int, str], 
     if not checked:
         return results
     # verify_candidates brings the query to VERIFY_SIDE itself.
-    for r, f, v in zip(checked, features, verify_candidates(query, features, config=VerifyConfig(max_side=VERIFY_SIDE))):
+    for r, f, v in zip(checked, features, verify_candidates(query, features, config=verify_config(mirrored))):
         r.setdefault("descriptor_similarity", r["similarity"])
         r["evidence"] = _evidence(v, f.size)
         if v.verified:
@@ -122,21 +124,37 @@ def rerank(query: Image.Image, results: list[dict], candidates: dict[int, str], 
     return sorted(results, key=lambda r: -r["similarity"])
 
 
-def rerank_all(queries: Sequence[Image.Image], answers: list[list[dict]], candidates: dict[int, str], top: int,
-               threshold: float | None = None, more: int = 0) -> list[list[dict]]:
+def verify_config(mirrored: bool = True):
+    """The verification settings of re-ranking: both images at VERIFY_SIDE."""
+    from .verify import VerifyConfig
+
+    return VerifyConfig(max_side=VERIFY_SIDE, try_mirrored=mirrored)
+
+
+def query_features(query):
+    """A query image's verify.QueryFeatures for re-ranking (found once, kept for every round)."""
+    from .verify import QueryFeatures
+
+    return query if isinstance(query, QueryFeatures) else QueryFeatures(query, verify_config())
+
+
+def rerank_all(queries: Sequence, answers: list[list[dict]], candidates: dict[int, str], top: int,
+               threshold: float | None = None, more: int = 0, *, mirrored: bool = True) -> list[list[dict]]:
     """`rerank` for each (query, results) pair; with `more`, a query whose best result is still not
-    verified has its next `more` results verified too (`rerank_more`)."""
-    return [rerank_more(q, a, candidates, top, more, threshold) for q, a in zip(queries, answers)]
+    verified has its next `more` results verified too (`rerank_more`). A query is an image or its
+    `query_features`."""
+    return [rerank_more(q, a, candidates, top, more, threshold, mirrored=mirrored) for q, a in zip(queries, answers)]
 
 
-def rerank_more(query: Image.Image, results: list[dict], candidates: dict[int, str], top: int, more: int,
-                threshold: float | None = None) -> list[dict]:
+def rerank_more(query, results: list[dict], candidates: dict[int, str], top: int, more: int,
+                threshold: float | None = None, *, mirrored: bool = True) -> list[dict]:
     """`rerank` of the first `top`; then, when the best result is not verified, of the next `more`.
 
     A hard crop often ranks its original a little below the first few candidates, and a query with
     no copy at all has nothing to verify; a query whose best candidate verified stops at `top`."""
-    results = rerank(query, results, candidates, top, threshold)
+    query = query_features(query)  # keypoints found once for both rounds
+    results = rerank(query, results, candidates, top, threshold, mirrored=mirrored)
     if not more or not results or (results[0].get("evidence") or {}).get("verified"):
         return results
-    rest = rerank(query, results[top:], candidates, more, threshold)
+    rest = rerank(query, results[top:], candidates, more, threshold, mirrored=mirrored)
     return sorted(results[:top] + rest, key=lambda r: -r["similarity"])

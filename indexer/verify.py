@@ -167,8 +167,43 @@ def verify_pair(
     return verify_candidates(query, [candidate], max_side=max_side, min_inliers=min_inliers, config=config)[0]
 
 
+class QueryFeatures:
+    """A query's keypoints for one configuration, kept for every candidate it is verified against,
+    each found on first need; so is each match against a candidate's Features, so that a caller
+    verifying in rounds (`Searcher.neighbours`) never matches the same pair twice."""
+
+    def __init__(self, image: Image.Image, config: VerifyConfig = DEFAULT_VERIFY):
+        _require_image(image, "query")
+        self.image, self.config = image, config
+        self._direct: Features | None = None
+        self._mirrored: Features | None = None
+        self._matched: dict[tuple[int, bool], tuple[Features, Verification]] = {}
+
+    @property
+    def direct(self) -> Features:
+        if self._direct is None:
+            self._direct = features_or_reason(self.image, self.config)
+        return self._direct
+
+    @property
+    def mirrored(self) -> Features:
+        if self._mirrored is None:
+            self._mirrored = extract_features(self.image, self.config, mirror=True)
+        return self._mirrored
+
+    def serves(self, config: VerifyConfig) -> bool:
+        """Whether these keypoints were found as `config` would find them (try_mirrored aside)."""
+        return dataclasses.replace(self.config, try_mirrored=config.try_mirrored) == config
+
+    def match(self, target: Features, mirrored: bool) -> Verification:
+        key = (id(target), mirrored)
+        if key not in self._matched:  # the target is kept with its result, so its id is not reused
+            self._matched[key] = (target, match_features(self.mirrored if mirrored else self.direct, target, self.config))
+        return self._matched[key][1]
+
+
 def verify_candidates(
-    query: Image.Image,
+    query: Image.Image | QueryFeatures,
     candidates: list[Image.Image | Features],
     *,
     max_side: int | None = None,
@@ -178,14 +213,16 @@ def verify_candidates(
     """Verify each candidate against one query, whose keypoints (and mirrored ones) are computed once.
 
     A candidate may be given as its Features, extracted with the same configuration (a caller
-    that meets the same candidates again keeps them: `rerank.candidate_features`)."""
+    that meets the same candidates again keeps them: `rerank.small_features`); so may the query,
+    as QueryFeatures (a caller that verifies it in several rounds). The mirrored query is tried
+    on a candidate the direct one does not verify, unless `config.try_mirrored` is off."""
     cfg = _config(config, {"max_side": max_side, "min_inliers": min_inliers})
-    _require_image(query, "query")
+    if not (isinstance(query, QueryFeatures) and query.serves(cfg)):
+        query = QueryFeatures(query.image if isinstance(query, QueryFeatures) else query, cfg)
     for i, im in enumerate(candidates):
         if not isinstance(im, Features):
             _require_image(im, f"candidate {i}")
-    direct = features_or_reason(query, cfg)
-    mirrored: list[Features] = []  # filled on first need, then reused for every candidate
+    direct = query.direct
     out = []
     for im in candidates:
         if direct.reason:
@@ -195,11 +232,9 @@ def verify_candidates(
         if target.reason:
             out.append(Verification(False, reason=f"candidate: {target.reason}"))
             continue
-        result = match_features(direct, target, cfg)
+        result = query.match(target, mirrored=False)
         if not result.verified and cfg.try_mirrored:
-            if not mirrored:
-                mirrored.append(extract_features(query, cfg, mirror=True))
-            flipped = match_features(mirrored[0], target, cfg)
+            flipped = query.match(target, mirrored=True)
             result = flipped if flipped.verified or flipped.inliers > result.inliers else result
         out.append(result)
     return out
@@ -262,22 +297,31 @@ def ratio_matches(query: Features, candidate: Features, ratio: float) -> np.ndar
     """(m, 2) index pairs (query keypoint, candidate keypoint) that pass Lowe's ratio test.
 
     One-to-one: when several query keypoints pick the same candidate keypoint only the
-    closest stays, so RANSAC cannot count one candidate point many times over.
+    closest stays (the lowest query index among equals), so RANSAC cannot count one candidate
+    point many times over. The two nearest candidate descriptors of each query descriptor
+    come from FAISS's exhaustive binary index (Hamming distance, like OpenCV's
+    BFMatcher(NORM_HAMMING), which tests/test_verify.py checks it against); everything after
+    is array arithmetic, so no Python object is made per keypoint.
     """
-    import cv2
+    import faiss
 
-    matcher = cv2.BFMatcher(cv2.NORM_HAMMING)
-    best: dict[int, tuple[float, int]] = {}
-    for pair in matcher.knnMatch(query.descriptors, candidate.descriptors, k=2):
-        if not pair:
-            continue
-        first = pair[0]
-        if len(pair) == 2 and first.distance >= ratio * pair[1].distance:
-            continue
-        if first.trainIdx not in best or first.distance < best[first.trainIdx][0]:
-            best[first.trainIdx] = (first.distance, first.queryIdx)
-    pairs = [(qi, ci) for ci, (_, qi) in best.items()]
-    return np.array(sorted(pairs), np.int64).reshape(-1, 2)
+    n, m = len(query.descriptors), len(candidate.descriptors)
+    if n == 0 or m == 0:
+        return np.zeros((0, 2), np.int64)
+    index = faiss.IndexBinaryFlat(8 * candidate.descriptors.shape[1])
+    index.add(np.ascontiguousarray(candidate.descriptors))
+    dist, nearest = index.search(np.ascontiguousarray(query.descriptors), min(2, m))
+    first = dist[:, 0].astype(np.float64)
+    keep = first < ratio * dist[:, 1] if m >= 2 else np.ones(n, bool)
+    qi = np.flatnonzero(keep)
+    ci, d = nearest[qi, 0].astype(np.int64), first[qi]
+    # One query keypoint per candidate keypoint: the closest, ties to the lowest query index.
+    order = np.lexsort((qi, d, ci))
+    qi, ci = qi[order], ci[order]
+    lead = np.ones(len(ci), bool)
+    lead[1:] = ci[1:] != ci[:-1]
+    pairs = np.stack([qi[lead], ci[lead]], axis=1)
+    return pairs[np.lexsort((pairs[:, 1], pairs[:, 0]))].reshape(-1, 2)
 
 
 def match_features(query: Features, candidate: Features, config: VerifyConfig = DEFAULT_VERIFY) -> Verification:

@@ -27,7 +27,8 @@ def _centre_crop(im: Image.Image, area: float) -> Image.Image:
 
 
 def _edits(im: Image.Image) -> dict[str, Image.Image]:
-    """Common ways a photo gets copied: the first four, then a mirror image, half the area, and a frame."""
+    """Common ways a photo gets copied: the first four, then a mirror image, one turned upside down
+    (Pillow's top-to-bottom flip), half the area, and a frame."""
     w, h = im.size
     return {
         "jpeg-q30": im,  # saved below at quality 30
@@ -35,12 +36,13 @@ def _edits(im: Image.Image) -> dict[str, Image.Image]:
         "resize-50%": im.resize((w // 2, h // 2), Image.Resampling.LANCZOS),
         "brighter": ImageEnhance.Brightness(im).enhance(1.3),
         "mirror": ImageOps.mirror(im),
+        "upside-down": ImageOps.flip(im),
         "crop-50%": _centre_crop(im, 0.5),
         "framed": ImageOps.expand(im, border=round(0.12 * max(w, h)), fill=(0, 0, 0)),
     }
 
 
-EDIT_KINDS = ("jpeg-q30", "crop-70%", "resize-50%", "brighter", "mirror", "crop-50%", "framed")
+EDIT_KINDS = ("jpeg-q30", "crop-70%", "resize-50%", "brighter", "mirror", "upside-down", "crop-50%", "framed")
 
 
 @pytest.fixture(scope="module")
@@ -83,6 +85,8 @@ def photo_store(tmp_path_factory):
     # The query's mirror image is searched too, and a mirrored match counts once verified
     # (indexer/query.py); the picture inside a frame is searched too (indexer/frames.py).
     "mirror", "crop-50%", "framed",
+    # A query whose best candidate does not verify is also searched turned upside down (indexer/query.py).
+    "upside-down",
 ])
 def test_transformed_scikit_image_photos_find_their_original_first(photo_store, kind):
     store_dir, queries = photo_store

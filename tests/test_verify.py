@@ -250,3 +250,60 @@ def test_overrides_reach_the_config():
     assert loose.verified
     strict = verify_pair(crop, im, min_inliers=loose.inliers + 1)
     assert not strict.verified and "too few" in strict.reason
+
+
+def _opencv_ratio_matches(query, candidate, ratio: float) -> np.ndarray:
+    """The same matching written with OpenCV's brute-force Hamming matcher (cv2.BFMatcher.knnMatch,
+    k=2), Lowe's ratio test and one query keypoint per candidate keypoint: the reference."""
+    import cv2
+
+    best: dict[int, tuple[float, int]] = {}
+    for pair in cv2.BFMatcher(cv2.NORM_HAMMING).knnMatch(query.descriptors, candidate.descriptors, k=2):
+        first = pair[0]
+        if len(pair) == 2 and first.distance >= ratio * pair[1].distance:
+            continue
+        if first.trainIdx not in best or first.distance < best[first.trainIdx][0]:
+            best[first.trainIdx] = (first.distance, first.queryIdx)
+    return np.array(sorted((qi, ci) for ci, (_, qi) in best.items()), np.int64).reshape(-1, 2)
+
+
+@pytest.mark.parametrize("pair", [("coffee", "crop"), ("astronaut", "mirror"), ("brick", "tile"), ("chelsea", "rocket")])
+def test_ratio_matches_agree_with_opencv_brute_force_matching(pair):
+    """FAISS's binary index finds the same ratio-test matches as OpenCV's BFMatcher on real photos:
+    a copy, a mirror image, a neighbouring tile and an unrelated photo."""
+    from indexer.verify import ratio_matches
+
+    name, kind = pair
+    im = photo(name)
+    w, h = im.size
+    other = {"crop": lambda: jpeg(im.crop((w // 5, h // 6, w, h)), 60),
+             "mirror": lambda: im.transpose(Image.Transpose.FLIP_LEFT_RIGHT),
+             "tile": lambda: tiles(im)[(1, 1)],
+             "rocket": lambda: photo("rocket")}[kind]()
+    cfg = VerifyConfig()
+    q, c = extract_features(other, cfg), extract_features(im, cfg)
+    for ratio in (0.7, cfg.ratio, 1.0):
+        assert np.array_equal(ratio_matches(q, c, ratio), _opencv_ratio_matches(q, c, ratio))
+
+
+def test_query_keypoints_found_once_give_the_same_verdicts():
+    """Verifying with the query's keypoints kept (verify.QueryFeatures) equals verifying the image."""
+    from indexer.verify import QueryFeatures
+
+    im = photo("coffee")
+    query = jpeg(im.crop((0, 0, 380, 300)), 70).transpose(Image.Transpose.FLIP_LEFT_RIGHT)
+    candidates = [im, photo("chelsea"), tiles(im)[(2, 2)]]
+    kept = QueryFeatures(query)
+    assert verify_candidates(kept, candidates) == verify_candidates(query, candidates)
+    assert verify_candidates(kept, candidates[:1])[0].mirrored  # found through the kept mirrored keypoints
+
+
+@pytest.mark.parametrize("name", ["astronaut", "coffee", "rocket"])
+def test_an_upside_down_copy_verifies_as_a_mirror_turned_half_a_turn(name):
+    """Pillow's top-to-bottom flip is the mirror image turned 180 degrees: verification finds it
+    mirrored, at a half turn, with the whole candidate as its box."""
+    im = photo(name)
+    v = verify_pair(jpeg(im.transpose(Image.Transpose.FLIP_TOP_BOTTOM), 75), im)
+    assert v.verified and v.mirrored, v.reason
+    assert abs(abs(v.angle) - 180) < 3
+    assert iou(v.box, (0, 0, *im.size)) > 0.95
