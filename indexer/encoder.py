@@ -18,8 +18,6 @@ import torch
 import torch.nn.functional as F
 from PIL import Image
 from torch import nn
-from torchvision.models import mobilenet_v3_small
-from torchvision.models.resnet import BasicBlock
 
 from .classic import DEFAULT_CLASSIC, check_classic, classic_descriptor, classic_dim, luma
 from .errors import UsageError
@@ -84,10 +82,35 @@ def _tiny_backbone() -> tuple[nn.Module, int]:
     return nn.Sequential(*layers), widths[-1]
 
 
+class BasicBlock(nn.Module):
+    """The two-convolution residual block of ResNet-18/34 (He et al. 2016): 3x3 conv, BN, ReLU,
+    3x3 conv, BN, plus the input (through `downsample` when the shape changes), then ReLU.
+
+    Written here, with the attribute names of torchvision's `BasicBlock` so that a saved model's
+    weights load into either, because importing torchvision costs about 1.8 s of every start-up
+    (its `ops` import `torch._dynamo`), most of a `nearsight similar` that answers in under a second
+    once loaded. tests/test_descriptor.py checks it against torchvision's block."""
+
+    def __init__(self, c_in: int, width: int, stride: int = 1, downsample: nn.Module | None = None):
+        super().__init__()
+        self.conv1 = nn.Conv2d(c_in, width, 3, stride=stride, padding=1, bias=False)
+        self.bn1 = nn.BatchNorm2d(width)
+        self.relu = nn.ReLU(inplace=True)
+        self.conv2 = nn.Conv2d(width, width, 3, stride=1, padding=1, bias=False)
+        self.bn2 = nn.BatchNorm2d(width)
+        self.downsample = downsample
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        identity = x if self.downsample is None else self.downsample(x)
+        out = self.relu(self.bn1(self.conv1(x)))
+        out = self.bn2(self.conv2(out))
+        return self.relu(out + identity)
+
+
 def _resnet_narrow_backbone(
     widths: Sequence[int] = (32, 64, 128, 256), depths: Sequence[int] = (1, 1, 1, 1)
 ) -> tuple[nn.Module, int]:
-    """A ResNet-10-like stack of torchvision `BasicBlock`s at half the usual width.
+    """A ResNet-10-like stack of `BasicBlock`s at half the usual width.
 
     Stem: 3x3 stride-2 conv + 3x3 stride-2 max-pool (total stride 32 with the
     stages), which keeps a 128 px input at a 4x4 final map.
@@ -113,6 +136,8 @@ def _mobilenet_backbone() -> tuple[nn.Module, int]:
     still be mostly their initial values and eval-mode outputs collapse to
     ~1e-7 (measured), so we use PyTorch's default 0.1.
     """
+    from torchvision.models import mobilenet_v3_small  # imported only for this architecture (1.8 s)
+
     features = mobilenet_v3_small(weights=None).features
     for module in features.modules():
         if isinstance(module, nn.BatchNorm2d):

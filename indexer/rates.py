@@ -15,9 +15,9 @@ and b are fitted by Poisson maximum likelihood on binned counts.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from statistics import NormalDist
 
 import numpy as np
-from scipy import optimize, stats
 
 from .errors import UsageError
 
@@ -29,7 +29,7 @@ def wilson_interval(k, n, confidence: float = 0.95) -> tuple[np.ndarray, np.ndar
     """
     k = np.asarray(k, dtype=np.float64)
     n = np.asarray(n, dtype=np.float64)
-    z = stats.norm.ppf(0.5 + confidence / 2)
+    z = NormalDist().inv_cdf(0.5 + confidence / 2)  # the standard normal quantile, as scipy.stats.norm.ppf
     with np.errstate(invalid="ignore", divide="ignore"):
         p = np.where(n > 0, k / np.where(n > 0, n, 1), 0.0)
         denom = 1 + z**2 / n
@@ -73,6 +73,8 @@ class MixtureFit:
         """P(a hit scoring s is a real duplicate): the mixture's duplicate term over both terms at s,
         D p(s) / (D p(s) + exp(a - b s)), with p the positives' density as the fit measured it (their
         Gaussian KDE, a share `pos_mass_above_floor` of it above the floor)."""
+        from scipy import stats  # imported on use: scipy.stats costs ~2 s of start-up
+
         s = np.asarray(s, dtype=np.float64)
         density = stats.gaussian_kde(np.asarray(positive_scores, dtype=np.float64))(s.ravel()).reshape(s.shape)
         duplicates = self.dup_hits * density / max(self.pos_mass_above_floor, 1e-12)
@@ -101,6 +103,8 @@ def fit_mixture(hit_scores: np.ndarray, positive_scores: np.ndarray, floor: floa
     counts, _ = np.histogram(hit_scores, bins=edges)
     # Density of positive scores per bin, smoothed with a Gaussian KDE so that
     # empty bins between measured scores do not force a zero.
+    from scipy import optimize, stats  # imported on use: scipy.stats costs ~2 s of start-up
+
     kde = stats.gaussian_kde(positive_scores)
     pos_bins = np.array([kde.integrate_box_1d(lo, hi) for lo, hi in zip(edges[:-1], edges[1:])])
     pos_above = float(pos_bins.sum())

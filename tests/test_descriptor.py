@@ -87,3 +87,33 @@ def test_model_files_remember_input_standardisation_and_classical_part(tmp_path)
     np.testing.assert_allclose(embed_images(loaded, images, 64), embed_images(encoder, images, 64), atol=1e-6)
     with pytest.raises(UsageError):
         create_encoder("tiny", 16, input_norm="per-channel")
+
+
+@pytest.mark.parametrize("c_in, width, stride", [(32, 32, 1), (32, 64, 2)])
+def test_residual_block_equals_torchvision_basic_block_with_the_same_weights(c_in, width, stride):
+    """Reference: torchvision.models.resnet.BasicBlock. Ours keeps its attribute names, so the same
+    state dict loads into both, and both give the same output in training and in eval mode."""
+    from torch import nn
+    from torchvision.models.resnet import BasicBlock as Reference
+
+    from indexer.encoder import BasicBlock
+
+    def downsample():
+        if stride == 1 and c_in == width:
+            return None
+        return nn.Sequential(nn.Conv2d(c_in, width, 1, stride=stride, bias=False), nn.BatchNorm2d(width))
+
+    torch.manual_seed(0)
+    ours, ref = BasicBlock(c_in, width, stride, downsample()), Reference(c_in, width, stride, downsample())
+    with torch.no_grad():  # non-trivial batch-norm statistics, so eval mode is a real check
+        for m in ref.modules():
+            if isinstance(m, nn.BatchNorm2d):
+                m.running_mean.uniform_(-0.5, 0.5)
+                m.running_var.uniform_(0.5, 2.0)
+                m.weight.uniform_(0.5, 1.5)
+    ours.load_state_dict(ref.state_dict())  # strict: the same names and shapes
+    x = torch.randn(4, c_in, 16, 16)
+    for mode in (True, False):
+        ours.train(mode)
+        ref.train(mode)
+        torch.testing.assert_close(ours(x.clone()), ref(x.clone()))
