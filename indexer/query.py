@@ -146,13 +146,14 @@ class Searcher:
         return self.whitening.apply(embed_images(self.encoder, images, self.size))
 
     def neighbours(self, xq: np.ndarray, k: int, threshold: float | None = None, *,
-                   catalog=None, exclude: Collection[int] = (), images=None) -> list[list[dict]]:
+                   catalog=None, exclude: Collection[int] = (), excludes: Sequence[Collection[int]] | None = None,
+                   images=None) -> list[list[dict]]:
         """Top-k neighbours for each query vector, as dicts with id, path, similarity,
         descriptor_similarity, evidence, duplicate and probability.
 
         `catalog` is the connection to read paths with (SQLite connections belong to one thread:
         a multi-threaded caller passes its own; default the store's). Ids in `exclude` are left
-        out, and k more are asked for so that k remain. With the query `images` (one per row of
+        out, and k more are asked for so that k remain; `excludes` gives each query row its own. With the query `images` (one per row of
         `xq`), the best `verify_top` candidates are verified and re-ranked (indexer/rerank.py);
         a query whose best candidate is still unverified then has its other views searched (its
         mirror image, the picture inside its frame) and `verify_more` more candidates verified.
@@ -160,15 +161,18 @@ class Searcher:
         catalog = catalog if catalog is not None else self.store.catalog
         # The background statistic needs k + 1 neighbours and more for the copies it skips.
         wanted = max(k, BACKGROUND_SEARCH) if self.score_norm else max(k, self.verify_top + self.verify_more)
-        n = wanted + len(exclude)
-        rows = self._search(xq, n, exclude)
+        excludes = [set(e) for e in excludes] if excludes is not None else [set(exclude)] * len(xq)
+        if len(excludes) != len(xq):
+            raise ValueError(f"{len(excludes)} exclusion sets for {len(xq)} queries")
+        n = wanted + max((len(e) for e in excludes), default=0)
+        rows = self._search(xq, n, excludes)
         verifying = images is not None and self.verify_top > 0
         # The background statistic comes from the image as given: other views' scores are not its background.
         shifts = [self.score_norm * background_statistic([d for d, _ in kept], copy_threshold=self.threshold)
                   for kept in rows]
         if images is not None and self.mirror_view == "max":
             rows = [[(d, i) for d, _, i in _better_of(kept, more)]
-                    for kept, more in zip(rows, self._mirror_rows(images, n, exclude))]
+                    for kept, more in zip(rows, self._mirror_rows(images, n, excludes))]
         head = self.verify_top
         # Every candidate verification may reach is answered (cut to k at the end): the best result
         # must not depend on k.
@@ -185,7 +189,7 @@ class Searcher:
                        if not (results and (results[0].get("evidence") or {}).get("verified"))]
             if pending:
                 again = self._other_views([images[q] for q in pending], [keys[q] for q in pending],
-                                          [rows[q] for q in pending], n, exclude, reach,
+                                          [rows[q] for q in pending], n, [excludes[q] for q in pending], reach,
                                           [shifts[q] for q in pending], catalog)
                 for q, results in zip(pending, again):
                     out[q] = results
@@ -204,7 +208,7 @@ class Searcher:
                  for d, m, i in kept]
                 for kept, shift in zip(merged, shifts)]
 
-    def _other_views(self, images, keys, rows, n: int, exclude: Collection[int], reach: int, shifts, catalog):
+    def _other_views(self, images, keys, rows, n: int, excludes: list[set[int]], reach: int, shifts, catalog):
         """The answers of queries whose best candidate did not verify among the first `verify_top`:
         candidates their other views find join the direct ones (`_better_of`), the mirrored query is
         tried too, and verification goes on to `verify_more` more (`keys`: the queries' kept
@@ -215,34 +219,34 @@ class Searcher:
             # scores like a copy there, while the other half of a symmetric subject (two wings of one
             # butterfly in two files), which verification would also confirm as mirrored, does not.
             extra = [[(d, i) for d, i in found if d >= self.threshold]
-                     for found in self._flipped_rows(images, n, exclude)]
+                     for found in self._flipped_rows(images, n, excludes)]
         if self.frame_views:
-            extra = self._with_frame_views(images, extra, n, exclude)
+            extra = self._with_frame_views(images, extra, n, excludes)
         # Another view's candidate takes a place only among those verification checks, and keeps it only
         # when verified (`_settle_views`): a view may not raise a look-alike's score on its own.
         out = self._answers([_better_of(kept, more, self.verify_top)[:reach] for kept, more in zip(rows, extra)],
                             shifts, catalog)
         return self._verified(keys, out, catalog, more=True)
 
-    def _search(self, xq: np.ndarray, n: int, exclude: Collection[int]) -> list[list[tuple[float, int]]]:
-        """Per query row, its (similarity, id) neighbours best first, ids in `exclude` left out."""
+    def _search(self, xq: np.ndarray, n: int, excludes: Sequence[Collection[int]]) -> list[list[tuple[float, int]]]:
+        """Per query row, its (similarity, id) neighbours best first, the ids of its set in `excludes` left out."""
         D, I = faiss_index.search(self.index, np.ascontiguousarray(xq, dtype=np.float32), n)
         return [[(float(d), int(i)) for d, i in zip(d_row, i_row) if i >= 0 and int(i) not in exclude]
-                for d_row, i_row in zip(D, I)]
+                for d_row, i_row, exclude in zip(D, I, excludes)]
 
-    def _mirror_rows(self, images, n: int, exclude: Collection[int]) -> list[list[tuple[float, int]]]:
+    def _mirror_rows(self, images, n: int, excludes) -> list[list[tuple[float, int]]]:
         """`_search` of each query image's mirror image."""
-        return self._search(self.vectors_for_images([ImageOps.mirror(im) for im in images]), n, exclude)
+        return self._search(self.vectors_for_images([ImageOps.mirror(im) for im in images]), n, excludes)
 
-    def _flipped_rows(self, images, n: int, exclude: Collection[int]) -> list[list[tuple[float, int]]]:
+    def _flipped_rows(self, images, n: int, excludes) -> list[list[tuple[float, int]]]:
         """Per query image, `_search` of its mirror image and of it turned upside down (flipped top to
         bottom), in one forward pass, each id with the better of its two similarities."""
         views = [ImageOps.mirror(im) for im in images] + [ImageOps.flip(im) for im in images]
-        found = self._search(self.vectors_for_images(views), n, exclude)
+        found = self._search(self.vectors_for_images(views), n, list(excludes) * 2)
         return [[(d, i) for d, _, i in _better_of(a, b)] for a, b in zip(found[: len(images)], found[len(images):])]
 
     def _with_frame_views(self, images, extra: list[list[tuple[float, int]]], n: int,
-                          exclude: Collection[int]) -> list[list[tuple[float, int]]]:
+                          excludes) -> list[list[tuple[float, int]]]:
         """`extra` (per query, candidates found through other views) with each framed query image
         (indexer/frames.py) searched once more as the picture inside its frame. Images without a frame,
         most of them, cost one scan of their edges."""
@@ -251,7 +255,7 @@ class Searcher:
         framed = [(row, view) for row, view in enumerate(map(inside_frame, images)) if view is not None]
         if not framed:
             return extra
-        found = self._search(self.vectors_for_images([view for _, view in framed]), n, exclude)
+        found = self._search(self.vectors_for_images([view for _, view in framed]), n, [excludes[row] for row, _ in framed])
         extra = list(extra)
         for (row, _), more in zip(framed, found):
             extra[row] = [(d, i) for d, _, i in _better_of(extra[row], more)]

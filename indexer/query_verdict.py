@@ -166,10 +166,10 @@ def negative_answers(searcher, queries: list[tuple[int, object]], dups: dict[int
     negatives, verified = [], []
     for start in range(0, len(queries), 32):
         block = queries[start : start + 32]
-        xq = searcher.vectors_for_images([im for _, im in block])
-        for (file_id, image), x in zip(block, xq):
-            exclude = {file_id} | dups.get(file_id, set())
-            results = searcher.neighbours(x[None, :], ANSWERED, exclude=exclude, images=[image])[0]
+        images = [im for _, im in block]
+        excludes = [{file_id} | dups.get(file_id, set()) for file_id, _ in block]
+        answers = searcher.neighbours(searcher.vectors_for_images(images), ANSWERED, excludes=excludes, images=images)
+        for (file_id, _), results in zip(block, answers):
             if results:
                 best = results[0]
                 (verified if (best.get("evidence") or {}).get("verified") else negatives).append({"query": file_id, **best})

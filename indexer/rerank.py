@@ -18,7 +18,8 @@ same benchmark µAP 0.925 -> 0.945, crops' recall@1 0.72 -> 0.80 (benchmarks/res
 the store of benchmarks/results/quality.md).
 
 Candidates are read from the store's small copies (256 px by default), so verification
-never opens a user's original file at query time.
+never opens a user's original file at query time. A query's keypoints, and every match of
+them against a candidate, are found once (verify.QueryFeatures) however many rounds ask.
 """
 
 from __future__ import annotations

@@ -132,6 +132,27 @@ def test_a_collection_without_duplicates_flags_copies_and_says_so(distinct_store
         assert 0.0 <= best["probability"] <= 1.0 and best["probability"] >= answers[q]["results"][1]["probability"]
 
 
+def test_per_query_exclusions_in_one_batch_answer_as_one_query_at_a_time(distinct_store):
+    """Calibration asks its negatives in batches, each query without its own file: the answers must be
+    those of asking each query alone with its exclusion (the reference: the same call, one by one)."""
+    from indexer.images import read_image
+
+    store_dir, copies, others = distinct_store
+    with Store.open(store_dir, settings=load_settings(environ={})) as store:
+        searcher = Searcher(store)
+        paths = [orig for _, orig in copies[:6]] + others[:2]
+        images = [read_image(p, max_side=2 * searcher.size)[0] for p in paths]
+        ids = {Path(p).name: i for i, p in store.catalog.paths_for(range(1, 200)).items()}
+        excludes = [{ids[Path(p).name]} if Path(p).name in ids else set() for p in paths]
+        xq = searcher.vectors_for_images(images)
+        batched = searcher.neighbours(xq, 4, excludes=excludes, images=images)
+        alone = [searcher.neighbours(xq[i : i + 1], 4, exclude=excludes[i], images=[images[i]])[0]
+                 for i in range(len(paths))]
+    assert batched == alone
+    assert all(not (e & {r["id"] for r in results}) for e, results in zip(excludes, batched))
+    assert sum(bool(e) for e in excludes) == 6  # the six indexed files really were left out of their own answers
+
+
 def test_similar_json_carries_probability_beside_similarity(distinct_store, run_cli):
     store_dir, copies, _ = distinct_store
     proc = run_cli("similar", copies[0][0], "--store", store_dir, "--json", "-k", "2", check_exit=0)
