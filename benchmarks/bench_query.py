@@ -94,8 +94,9 @@ def main() -> int:
         "",
         f"Command: `.venv/bin/python benchmarks/bench_query.py --work {args.work}` ({len(paths)} queries of the "
         f"quality benchmark, batches of {args.batch}, against its store `{args.store}`: top 10, score "
-        "normalisation, the query's mirror image and the picture inside a frame searched too, geometric "
-        "verification of the best 3 on the small copies"
+        "normalisation, geometric verification of the best 3 on the small copies; for a query whose best did "
+        "not verify, its mirror image, itself upside down and the picture inside a frame searched too, its "
+        "mirrored keypoints tried and 12 more candidates verified"
         + (f"; settings changed: {', '.join(args.set)}" if args.set else "") + ").",
         "",
         "| stage | ms per query: keypoints forgotten before every batch | ... kept from the pass's start | "
