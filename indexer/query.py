@@ -153,10 +153,11 @@ class Searcher:
 
         `catalog` is the connection to read paths with (SQLite connections belong to one thread:
         a multi-threaded caller passes its own; default the store's). Ids in `exclude` are left
-        out, and k more are asked for so that k remain; `excludes` gives each query row its own. With the query `images` (one per row of
-        `xq`), the best `verify_top` candidates are verified and re-ranked (indexer/rerank.py);
-        a query whose best candidate is still unverified then has its other views searched (its
-        mirror image, the picture inside its frame) and `verify_more` more candidates verified.
+        out, and k more are asked for so that k remain; `excludes` gives each query row its own set
+        instead. With the query `images` (one per row of `xq`), the best `verify_top` candidates are
+        verified and re-ranked (indexer/rerank.py); a query whose best candidate is still unverified
+        then has its other views searched (its mirror image, itself upside down, the picture inside
+        its frame), its mirrored keypoints tried and `verify_more` more candidates verified.
         `duplicate` follows the query verdict (`judge`) unless a `threshold` is given."""
         catalog = catalog if catalog is not None else self.store.catalog
         # The background statistic needs k + 1 neighbours and more for the copies it skips.
