@@ -89,6 +89,22 @@ class BuiltStore:
         shutil.copytree(self.template, dest)
         return dest
 
+    def copy_with_archive(self, name: str) -> Path:
+        """A copy of the store whose catalog points at its own copy of the archive (beside it, files'
+        sizes and modification times kept): for a test that moves files, such as a quarantine with
+        apply, so that the shared archive stays whole whatever order the tests run in."""
+        import sqlite3
+
+        dest = self.copy(name)
+        archive = dest.parent / f"{dest.name}-archive"
+        shutil.copytree(self.archive, archive)  # copy2: sizes and mtimes kept, so the scan sees no change
+        with sqlite3.connect(dest / "catalog.sqlite") as conn:
+            moved = conn.execute("UPDATE sources SET root = ? WHERE root = ?",
+                                 (str(archive.resolve()), str(self.archive.resolve()))).rowcount
+        conn.close()
+        assert moved == 1, f"the template's catalog does not name {self.archive}"
+        return dest
+
 
 def build_store(work: Path) -> BuiltStore:
     from indexer.pipeline import run_index

@@ -19,8 +19,9 @@ from .service_support import API_KEY, ServerProcess
 
 @pytest.fixture
 def server(service_store):
-    """A server of its own on a copy of the store: the verdicts a test posts reach no other test."""
-    process = ServerProcess(service_store.copy("verdicts")).start()
+    """A server of its own on a copy of the store and of its archive: the verdicts a test posts, and
+    the files its quarantine moves, reach no other test."""
+    process = ServerProcess(service_store.copy_with_archive("verdicts")).start()
     yield process
     process.stop()
 
