@@ -196,6 +196,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=7, help="generator seed (default: 7)")
     p.add_argument("--originals", type=int, default=160, help="number of original photos (default: 160)")
     p.add_argument("--train-minutes", type=float, default=3.0, help="training budget (default: 3)")
+    p.add_argument("--train-epochs", type=float,
+                   help="training budget in passes over the archive instead of minutes: the same encoder on a "
+                        "busy or an idle machine")
     p.add_argument("--json", action="store_true", help="print the report as JSON")
     p.add_argument("--no-progress", action="store_true", help="no progress bar, even on a terminal")
     p.set_defaults(func=commands.cmd_demo)

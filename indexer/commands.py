@@ -408,7 +408,7 @@ def cmd_demo(args) -> int:
     from .demo import run_demo
 
     report = run_demo(Path(args.out), seed=args.seed, originals=args.originals, progress=_progress(args),
-                      train_minutes=args.train_minutes)
+                      train_minutes=args.train_minutes, train_epochs=args.train_epochs)
     if args.json:
         print_json(report)
     else:

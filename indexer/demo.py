@@ -112,7 +112,7 @@ def pair_quality(store: Store, truth: dict, thresholds: dict[str, float]) -> dic
 
 
 def run_demo(out: Path, *, seed: int = 7, originals: int = 160, progress: bool | None = None,
-             train_minutes: float = 3.0) -> dict:
+             train_minutes: float = 3.0, train_epochs: float | None = None) -> dict:
     from .generations import current
     from .train import TrainConfig
 
@@ -121,7 +121,9 @@ def run_demo(out: Path, *, seed: int = 7, originals: int = 160, progress: bool |
     archive = out / truth["root"]
     store_dir = out / "store"
     with Store.open(store_dir, create=True) as store:
-        summary = run_index(store, [archive], progress=progress, train_config=TrainConfig(minutes=train_minutes))
+        # An epoch budget replaces the time budget: the same encoder however busy the machine is.
+        budget = {"minutes": None, "epochs": train_epochs} if train_epochs else {"minutes": train_minutes}
+        summary = run_index(store, [archive], progress=progress, train_config=TrainConfig(**budget))
         status = store_status(store)
         files = store.catalog.files_with_hashes()
         gen = current(store)
