@@ -5,6 +5,9 @@ VENV ?= .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 PYTEST_ARGS ?=
+# Test processes: one a core on this project's 2-core machines (pytest-xdist); a test module stays in
+# one process (--dist loadfile), so module fixtures such as a trained store are built once.
+TEST_WORKERS ?= 2
 
 .PHONY: demo test install clean-venv
 
@@ -21,7 +24,7 @@ demo: $(STAMP)
 # pytest exits 5 when a selection (e.g. -k) matches no test: not a failure.
 test: $(STAMP)
 	bash scripts/system-deps.sh
-	$(BIN)/python -m pytest $(PYTEST_ARGS); rc=$$?; if [ $$rc -eq 5 ]; then exit 0; fi; exit $$rc
+	$(BIN)/python -m pytest -n $(TEST_WORKERS) --dist loadfile $(PYTEST_ARGS); rc=$$?; if [ $$rc -eq 5 ]; then exit 0; fi; exit $$rc
 
 clean-venv:
 	rm -rf $(VENV)
