@@ -134,6 +134,7 @@ class Searcher:
         self.frame_views = bool(store.settings.frame_views)
         self.mirror_view = str(store.settings.mirror_view)
         self.verify_more = int(store.settings.verify_more) if self.verify_top else 0
+        self.verify_fine = int(store.settings.verify_fine) if self.verify_top else 0
 
     @property
     def verdict_threshold(self) -> float:
@@ -157,7 +158,8 @@ class Searcher:
         instead. With the query `images` (one per row of `xq`), the best `verify_top` candidates are
         verified and re-ranked (indexer/rerank.py); a query whose best candidate is still unverified
         then has its other views searched (its mirror image, itself upside down, the picture inside
-        its frame), its mirrored keypoints tried and `verify_more` more candidates verified.
+        its frame), its mirrored keypoints tried and `verify_more` more candidates verified, and, when none
+        confirms, its first `verify_fine` unconfirmed ones checked at twice the side (`rerank.rerank_fine`).
         `duplicate` follows the query verdict (`judge`) unless a `threshold` is given."""
         catalog = catalog if catalog is not None else self.store.catalog
         # The background statistic needs k + 1 neighbours and more for the copies it skips.
@@ -284,7 +286,7 @@ class Searcher:
     def _verified(self, queries, answers: list[list[dict]], catalog, *, more: bool) -> list[list[dict]]:
         """`rerank_all` of the answers (`queries`: images or their rerank.query_features): the first
         `verify_top` of each by the query as given; with `more`, by its mirror image too and, when the
-        best is still unverified, the next `verify_more`."""
+        best is still unverified, the next `verify_more`, then the fine check of `verify_fine`."""
         from .rerank import rerank_all
 
         reach = self.verify_top + (self.verify_more if more else 0)
@@ -292,7 +294,7 @@ class Searcher:
         sources = catalog.pixel_sources(wanted)
         candidates = {i: str(self.store.pixels_path(row)) for i, row in sources.items()}
         return rerank_all(queries, answers, candidates, self.verify_top, more=self.verify_more if more else 0,
-                          mirrored=more)
+                          mirrored=more, fine=self.verify_fine if more else 0)
 
     def _own_image(self, file_id: int, catalog):
         """A catalogued image's pixels, from its small copy when there is one (None if unreadable)."""

@@ -200,6 +200,14 @@ SETTINGS: tuple[Setting, ...] = (
         "benchmark: µAP 0.925 -> 0.945, crops' recall@1 0.72 -> 0.80; 0 turns it off.",
     ),
     Setting(
+        "verify_fine",
+        6,
+        _positive_int,
+        "When a query's best candidate is still not verified after verify_more, its first this many "
+        "unconfirmed candidates are checked again with the candidate's small copy at twice the side and "
+        "four times the keypoints, so that a hard crop meets its original at its own scale. 0 turns it off.",
+    ),
+    Setting(
         "score_norm",
         1.0,
         _fraction,
