@@ -160,14 +160,16 @@ def rerank_fine(query, results: list[dict], candidates: dict[int, str], count: i
     one that is not keeps what it had. `query`: an image or its `query_features` (at VERIFY_SIDE)."""
     from .verify import verify_candidates
 
+    query = query_features(query)
+    if query.direct.reason:  # a query too small or flat for keypoints: no candidate could verify
+        return results
     pending = [r for r in results if r["id"] in candidates and not (r.get("evidence") or {}).get("verified")][:count]
     known = small_features({r["id"]: candidates[r["id"]] for r in pending}, fine=True)
     checked = [r for r in pending if r["id"] in known]
     if not checked:
         return results
     features = [known[r["id"]] for r in checked]
-    for r, f, v in zip(checked, features, verify_candidates(query_features(query), features,
-                                                             config=verify_config(mirrored))):
+    for r, f, v in zip(checked, features, verify_candidates(query, features, config=verify_config(mirrored))):
         if v.verified:
             _record(r, v, f.size, threshold)
     return sorted(results, key=lambda r: -r["similarity"])

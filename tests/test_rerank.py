@@ -168,3 +168,13 @@ def test_the_fine_check_runs_only_when_the_best_is_still_unconfirmed(fifths):
                              {3: small, 1: strip}, top=1, more=0, fine=2)
     assert copy_first[0]["id"] == 3 and copy_first[0]["evidence"]["verified"]
     assert copy_first[1]["evidence"] is None
+
+
+def test_the_fine_check_leaves_a_query_without_keypoints_as_it_was(fifths):
+    """A flat grey query has no ORB keypoints (nothing for FAST to find): no candidate is read or changed."""
+    from indexer.rerank import rerank_fine
+
+    small = fifths["astronaut"][0]
+    results = [{"id": 1, "similarity": 0.7, "evidence": None}]
+    out = rerank_fine(Image.new("RGB", (300, 200), (128, 128, 128)), [dict(r) for r in results], {1: small}, count=1)
+    assert out == results
