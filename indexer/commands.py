@@ -57,10 +57,7 @@ def train_config(args, **extra):
 
     given = {name: getattr(args, name, None) for name in
              ("arch", "dim", "size", "batch_size", "temperature", "queue_len", "minutes", "epochs", "seed")}
-    values = {k: v for k, v in {**given, **extra}.items() if v is not None}
-    if "epochs" in values and "minutes" not in values:
-        values["minutes"] = None  # an explicit epoch budget replaces the default time budget
-    return TrainConfig(**values)
+    return TrainConfig.from_options(**{**given, **{k: v for k, v in extra.items() if v is not None}})
 
 
 # -- index, status --------------------------------------------------------------------

@@ -121,9 +121,8 @@ def run_demo(out: Path, *, seed: int = 7, originals: int = 160, progress: bool |
     archive = out / truth["root"]
     store_dir = out / "store"
     with Store.open(store_dir, create=True) as store:
-        # An epoch budget replaces the time budget: the same encoder however busy the machine is.
-        budget = {"minutes": None, "epochs": train_epochs} if train_epochs else {"minutes": train_minutes}
-        summary = run_index(store, [archive], progress=progress, train_config=TrainConfig(**budget))
+        config = TrainConfig.from_options(epochs=train_epochs, minutes=None if train_epochs else train_minutes)
+        summary = run_index(store, [archive], progress=progress, train_config=config)
         status = store_status(store)
         files = store.catalog.files_with_hashes()
         gen = current(store)

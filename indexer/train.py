@@ -120,6 +120,16 @@ class TrainConfig:
             values["recipe"] = ViewRecipe.from_dict(values["recipe"])
         return cls(**values)
 
+    @classmethod
+    def from_options(cls, **values) -> "TrainConfig":
+        """A config from the options a person gave (None = not given, the default stays). An epoch
+        budget given without minutes replaces the default time budget: then the same encoder comes
+        out however busy the machine is."""
+        values = {k: v for k, v in values.items() if v is not None}
+        if "epochs" in values and "minutes" not in values:
+            values["minutes"] = None
+        return cls(**values)
+
     def validate(self) -> None:
         checks = [
             (self.size >= 32, f"size must be >= 32 pixels, got {self.size}"),

@@ -233,6 +233,18 @@ def test_bad_training_settings_are_refused(collection, tmp_path):
     assert not any(tmp_path.iterdir())  # refused before anything was written
 
 
+def test_an_epoch_budget_given_alone_replaces_the_default_minutes():
+    """The rule the CLI and the demo share: options not given keep their defaults, and epochs given
+    without minutes make the budget independent of the machine's speed."""
+    default = TrainConfig()
+    assert default.minutes is not None and default.epochs is None
+    alone = TrainConfig.from_options(epochs=8, arch=None)
+    assert (alone.minutes, alone.epochs, alone.arch) == (None, 8, default.arch)
+    both = TrainConfig.from_options(epochs=8, minutes=2.5)
+    assert (both.minutes, both.epochs) == (2.5, 8)
+    assert TrainConfig.from_options(minutes=None) == default
+
+
 def test_views_shape_and_recipe_round_trip():
     recipe = ViewRecipe(border_p=1.0, overlay_p=1.0, jpeg_p=1.0, blur_p=1.0, rotate_p=1.0)
     assert ViewRecipe.from_dict(json.loads(json.dumps(recipe.to_dict()))) == recipe
