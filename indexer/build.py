@@ -24,6 +24,7 @@ from .groups import build_groups, summarize
 from .images import read_image
 from .model import read_card
 from .pause import pause_at
+from .regions import regions_extra, regions_for_generation
 from .store import Store
 from .whiten import fit_whitening
 
@@ -156,6 +157,7 @@ def build_generation(store: Store, model_dir, *, t_near: float, t_similar: float
     rng = np.random.default_rng(0)
     sample = xb[rng.choice(len(xb), min(TUNE_QUERIES, len(xb)), replace=False)]
     tuning = faiss_index.tune_search(index, sample, xb=xb, ids=ids)
+    regions = regions_for_generation(store, model, whitening)
     stages = {"index": round(time.monotonic() - started, 3)}
     pause_at("index")
     n = int(len(ids))
@@ -173,8 +175,9 @@ def build_generation(store: Store, model_dir, *, t_near: float, t_similar: float
     }
     thresholds, extra = calibrate_thresholds(store, model_dir, index, ids, xb, whitening, meta, stages,
                                              t_near=t_near, t_similar=t_similar, threshold_source=threshold_source,
-                                             calibration=calibration)
+                                             calibration=calibration, regions=regions)
     extra[generations.WHITENING_FILE] = whitening.to_bytes()
+    regions_extra(*regions, meta, extra)
     started = time.monotonic()
     a, b, sims = with_verified_pairs(store, index, ids, xb, compute_pairs(index, ids, xb, thresholds["similar"]),
                                      thresholds)
@@ -186,7 +189,7 @@ def build_generation(store: Store, model_dir, *, t_near: float, t_similar: float
 
 
 def calibrate_thresholds(store, model_dir, index, ids, xb, whitening, meta, stages, *, t_near, t_similar,
-                         threshold_source, calibration, required: bool = False) -> tuple[dict, dict]:
+                         threshold_source, calibration, required: bool = False, regions=(None, 0)) -> tuple[dict, dict]:
     """The generation's thresholds: calibrated when `calibration` is given and the collection allows,
     else those given. Returns (thresholds, calibration files for the generation); records the outcome
     in `meta` (``calibration``, and ``build.since_calibration`` for the nightly reuse rule)."""
@@ -200,7 +203,7 @@ def calibrate_thresholds(store, model_dir, index, ids, xb, whitening, meta, stag
         meta.setdefault("build", {})["since_calibration"] = {"indexed": int(len(ids)), "changes": 0}
         try:
             result = calibrate(store, model_dir=model_dir, index=index, ids=ids, xb=xb, whitening=whitening,
-                               config=calibration)
+                               config=calibration, regions=regions)
         except NotReadyError as exc:
             if required:
                 raise
@@ -253,11 +256,13 @@ def recalibrate(store: Store, config, *, keep: int = 3) -> dict:
     meta["calibrated_from"] = gen.name
     meta["build"] = {**gen.meta.get("build", {}), "kind": "recalibrated", "reason": "nearsight calibrate"}
     stages: dict = {}
+    regions = gen.load_regions()
     thresholds, extra = calibrate_thresholds(
         store, model_dir, index, ids, xb, whitening, meta, stages, t_near=gen.meta["thresholds"]["near"],
         t_similar=gen.meta["thresholds"]["similar"], threshold_source=gen.meta["thresholds"].get("source", "default"),
-        calibration=config, required=True)
+        calibration=config, required=True, regions=regions)
     extra[generations.WHITENING_FILE] = whitening.to_bytes()
+    regions_extra(*regions, meta, extra)
     a, b, sims = with_verified_pairs(store, index, ids, xb, compute_pairs(index, ids, xb, thresholds["similar"]),
                                      thresholds)
     groups = groups_from_pairs(store, ids, xb, a, b, sims, t_near=thresholds["near"], t_similar=thresholds["similar"],

@@ -259,12 +259,12 @@ def per_kind_recall(scores: np.ndarray, kinds: list[str], t: float) -> dict:
 
 
 def _query_verdict(store, index, whitening, encoder, card, ids, meta, same_pairs, near_copies, near_threshold,
-                   config: CalibrationConfig, rng) -> tuple[dict | None, dict]:
+                   config: CalibrationConfig, rng, regions=(None, 0)) -> tuple[dict | None, dict]:
     """The query verdict (query_verdict.py), asked through the searcher that will answer users."""
     from .query import Searcher
 
     edited, targets, xq = near_copies
-    searcher = Searcher.for_build(store, index, whitening, encoder, card, near_threshold)
+    searcher = Searcher.for_build(store, index, whitening, encoder, card, near_threshold, regions=regions)
     strengths, kinds = TIER_EDITS["near"]
 
     def edit(image, rng):
@@ -298,8 +298,9 @@ def grouping_threshold(near: dict, query: dict | None, n_images: int) -> dict:
 
 # -- the whole calibration -------------------------------------------------------------------
 def calibrate(store: Store, *, model_dir: Path, index, ids: np.ndarray, xb: np.ndarray, whitening,
-              config: CalibrationConfig | None = None, progress=None) -> dict:
-    """Calibrate every tier for the index over (ids, xb) (whitened vectors); returns calibration.json's content."""
+              config: CalibrationConfig | None = None, progress=None, regions=(None, 0)) -> dict:
+    """Calibrate every tier for the index over (ids, xb) (whitened vectors); returns calibration.json's content.
+    `regions`: the generation's region index and grid (indexer/regions.py), searched as users' queries will."""
     from .model import load_model
     from .verdicts import verdict_report
 
@@ -349,7 +350,7 @@ def calibrate(store: Store, *, model_dir: Path, index, ids: np.ndarray, xb: np.n
         raise NotReadyError("calibration could not separate copies from other pairs in this collection "
                             f"({len(hits)} close pairs above {floor:.3f}); the default thresholds stay")
     query, query_samples = _query_verdict(store, index, whitening, encoder, card, ids, meta, same_pairs, near_copies,
-                                          tiers["near"]["threshold"], config, rng)
+                                          tiers["near"]["threshold"], config, rng, regions)
     tiers["near"]["threshold_pairs"] = tiers["near"]["threshold"]
     groups = grouping_threshold(tiers["near"], query, n)
     tiers["near"]["threshold"] = groups["threshold"]

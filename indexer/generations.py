@@ -49,6 +49,7 @@ CALIBRATION_FILE = "calibration.json"
 CALIBRATION_EXTRAS = ("calibration.png", "calibration.txt")
 ITEMS_FILE = "items.npz"
 PAIRS_FILE = "pairs.npz"
+REGIONS_FILE = "regions.faiss"  # the region descriptors' index (indexer/regions.py), when the store makes them
 TIERS = ("near", "similar")
 
 
@@ -62,6 +63,15 @@ class Generation:
         from . import index as faiss_index  # FAISS only where an index is read: listing commands start fast
 
         return faiss_index.load_index(self.path / INDEX_FILE, mmap=mmap, params=self.meta.get("search_params"))
+
+    def load_regions(self, *, mmap: bool = False):
+        """The region descriptors' index and its grid, or (None, 0) when this generation has none."""
+        grid = int((self.meta.get("regions") or {}).get("grid", 0))
+        if not grid or not (self.path / REGIONS_FILE).is_file():
+            return None, 0
+        from . import index as faiss_index
+
+        return faiss_index.load_index(self.path / REGIONS_FILE, mmap=mmap), grid
 
     def load_whitening(self):
         from .whiten import Whitening

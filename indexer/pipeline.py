@@ -114,6 +114,7 @@ def _build(store: Store, stages: dict, progress, train_config, index_spec, calib
     from .calibrate import CalibrationConfig
     from .refresh import group_changes, refresh_generation
     from .train import TrainConfig
+    from .regions import embed_missing_regions
     from .vectors import embed_missing
 
     settings = store.settings
@@ -128,6 +129,10 @@ def _build(store: Store, stages: dict, progress, train_config, index_spec, calib
     started = time.monotonic()
     embedded = embed_missing(store, model_dir, progress=progress, cluster=cluster)
     stages["embed"] = time.monotonic() - started
+    if settings.region_grid:
+        started = time.monotonic()
+        embed_missing_regions(store, model_dir, settings.region_grid, progress=progress)
+        stages["regions"] = time.monotonic() - started
     out.update(model=embedded["model"], embedded=embedded["embedded"], embed_failed=len(embedded["embed_failed"]))
     prev = generations.current(store)
     before = prev.load_groups()["groups"] if prev is not None else []

@@ -84,13 +84,32 @@ def _better_of(direct: list[tuple[float, int]], other: list[tuple[float, int]],
     return sorted(kept, key=lambda t: -t[0])
 
 
+def _with_regions(merged: list[tuple[float, object, int]], found: list[tuple[float, int]], head: int,
+                  places: int) -> list[tuple[float, object, int]]:
+    """`merged` (similarity, other view, id) with up to `places` files found through region descriptors
+    (`found`, best first) put right after its first `head`, marked "region", each with the better of its
+    region and other score; files already among the first `head` are not repeated."""
+    first = merged[:head]
+    have = {i for _, _, i in first}
+    rest = {i: d for d, _, i in merged[head:]}
+    regions = [(max(d, rest.get(i, d)), "region", i) for d, i in found if i not in have][:places]
+    moved = {i for _, _, i in regions}
+    return first + regions + [t for t in merged[head:] if t[2] not in moved]
+
+
 def _settle_views(results: list[dict], direct: dict[int, float], shift: float) -> None:
-    """A result that scored through another view of the query (its mirror, the picture inside its frame)
-    keeps that score only when verification confirmed it; otherwise it falls back to its direct score,
-    or leaves the list when the image as given did not find it. Re-sorted in place."""
+    """A result that scored through another view of the query (its mirror, the picture inside its frame, a
+    region of the candidate) keeps that score only when verification confirmed it, and a region's only
+    when confirmed without mirroring the query (one wing of a symmetric subject would confirm the other);
+    otherwise it falls back to its direct score, or leaves the list when the image as given did not find
+    it. Re-sorted in place."""
     for r in list(results):
-        if not r.pop("_other_view", False) or (r.get("evidence") or {}).get("verified"):
+        view = r.pop("_other_view", False)
+        evidence = r.get("evidence") or {}
+        if not view or (evidence.get("verified") and not (view == "region" and evidence.get("mirrored"))):
             continue
+        if evidence.get("verified"):  # a region confirmed only by the mirrored query: not evidence of a copy
+            r["evidence"] = {**evidence, "verified": False, "reason": "a region matched only mirrored"}
         if r["id"] in direct:
             d = direct[r["id"]]
             r["similarity"], r["descriptor_similarity"] = round(d - shift, 6), round(d, 6)
@@ -107,21 +126,25 @@ class Searcher:
         # Memory-mapped where FAISS allows: several service processes then share one copy in the page cache.
         encoder, card = load_model(store.models_dir / generation.meta["model"])
         calibration = generation.load_calibration() or {}
+        regions = generation.load_regions(mmap=True) if store.settings.region_grid else (None, 0)
         self._setup(store, generation.load_index(mmap=True), generation.load_whitening(), encoder, card,
-                    near_threshold=generation.threshold("near"), query_calibration=calibration.get("query"))
+                    near_threshold=generation.threshold("near"), query_calibration=calibration.get("query"),
+                    regions=regions)
         self.generation = generation
 
     @classmethod
-    def for_build(cls, store: Store, index, whitening, encoder, card, near_threshold: float) -> "Searcher":
+    def for_build(cls, store: Store, index, whitening, encoder, card, near_threshold: float, *,
+                  regions=(None, 0)) -> "Searcher":
         """A searcher over a generation being built (not yet published): calibration asks its
         questions through the very function that answers users' queries."""
         searcher = cls.__new__(cls)
-        searcher._setup(store, index, whitening, encoder, card, near_threshold=near_threshold, query_calibration=None)
+        searcher._setup(store, index, whitening, encoder, card, near_threshold=near_threshold, query_calibration=None,
+                        regions=regions)
         searcher.generation = None
         return searcher
 
     def _setup(self, store: Store, index, whitening, encoder, card, *, near_threshold: float,
-               query_calibration: dict | None) -> None:
+               query_calibration: dict | None, regions=(None, 0)) -> None:
         self.store = store
         self.index = index
         self.whitening = whitening
@@ -135,6 +158,9 @@ class Searcher:
         self.mirror_view = str(store.settings.mirror_view)
         self.verify_more = int(store.settings.verify_more) if self.verify_top else 0
         self.verify_fine = int(store.settings.verify_fine) if self.verify_top else 0
+        # The region descriptors' index and grid (indexer/regions.py), searched in the second round.
+        self.regions, self.region_grid = regions if self.verify_top else (None, 0)
+        self.verify_regions = int(store.settings.verify_regions) if self.regions is not None else 0
 
     @property
     def verdict_threshold(self) -> float:
@@ -158,7 +184,8 @@ class Searcher:
         instead. With the query `images` (one per row of `xq`), the best `verify_top` candidates are
         verified and re-ranked (indexer/rerank.py); a query whose best candidate is still unverified
         then has its other views searched (its mirror image, itself upside down, the picture inside
-        its frame), its mirrored keypoints tried and `verify_more` more candidates verified, and, when none
+        its frame) and the collection's region descriptors (indexer/regions.py), its mirrored keypoints
+        tried and `verify_more` more candidates verified (`verify_regions` more for regions), and, when none
         confirms, its first `verify_fine` unconfirmed ones checked at twice the side (`rerank.rerank_fine`).
         `duplicate` follows the query verdict (`judge`) unless a `threshold` is given."""
         catalog = catalog if catalog is not None else self.store.catalog
@@ -191,7 +218,7 @@ class Searcher:
             pending = [q for q, results in enumerate(out)
                        if not (results and (results[0].get("evidence") or {}).get("verified"))]
             if pending:
-                again = self._other_views([images[q] for q in pending], [keys[q] for q in pending],
+                again = self._other_views(xq[pending], [images[q] for q in pending], [keys[q] for q in pending],
                                           [rows[q] for q in pending], n, [excludes[q] for q in pending], reach,
                                           [shifts[q] for q in pending], catalog)
                 for q, results in zip(pending, again):
@@ -207,15 +234,17 @@ class Searcher:
         """Result dicts of (similarity, other view, id) lists, each score less its query's shift."""
         paths = catalog.paths_for([i for kept in merged for _, _, i in kept])  # only the ones answered
         return [[{"id": i, "path": paths.get(i), "similarity": round(d - shift, 6),
-                  "descriptor_similarity": round(d, 6), "evidence": None, **({"_other_view": True} if m else {})}
+                  "descriptor_similarity": round(d, 6), "evidence": None, **({"_other_view": m} if m else {})}
                  for d, m, i in kept]
                 for kept, shift in zip(merged, shifts)]
 
-    def _other_views(self, images, keys, rows, n: int, excludes: list[set[int]], reach: int, shifts, catalog):
+    def _other_views(self, xq, images, keys, rows, n: int, excludes: list[set[int]], reach: int, shifts, catalog):
         """The answers of queries whose best candidate did not verify among the first `verify_top`:
         candidates their other views find join the direct ones (`_better_of`), the mirrored query is
-        tried too, and verification goes on to `verify_more` more (`keys`: the queries' kept
-        keypoints and matches, so nothing matched in the first round is matched again)."""
+        tried too, the files whose region descriptors are nearest to the query (`xq`, its vectors) get
+        `verify_regions` places right after the first `verify_top`, and verification goes on to
+        `verify_more` more (`keys`: the queries' kept keypoints and matches, so nothing matched in the
+        first round is matched again)."""
         extra = [[] for _ in rows]
         if self.mirror_view == "verified":
             # Only what the mirror finds as a near-duplicate on the descriptor's scale: a mirrored copy
@@ -227,9 +256,17 @@ class Searcher:
             extra = self._with_frame_views(images, extra, n, excludes)
         # Another view's candidate takes a place only among those verification checks, and keeps it only
         # when verified (`_settle_views`): a view may not raise a look-alike's score on its own.
-        out = self._answers([_better_of(kept, more, self.verify_top)[:reach] for kept, more in zip(rows, extra)],
-                            shifts, catalog)
-        return self._verified(keys, out, catalog, more=True)
+        merged = [_better_of(kept, more, self.verify_top) for kept, more in zip(rows, extra)]
+        added = 0
+        if self.verify_regions:
+            from .regions import region_candidates
+
+            found = region_candidates(self.regions, xq, self.verify_regions + self.verify_top, excludes,
+                                      self.region_grid)
+            merged = [_with_regions(m, f, self.verify_top, self.verify_regions) for m, f in zip(merged, found)]
+            added = self.verify_regions
+        out = self._answers([m[:reach + added] for m in merged], shifts, catalog)
+        return self._verified(keys, out, catalog, more=True, added=added)
 
     def _search(self, xq: np.ndarray, n: int, excludes: Sequence[Collection[int]]) -> list[list[tuple[float, int]]]:
         """Per query row, its (similarity, id) neighbours best first, the ids of its set in `excludes` left out."""
@@ -283,17 +320,18 @@ class Searcher:
             else:
                 r["duplicate"] = bool(verdict_score(r) >= (self.threshold if threshold is None else threshold))
 
-    def _verified(self, queries, answers: list[list[dict]], catalog, *, more: bool) -> list[list[dict]]:
+    def _verified(self, queries, answers: list[list[dict]], catalog, *, more: bool, added: int = 0) -> list[list[dict]]:
         """`rerank_all` of the answers (`queries`: images or their rerank.query_features): the first
         `verify_top` of each by the query as given; with `more`, by its mirror image too and, when the
-        best is still unverified, the next `verify_more`, then the fine check of `verify_fine`."""
+        best is still unverified, the next `verify_more` (and `added` places made for other candidates),
+        then the fine check of `verify_fine`."""
         from .rerank import rerank_all
 
-        reach = self.verify_top + (self.verify_more if more else 0)
+        reach = self.verify_top + (self.verify_more + added if more else 0)
         wanted = {r["id"] for results in answers for r in results[:reach]}
         sources = catalog.pixel_sources(wanted)
         candidates = {i: str(self.store.pixels_path(row)) for i, row in sources.items()}
-        return rerank_all(queries, answers, candidates, self.verify_top, more=self.verify_more if more else 0,
+        return rerank_all(queries, answers, candidates, self.verify_top, more=self.verify_more + added if more else 0,
                           mirrored=more, fine=self.verify_fine if more else 0)
 
     def _own_image(self, file_id: int, catalog):

@@ -42,6 +42,7 @@ from .build import build_generation, calibrate_thresholds, compute_pairs, groups
 from .groups import Group
 from .model import read_card
 from .pause import pause_at
+from .regions import regions_extra, regions_for_generation
 from .store import Store
 
 log = logging.getLogger(__name__)
@@ -218,6 +219,8 @@ def _update(store: Store, prev, model_dir, change: Change, reason: str, *, setti
     fresh = np.union1d(change.added, change.replaced)
     if len(fresh):
         faiss_index.add(index, _whitened(store, fresh, model, whitening), fresh)
+    regions = regions_for_generation(store, model, whitening, prev=prev,
+                                     removed=np.union1d(change.removed, change.replaced), added=fresh)
     stages["index"] = round(time.monotonic() - started, 3)
     pause_at("index")
     since_full = prev.meta.get("build", {}).get("since_full", {"indexed": prev.meta["indexed"], "changes": 0})
@@ -242,8 +245,9 @@ def _update(store: Store, prev, model_dir, change: Change, reason: str, *, setti
         thresholds, extra = calibrate_thresholds(
             store, model_dir, index, ids, xb, whitening, meta, stages, t_near=settings.near_threshold,
             t_similar=settings.similar_threshold, threshold_source="default",
-            calibration=calibration if plan == "calibrate" else None)
+            calibration=calibration if plan == "calibrate" else None, regions=regions)
     links[generations.WHITENING_FILE] = prev.path / generations.WHITENING_FILE
+    regions_extra(*regions, meta, extra)
     started = time.monotonic()
     same = all(thresholds[k] == prev.meta["thresholds"][k] for k in ("near", "similar"))
     if same:
@@ -284,7 +288,8 @@ def refresh_generation(store: Store, model_dir, *, settings, index_spec: str | N
         return built
     if change.count == 0 and _calibration_plan(prev, change, calibration, settings)[0] != "calibrate" \
             and not _stale_groups(store, prev.load_groups()["groups"]) \
-            and _thresholds_kept(prev, calibration, settings):
+            and _thresholds_kept(prev, calibration, settings) \
+            and int((prev.meta.get("regions") or {}).get("grid", 0)) == int(settings.region_grid):
         return _unchanged(store, prev, settings, {})
     return _update(store, prev, model_dir, change, reason, settings=settings, calibration=calibration)
 
