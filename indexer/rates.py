@@ -65,9 +65,12 @@ class MixtureFit:
         """Expected non-duplicate hits with similarity >= t (t >= floor), integrating the tail to 1."""
         t = np.maximum(np.asarray(t, dtype=np.float64), self.floor)
         if self.b <= 1e-9:
-            return np.exp(self.a) * (1.0 - t)
-        # exp(a - b t) - exp(a - b) over b, written so that a large a and b do not overflow.
-        return (np.exp(np.clip(self.a - self.b * t, -700, 700)) - np.exp(np.clip(self.a - self.b, -700, 700))) / self.b
+            return np.exp(min(self.a, 700.0)) * (1.0 - t)
+        # (exp(a - b t) - exp(a - b)) / b = exp(a - b t + log(1 - exp(-b (1 - t))) - log b), summed in the
+        # exponent so that a large a and a small b overflow nothing; at t = 1 the log is -inf and the count 0.
+        with np.errstate(divide="ignore"):
+            exponent = self.a - self.b * t + np.log(-np.expm1(-self.b * (1.0 - t))) - np.log(self.b)
+        return np.exp(np.minimum(exponent, 700.0))
 
     def duplicate_probability(self, s, positive_scores) -> np.ndarray:
         """P(a hit scoring s is a real duplicate): the mixture's duplicate term over both terms at s,
@@ -113,9 +116,11 @@ def fit_mixture(hit_scores: np.ndarray, positive_scores: np.ndarray, floor: floa
     widths = np.diff(edges)
 
     def expected(params):
+        # Exponents clipped to +-300: the optimiser's trial steps can go far out, and e**300 (1e130) is
+        # already absurd for a count while far from float64's overflow, so no step raises a warning.
         log_d, a, log_b = params
-        tail = np.exp(np.clip(a - np.exp(np.clip(log_b, -20, 20)) * centres, -700, 700)) * widths
-        return np.exp(log_d) * pos_bins + tail
+        tail = np.exp(np.clip(a - np.exp(np.clip(log_b, -20, 20)) * centres, -300, 300)) * widths
+        return np.exp(np.clip(log_d, -300, 300)) * pos_bins + tail
 
     def nll(params):
         lam = np.maximum(expected(params), 1e-12)

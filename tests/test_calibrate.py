@@ -82,6 +82,25 @@ def test_mixture_fit_recovers_a_planted_mixture():
     assert float(fit.wrong_hits_above(0.7)) == pytest.approx(expected, rel=0.35)
 
 
+@pytest.mark.filterwarnings("error::RuntimeWarning")
+@pytest.mark.parametrize("a, b", [(5.0, 15.0), (40.0, 0.5), (800.0, 2.0), (3.0, 1e-3)])
+def test_the_tails_expected_count_is_scipys_integral_without_overflow(a, b):
+    """Expected non-duplicates above t: the integral of exp(a - b s) from t to 1, against SciPy's quad
+    (scipy.integrate). Extreme parameters, as the optimiser's trial steps reach, give a finite count
+    and no RuntimeWarning (turned into an error here)."""
+    from scipy import integrate
+
+    from indexer.rates import MixtureFit
+
+    fit = MixtureFit(floor=0.2, dup_hits=10.0, a=a, b=b, pos_mass_above_floor=1.0)
+    for t in (0.2, 0.5, 0.9, 1.0):
+        got = float(fit.wrong_hits_above(t))
+        assert np.isfinite(got)
+        if a < 700:
+            reference = integrate.quad(lambda s: np.exp(a - b * s), t, 1.0)[0]
+            assert got == pytest.approx(reference, rel=1e-7, abs=1e-12)
+
+
 def test_verdict_mapping_is_sklearn_isotonic_regression_and_precision_has_wilson_bounds():
     """Reference: sklearn.isotonic.IsotonicRegression fitted directly; statsmodels' Wilson interval."""
     from sklearn.isotonic import IsotonicRegression
