@@ -248,7 +248,7 @@ def _train(index: faiss.Index, xb: np.ndarray, train_sample: int, seed: int) -> 
     rows = np.sort(np.random.default_rng(seed).choice(n, size, replace=False))
     start = time.perf_counter()
     index.train(xb[rows])
-    log.info("trained index on %d of %d vectors in %.1f s", size, n, time.perf_counter() - start)
+    log.debug("trained index on %d of %d vectors in %.1f s", size, n, time.perf_counter() - start)
 
 
 def _add_blocks(index: faiss.Index, xb: np.ndarray, ids: np.ndarray, block: int) -> None:
@@ -274,7 +274,7 @@ def build_index(xb: np.ndarray, ids: np.ndarray, spec: str | None = None, *,
         _train(index, xb, train_sample, seed)
     start = time.perf_counter()
     _add_blocks(index, xb, ids, block)
-    log.info("added %d vectors to %s in %.1f s", n, spec, time.perf_counter() - start)
+    log.debug("added %d vectors to %s in %.1f s", n, spec, time.perf_counter() - start)
     return index
 
 
@@ -401,7 +401,7 @@ def tune_search(index: faiss.Index, xb_sample: np.ndarray, target_recall: float 
         log.warning("recall@%d %.3f is below the target %.3f even at %s=%d",
                     k, recall, target_recall, name, value)
     result.update(params={name: value}, recall=recall, reached=recall >= target_recall)
-    log.info("tuned %s=%d: recall@%d %.3f", name, value, k, recall)
+    log.debug("tuned %s=%d: recall@%d %.3f", name, value, k, recall)
     return result
 
 
@@ -490,7 +490,7 @@ def range_pairs(index: faiss.Index, xb: np.ndarray, ids: np.ndarray, threshold: 
         parts_s.append(sims[keep].astype(np.float32))
     a, b, sims = canonical_pairs(np.concatenate(parts_a), np.concatenate(parts_b),
                                   np.concatenate(parts_s))
-    log.info("range_pairs(%s, t=%.3f): %d pairs from %d queries in %.1f s", method, threshold,
+    log.debug("range_pairs(%s, t=%.3f): %d pairs from %d queries in %.1f s", method, threshold,
              a.shape[0], xb.shape[0], time.perf_counter() - start_time)
     return a, b, sims
 

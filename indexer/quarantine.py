@@ -75,7 +75,7 @@ def settle(store: Store, journal: manifest.ManifestWriter) -> dict:
             journal.write("abandoned", seq=entry.seq, reason="found at neither path with its catalogued bytes")
             counts["unaccounted"] += 1
     _sync_catalog(store, manifest.read(journal.path), journal.path)
-    log.info("settled interrupted run %s: %s", journal.path, counts)
+    log.info("settled interrupted run %s: %s", journal.path, ", ".join(f"{k} {n}" for k, n in counts.items()))
     return counts
 
 

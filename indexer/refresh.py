@@ -236,7 +236,8 @@ def _update(store: Store, prev, model_dir, change: Change, reason: str, *, setti
         meta["build"]["since_calibration"] = since_calibration
         links = {f: prev.path / f for f in (generations.CALIBRATION_FILE, *generations.CALIBRATION_EXTRAS)
                  if (prev.path / f).is_file()}
-        log.info("calibration of %s reused (%s)", prev.name, prev.meta["calibration"])
+        log.info("calibration of generation %s reused: %s", prev.name,
+                 prev.meta["calibration"].get("summary") or "no summary recorded")
     else:
         ids = xb = None
         if plan == "calibrate":

@@ -140,4 +140,4 @@ def write_html_report(groups: list[Group], out_path: Path, *,
         f"<body><h1>{html.escape(title)}</h1>{_summary(groups, summary)}{body}</body></html>\n"
     )
     atomic_write_text(Path(out_path), page)
-    log.info("wrote report of %d groups to %s", len(shown), out_path)
+    log.debug("wrote report of %d groups to %s", len(shown), out_path)

@@ -127,7 +127,7 @@ def restore(store: Store, manifest_path: str | os.PathLike, *, apply: bool = Fal
                 item["outcome"] = _restore_one(store, item, journal)
             report = _report(path, items, applied=True)
             journal.write("restore-end", **report["counts"])
-    log.info("restore from %s: %s", path, report["counts"])
+    log.debug("restore from %s: %s", path, ", ".join(f"{k} {n}" for k, n in report["counts"].items()))
     return report
 
 

@@ -113,7 +113,8 @@ def review_queue(catalog, generation, *, window: int = WINDOW) -> ReviewQueue:
         out.append(ReviewPair(_file(meta, int(a[row])), _file(meta, int(b[row])), float(s[row]), pa, rnd,
                               _why(float(s[row]), t, pa, source)))
     log.info("review queue of generation %s: %d pairs near threshold %.3f (P(same) from %s; left out %s) in %.2f s",
-             generation.name, len(out), t, source or "nothing", left_out, time.monotonic() - started)
+             generation.name, len(out), t, source or "nothing",
+             ", ".join(f"{k} {n}" for k, n in left_out.items()) or "none", time.monotonic() - started)
     return ReviewQueue(generation.name, t, source, out, left_out)
 
 

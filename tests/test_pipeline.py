@@ -119,3 +119,20 @@ def test_same_pixels_in_another_format_is_its_own_tier(folder, tmp_path):
     assert g["members"][0]["id"] == g["keeper"]
     assert tier_to_keeper[frozenset(("05.jpg", "05-again.bmp"))] == "same-pixels"
     assert tier_to_keeper[frozenset(("06.jpg", "06-copy.jpg"))] == "same-bytes"
+
+
+def test_an_index_run_logs_plain_words_and_no_warning(folder, tmp_path, caplog, recwarn):
+    """What a person reads at the default level, for a first and a nightly run: no Python repr of a
+    dict or list, no internal index name, and no warning of any kind raised along the way."""
+    import logging
+
+    with caplog.at_level(logging.INFO), _store(tmp_path) as store:
+        run_index(store, [folder], progress=False, train_config=TINY)
+        _scene(folder / "a" / "new.jpg", 500)
+        run_index(store, [folder], progress=False, train_config=TINY)
+    lines = [r.getMessage() for r in caplog.records if r.levelno >= logging.INFO]
+    assert lines
+    for line in lines:
+        assert "{'" not in line and '{"' not in line and "['" not in line, line
+        assert "IDMap" not in line and "range_pairs" not in line, line
+    assert not [str(w.message) for w in recwarn if issubclass(w.category, (RuntimeWarning, UserWarning))]
