@@ -15,8 +15,17 @@ from typing import Sequence
 
 from . import __version__, commands
 from .errors import NearsightError
+from .limits import K, PRECISION, THRESHOLD
 
 log = logging.getLogger("nearsight")
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with a usage error in one line and where to read more, instead of the usage block
+    first (the block is what `--help` is for)."""
+
+    def error(self, message: str):
+        self.exit(2, f"{self.prog}: error: {message}\n(see '{self.prog} --help')\n")
 
 
 def _common_options(*, suppress: bool) -> argparse.ArgumentParser:
@@ -51,7 +60,7 @@ def _training_options(p: argparse.ArgumentParser, *, budget_flag: str, budget_de
 
 def build_parser() -> argparse.ArgumentParser:
     top, common = _common_options(suppress=False), _common_options(suppress=True)
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="nearsight",
         description="Find near-duplicate and similar images in large unlabeled collections.",
         parents=[top],
@@ -100,10 +109,10 @@ def build_parser() -> argparse.ArgumentParser:
                        description="For each PATH (an image, or a folder of images) list its nearest neighbours in "
                                    "the current generation, best first, with the duplicate verdict.")
     p.add_argument("paths", nargs="+", metavar="PATH", help="image file or folder of images")
-    p.add_argument("-k", type=int, default=10, help="neighbours per query (default: 10)")
-    p.add_argument("--threshold", type=float, help="cosine at or above which a result is a duplicate "
+    p.add_argument("-k", type=K.argparse_type(), default=10, help="neighbours per query (default: 10)")
+    p.add_argument("--threshold", type=THRESHOLD.argparse_type(), help="cosine at or above which a result is a duplicate "
                                                    "(default: the generation's threshold)")
-    p.add_argument("--precision", type=float, help="instead of a threshold: the calibrated one for this precision")
+    p.add_argument("--precision", type=PRECISION.argparse_type(), help="instead of a threshold: the calibrated one for this precision")
     p.add_argument("--json", action="store_true", help="JSON Lines: one object per query")
     p.set_defaults(func=commands.cmd_similar)
 
@@ -111,8 +120,8 @@ def build_parser() -> argparse.ArgumentParser:
                        description="List the current generation's duplicate groups, or regroup at --threshold, "
                                    "as a person's verdicts leave them: a pair marked different is never in one "
                                    "group, a pair marked same always is.")
-    p.add_argument("--threshold", type=float, help="regroup at this cosine similarity (duplicate groups only, no similar tier)")
-    p.add_argument("--precision", type=float, help="regroup at the calibrated threshold for this precision")
+    p.add_argument("--threshold", type=THRESHOLD.argparse_type(), help="regroup at this cosine similarity (duplicate groups only, no similar tier)")
+    p.add_argument("--precision", type=PRECISION.argparse_type(), help="regroup at the calibrated threshold for this precision")
     p.add_argument("--tier", choices=("same-bytes", "same-pixels", "person-same", "near-duplicate", "similar"),
                    help="only groups of this tier")
     p.add_argument("--format", choices=("table", "json", "csv", "html"), default="table", help="output format")
@@ -155,8 +164,8 @@ def build_parser() -> argparse.ArgumentParser:
                                    "pixels, larger file, oldest, path.")
     p.add_argument("--to", required=True, metavar="DIR", help="quarantine folder, outside every source folder")
     regroup = p.add_mutually_exclusive_group()
-    regroup.add_argument("--threshold", type=float, help="regroup at this cosine similarity first")
-    regroup.add_argument("--precision", type=float,
+    regroup.add_argument("--threshold", type=THRESHOLD.argparse_type(), help="regroup at this cosine similarity first")
+    regroup.add_argument("--precision", type=PRECISION.argparse_type(),
                          help="regroup at the calibrated threshold whose estimated precision reaches this")
     p.add_argument("--tier", choices=("same-bytes", "same-pixels", "person-same", "near-duplicate"),
                    help="weakest relation to the keeper that moves (default near-duplicate: all four)")
@@ -174,7 +183,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print the plan (and what was done) as JSON")
     p.set_defaults(func=commands.cmd_quarantine)
 
-    p = sub.add_parser("restore", parents=[common], help="put quarantined files back (a dry run unless --apply)",
+    p = sub.add_parser("restore", parents=[common], help="put quarantined files back (a dry run unless --apply; "
+                       "the store is the one the manifest names unless --store or $NEARSIGHT_STORE says otherwise)",
                        description="Put every file a quarantine manifest moved back at its original path, checked "
                                    "by content hash. A different file now at an original path is never "
                                    "overwritten; the same bytes already there count as restored.")

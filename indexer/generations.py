@@ -95,8 +95,9 @@ class Generation:
             if calibration and tier in calibration.get("tiers", {}):
                 return float(calibration["tiers"][tier]["threshold"])
             return float(self.meta["thresholds"][tier])
-        if not 0.0 < precision < 1.0:
-            raise UsageError(f"precision must be between 0 and 1 (exclusive), not {precision}")
+        from .limits import PRECISION
+
+        PRECISION.check(precision)
         if not calibration or tier not in calibration.get("tiers", {}):
             raise NotReadyError(f"generation {self.name} has no calibration: run `nearsight calibrate` "
                                 "or give a threshold instead of a precision")

@@ -65,7 +65,8 @@ def translate(exc: BaseException, head: bytes = b"", fp=None, size=None) -> Imag
         return ImageReadError("too-large", text)
     lowered = text.lower()
     if isinstance(exc, EOFError) or "truncated" in lowered or "premature end" in lowered:
-        return ImageReadError("truncated", text or "the file ends before the image does")
+        # Pillow's own words ("image file is truncated (0 bytes not processed)") say nothing a person can act on.
+        return ImageReadError("truncated", "the file ends before the image does (an interrupted download or copy?)")
     promised = int.from_bytes(head[4:8], "little") + 8 if head[:4] == b"RIFF" else 0
     if size is not None and promised > size:
         # WebP's decoder only says it failed; the RIFF header says how long the file should be.

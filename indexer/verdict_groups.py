@@ -292,8 +292,9 @@ def current_groups(store, *, threshold: float | None = None, precision: float | 
         groups = [Group.from_dict(g) for g in gen.load_groups()["groups"]]
         t_near, t_similar = float(gen.meta["thresholds"]["near"]), float(gen.meta["thresholds"]["similar"])
     else:
-        if not 0.0 < threshold <= 1.0:
-            raise UsageError(f"a duplicate threshold is a cosine similarity in (0, 1], not {threshold}")
+        from .limits import THRESHOLD
+
+        THRESHOLD.check(threshold)
         if threshold < float(gen.meta["thresholds"]["near"]):
             log.warning("threshold %.3f is below the generation's duplicate threshold %.3f: check the groups "
                         "before acting on them", threshold, gen.meta["thresholds"]["near"])

@@ -6,6 +6,8 @@ routes, and the property tests (schemathesis) check the answers against these sc
 
 from __future__ import annotations
 
+from indexer.limits import PRECISION, THRESHOLD
+
 from .params import MAX_K
 
 TIER_NAMES = ["same-bytes", "same-pixels", "person-same", "near-duplicate", "similar"]
@@ -49,13 +51,13 @@ IMAGE_ID = _int_param("image_id", "path", "Catalog id of an image file", 1, 2**6
 SEARCH_PARAMS = [
     _int_param("k", "query", "Neighbours to return", 1, MAX_K, default=10),
     {"name": "threshold", "in": "query", "required": False,
-     "description": "Cosine similarity at or above which a neighbour is called a duplicate (default: the "
+     "description": "Similarity at or above which a neighbour is called a duplicate (default: the "
                     "generation's calibrated or default threshold). Not together with precision.",
-     "schema": {"type": "number", "minimum": -1, "maximum": 1}},
+     "schema": THRESHOLD.schema()},
     {"name": "precision", "in": "query", "required": False,
      "description": "Instead of a threshold: the calibrated threshold that reaches this precision "
                     "(409 when the generation has no calibration).",
-     "schema": {"type": "number", "exclusiveMinimum": True, "minimum": 0, "exclusiveMaximum": True, "maximum": 1}},
+     "schema": PRECISION.schema()},
 ]
 NULLABLE_NUMBER = {"type": "number", "nullable": True}
 NULLABLE_INT = {"type": "integer", "nullable": True}
@@ -338,9 +340,8 @@ def _paths() -> dict:
                     "type": "object", "required": ["image"],
                     "properties": {"image": {"type": "string", "format": "binary"},
                                    "k": {"type": "integer", "minimum": 1, "maximum": MAX_K},
-                                   "threshold": {"type": "number", "minimum": -1, "maximum": 1},
-                                   "precision": {"type": "number", "exclusiveMinimum": True, "minimum": 0,
-                                                 "exclusiveMaximum": True, "maximum": 1}}}}}},
+                                   "threshold": THRESHOLD.schema(),
+                                   "precision": PRECISION.schema()}}}}},
             "responses": {"200": _json(_ref("SearchResult"), "Neighbours of the uploaded image"),
                           **_errors("400", *read_errors, "409", "413", "415", "422")}}},
         "/v1/images/{image_id}": {"get": {

@@ -7,13 +7,12 @@ and an upload's file name is ignored.
 
 from __future__ import annotations
 
-import math
 from typing import Any, Mapping
 
 from indexer.errors import NotFoundError, PayloadTooLargeError, UnsupportedMediaError, UsageError
+from indexer.limits import K, MAX_K, PRECISION, THRESHOLD  # noqa: F401  (MAX_K: the service's name for it)
 
 MAX_ID = 2**63 - 1  # SQLite INTEGER
-MAX_K = 100
 MULTIPART_SLACK = 64 * 1024  # multipart framing and form fields beside the image
 RAW_IMAGE_TYPES = ("application/octet-stream", "")
 
@@ -51,28 +50,15 @@ def bool_arg(source: Mapping[str, Any], name: str, default: bool = False) -> boo
     raise UsageError(f"{name} must be true or false, not {str(raw)[:40]!r}")
 
 
-def float_arg(source: Mapping[str, Any], name: str, lo: float, hi: float, *, open_range: bool = False) -> float | None:
-    raw = source.get(name)
-    if raw is None or raw == "":
-        return None
-    try:
-        value = float(str(raw).strip())
-    except ValueError:
-        value = math.nan
-    inside = (lo < value < hi) if open_range else (lo <= value <= hi)
-    if not (math.isfinite(value) and inside):
-        bounds = f"between {lo} and {hi}" + (" (exclusive)" if open_range else "")
-        raise UsageError(f"{name} must be a number {bounds}, not {str(raw)[:40]!r}")
-    return value
-
-
 def search_args(source: Mapping[str, Any]) -> dict:
     """k, threshold and precision, as every search endpoint takes them."""
-    return {
-        "k": int_arg(source, "k", 10, 1, MAX_K),
-        "threshold": float_arg(source, "threshold", -1.0, 1.0),
-        "precision": float_arg(source, "precision", 0.0, 1.0, open_range=True),
-    }
+    def given(name):
+        raw = source.get(name)
+        return None if raw is None or raw == "" else raw
+
+    k = K.check(given("k"))
+    return {"k": 10 if k is None else k, "threshold": THRESHOLD.check(given("threshold")),
+            "precision": PRECISION.check(given("precision"))}
 
 
 def upload(request, limit: int) -> tuple[bytes, Mapping[str, Any]]:

@@ -320,6 +320,13 @@ def test_bodies_that_are_not_images_are_refused_with_json(client, writer):
     _assert_error(client.request("POST", "/v1/search", b'{"a": 1}', {"Content-Type": "application/json"}), 415)
     body = _assert_error(client.post_image("/v1/search", b"GIF89a but not really"), 422, "unreadable_image")
     assert body["reason"] in ("not-image", "truncated", "corrupt")
+    # A JPEG cut short (an interrupted upload): said in plain words, not in the decoder's.
+    whole = io.BytesIO()
+    Image.effect_noise((320, 240), 60).convert("RGB").save(whole, "JPEG", quality=90)
+    cut = _assert_error(client.post_image("/v1/search", whole.getvalue()[: len(whole.getvalue()) // 2]), 422,
+                        "unreadable_image")
+    assert cut["reason"] == "truncated" and "ends before the image does" in cut["message"]
+    assert "bytes not processed" not in cut["message"]
     _assert_error(client.post_image("/v1/search", b""), 400)
     _assert_error(writer.request("POST", "/v1/verdicts", b"file_a=1", {"Content-Type": "text/plain"}), 415)
     _assert_error(writer.request("POST", "/v1/verdicts", b"{not json", {"Content-Type": "application/json"}), 400)
@@ -401,3 +408,40 @@ def test_request_log_has_a_line_per_request_and_no_image_bytes(client, live_serv
     lines = [line for line in log.splitlines() if "POST /v1/search 200" in line]
     assert all(len(line) < 300 for line in lines)
     assert data[:64].decode("latin-1") not in log and "JFIF" not in log and API_KEY not in log
+
+
+# The one rule for a threshold, a precision and k (indexer/limits.py), wherever they are given.
+OUT_OF_RANGE = [("threshold", "2", "a number in (0, 1]"), ("threshold", "-0.5", "a number in (0, 1]"),
+                ("threshold", "0", "a number in (0, 1]"), ("precision", "1", "a number in (0, 1)"),
+                ("precision", "0", "a number in (0, 1)"), ("k", "0", "a whole number from 1 to 100"),
+                ("k", "101", "a whole number from 1 to 100"), ("k", "2.5", "a whole number from 1 to 100")]
+ENTRY_POINTS = {  # where each value goes in: (command line | HTTP request) for a name and a value
+    "similar": lambda name, v, tmp: ["similar", str(tmp), f"--{name}" if name != "k" else "-k", v],
+    "groups": lambda name, v, tmp: ["groups", f"--{name}", v],
+    "quarantine": lambda name, v, tmp: ["quarantine", "--to", str(tmp / "q"), f"--{name}", v],
+    "GET /v1/images/1/similar": lambda name, v, tmp: f"/v1/images/1/similar?{name}={v}",
+    "POST /v1/search": lambda name, v, tmp: f"/v1/search?{name}={v}",
+}
+
+
+@pytest.mark.parametrize("entry, name, value, stated", [
+    (entry, *case) for entry in ENTRY_POINTS for case in OUT_OF_RANGE
+    if not (case[0] == "k" and entry in ("groups", "quarantine"))])  # neither takes a k
+def test_every_command_and_endpoint_refuses_an_out_of_range_number_with_the_same_range(
+        entry, name, value, stated, client, capsys, tmp_path):
+    from indexer.cli import main
+
+    request = ENTRY_POINTS[entry](name, value, tmp_path)
+    expected = f"{name} must be {stated}, not '{value}'"
+    if entry.startswith(("GET", "POST")):
+        data = io.BytesIO()
+        Image.new("RGB", (64, 48), (120, 30, 200)).save(data, "PNG")
+        response = client.get(request) if entry.startswith("GET") else client.post_image(request, data.getvalue())
+        assert _assert_error(response, 400, "bad_request")["message"] == expected
+    else:
+        with pytest.raises(SystemExit) as stopped:  # refused while the arguments are read: no store is opened
+            main(["--store", str(tmp_path / "no-store"), *request])
+        assert stopped.value.code == 2
+        option = "-k" if name == "k" else f"--{name}"
+        assert f"argument {option}: {expected}" in capsys.readouterr().err
+        assert not (tmp_path / "no-store").exists()
