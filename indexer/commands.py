@@ -63,7 +63,9 @@ def train_config(args, **extra):
 # -- index, status --------------------------------------------------------------------
 def cmd_index(args) -> int:
     from .pipeline import run_index
+    from .scan import check_folders
 
+    check_folders(args.folders)  # before the store is created: a mistyped folder leaves nothing behind
     with open_store(args, create=True) as store:
         config = train_config(args, minutes=store.settings.train_minutes, max_images=store.settings.train_sample)
         summary = run_index(store, args.folders, progress=_progress(args), train_config=config,

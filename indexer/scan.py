@@ -196,14 +196,20 @@ def scan_sources(store: Store, folders, *, progress: bool | None = None, client=
     return summaries
 
 
+def check_folders(folders) -> None:
+    """Refuse, before anything is written, a folder to scan that does not exist or is a file."""
+    for folder in folders:
+        root = Path(folder)
+        if not root.exists():
+            raise NotFoundError(f"folder not found: {folder}")
+        if not root.is_dir():
+            raise UsageError(f"not a folder: {folder} (give the folder that holds it)")
+
+
 def _scan_one(store: Store, folder: str | os.PathLike, progress: bool | None, client=None) -> ScanSummary:
     """Scan one folder's files into the catalog (removals are marked by the caller)."""
-    root = Path(folder)
-    if not root.exists():
-        raise NotFoundError(f"folder not found: {folder}")
-    if not root.is_dir():
-        raise UsageError(f"not a folder: {folder}")
-    root = root.resolve()
+    check_folders([folder])
+    root = Path(folder).resolve()
     settings = store.settings
     catalog = store.catalog
     quarantine_dirs = {Path(p) for p in catalog.quarantine_dirs()}

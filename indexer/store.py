@@ -58,12 +58,12 @@ class Store:
         root = Path(root).absolute()
         catalog_path = root / CATALOG_FILE
         if not catalog_path.exists():
+            if root.exists() and not root.is_dir():
+                raise UsageError(f"the store path {root} is a file; a store is a folder (give another --store)")
             if not create:
                 raise NotFoundError(
                     f"no nearsight store at {root} (run `nearsight index FOLDER --store {root}` first)"
                 )
-            if root.exists() and not root.is_dir():
-                raise UsageError(f"store path {root} exists and is not a directory")
             root.mkdir(parents=True, exist_ok=True)
         settings = settings or load_settings(store_dir=root)
         return cls(root, Catalog(catalog_path, create=create), settings)

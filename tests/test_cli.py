@@ -53,12 +53,21 @@ def test_errors_are_one_line_with_exit_codes(run_cli, folder, tmp_path):
     assert missing.returncode == 1
     assert missing.stderr.strip().splitlines()[-1] == f"nearsight index: error: folder not found: {tmp_path / 'nope'}"
     assert "Traceback" not in missing.stderr
+    assert not (tmp_path / "s").exists()  # a failed index leaves no store behind
+
+    a_file = run_cli("index", folder / "p0.png", "--store", tmp_path / "s")
+    assert a_file.returncode == 2 and "not a folder" in a_file.stderr
+    assert not (tmp_path / "s").exists()
 
     no_store = run_cli("status", "--store", tmp_path / "absent")
     assert no_store.returncode == 1 and "no nearsight store" in no_store.stderr
+    file_store = run_cli("status", "--store", folder / "p1.png")  # a store path that is a file
+    assert file_store.returncode == 2 and "is a file" in file_store.stderr and "nearsight index" not in file_store.stderr
 
-    usage = run_cli("index")  # FOLDER missing: argparse's usage error
-    assert usage.returncode == 2 and "usage:" in usage.stderr
+    usage = run_cli("index")  # FOLDER missing: argparse's usage error, in one line and a pointer to --help
+    assert usage.returncode == 2 and "usage:" not in usage.stderr
+    assert usage.stderr.splitlines() == ["nearsight index: error: the following arguments are required: FOLDER",
+                                         "(see 'nearsight index --help')"]
 
     bad_setting = run_cli("index", folder, "--store", tmp_path / "s", env={"NEARSIGHT_WORKERS": "lots"})
     assert bad_setting.returncode == 2 and "NEARSIGHT_WORKERS" in bad_setting.stderr
