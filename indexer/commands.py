@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import io
 import json
+import os
 import sys
 from pathlib import Path
 from typing import Sequence
@@ -15,7 +16,7 @@ from typing import Sequence
 from .errors import UsageError
 from .settings import describe as describe_settings
 from .settings import load_settings
-from .store import Store, resolve_store_path
+from .store import ENV_STORE, Store, resolve_store_path
 
 SETTING_FLAGS = ("workers", "train_minutes", "near_threshold", "similar_threshold",
                  "serve_host", "serve_port", "serve_threads", "keep_paths", "prefer_folders", "prefer_formats")
@@ -386,8 +387,10 @@ RESTORE_WORDS = {"would-restore": "would restore", "restored": "restored", "in-p
 
 
 def cmd_restore(args) -> int:
-    from .restore import restore
+    from .restore import restore, store_of_manifest
 
+    if args.store is None and not os.environ.get(ENV_STORE):
+        args.store = store_of_manifest(args.manifest)  # the manifest names the store it was written for
     with open_store(args) as store:
         report = restore(store, args.manifest, apply=args.apply)
     if args.json:

@@ -60,6 +60,15 @@ def _items(records: list[dict]) -> list[dict]:
     return items
 
 
+def store_of_manifest(manifest_path: str | os.PathLike) -> str:
+    """The store a manifest was written for (its first record names it)."""
+    records = manifest.read(Path(manifest_path))
+    store = records[0].get("store") if records else None
+    if not store:
+        raise UsageError(f"{manifest_path} does not name its store: give --store")
+    return store
+
+
 def _check_store(store: Store, records: list[dict], path: Path) -> None:
     written_by = records[0].get("store")
     if written_by != str(store.root):
@@ -127,8 +136,24 @@ def restore(store: Store, manifest_path: str | os.PathLike, *, apply: bool = Fal
                 item["outcome"] = _restore_one(store, item, journal)
             report = _report(path, items, applied=True)
             journal.write("restore-end", **report["counts"])
+        _remove_emptied_folders(items, Path(records[0].get("quarantine") or path.parent))
     log.debug("restore from %s: %s", path, ", ".join(f"{k} {n}" for k, n in report["counts"].items()))
     return report
+
+
+def _remove_emptied_folders(items: list[dict], quarantine: Path) -> None:
+    """The folders under the quarantine folder that restored files left empty (the quarantine folder
+    itself, which holds the manifest, stays). os.rmdir removes only an empty folder, so nothing else
+    a person put there can go."""
+    emptied = {Path(item["quarantined"]).parent for item in items if item["outcome"] in ("restored", "in-place")}
+    for folder in sorted(emptied, key=lambda p: -len(p.parts)):
+        while folder != quarantine and quarantine in folder.parents:
+            try:
+                folder.rmdir()
+            except OSError:  # not empty (or already gone): its parents are not empty either
+                break
+            fsync_dir(folder.parent)
+            folder = folder.parent
 
 
 def _report(path: Path, items: list[dict], *, applied: bool) -> dict:

@@ -175,11 +175,12 @@ def test_quarantine_then_restore_leaves_the_tree_byte_identical(tmp_path, traine
     with _open(store_dir) as store:
         assert store.catalog.counts()["quarantined"] == result["moved"]
 
-    restored = json.loads(run_cli("restore", result["manifest"], "--store", store_dir, "--apply", "--json",
-                                  check_exit=0).stdout)
+    # Without --store: the manifest names the store it was written for.
+    restored = json.loads(run_cli("restore", result["manifest"], "--apply", "--json", check_exit=0).stdout)
     assert restored["counts"] == {"restored": result["moved"]}
     assert tree(*sources) == before
-    assert not tree(qdir)                                        # only the manifest is left there
+    # Only the manifest is left there: no file, and no folder the restored files emptied.
+    assert sorted(qdir.rglob("*")) == [Path(result["manifest"])]
     with _open(store_dir) as store:
         assert store.catalog.counts()["quarantined"] == 0
 
