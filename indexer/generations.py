@@ -11,7 +11,8 @@ names yet, which pruning removes in turn).
 
 Two more files let the next run update a generation instead of rebuilding it
 (`refresh.py`): ``items.npz`` (the file ids indexed and the content id of each)
-and ``pairs.npz`` (every pair at or above the similar threshold). Files are
+and ``pairs.npz`` (every pair at or above the similar threshold). ``regions.faiss``
+holds the region descriptors (indexer/regions.py) when the store makes them. Files are
 never changed once published, so a generation that changes nothing may share
 them with its predecessor through hard links.
 """
