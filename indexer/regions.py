@@ -79,7 +79,7 @@ def embed_missing_regions(store: Store, model_dir: Path, grid: int, *, progress:
     rows = store.catalog.contents_missing_vectors(key)
     started = time.monotonic()
     done, failed = 0, 0
-    with Progress(len(rows), "regions", enabled=progress) as bar:
+    with Progress(len(rows), "region descriptors", enabled=progress, unit="image") as bar:
         for start in range(0, len(rows), _BLOCK):
             block, crops = [], []
             for row in rows[start:start + _BLOCK]:

@@ -31,7 +31,6 @@ from typing import Any, Iterator, Sequence
 import numpy as np
 import torch
 from PIL import Image
-from tqdm import tqdm
 
 from .embed import decode_files, embed_images
 from .encoder import DEFAULT_ARCH, Encoder, ProjectionHead, create_encoder
@@ -40,6 +39,7 @@ from .fsutil import atomic_write_bytes
 from .heldout import heldout_check
 from .losses import koleo, margin_contrastive, nt_xent, triplet_hard
 from .model import load_model, save_model
+from .progress import Progress
 from .split_batch import SplitEncoder
 from .train_batches import VIEW_MODES, decode_pictures, plan_batches, view_batches
 from .views import ViewRecipe, make_views
@@ -454,8 +454,7 @@ def _run_loop(cache, encoder: Encoder, head: ProjectionHead, config: TrainConfig
     encoder.train()
     head.train()
     split = SplitEncoder(encoder, parts) if parts > 1 else None
-    bar = tqdm(total=config.steps, initial=state["step"], desc="train", unit="step", disable=not progress,
-               dynamic_ncols=True)
+    bar = Progress(config.steps, "train", enabled=progress, unit="step", initial=state["step"], every_s=30.0)
     elapsed0, seen = state["elapsed_s"], 0
     session_start = last_checkpoint = time.monotonic()
     try:
@@ -475,8 +474,7 @@ def _run_loop(cache, encoder: Encoder, head: ProjectionHead, config: TrainConfig
                 state["losses"].append(loss)
                 now = time.monotonic()
                 state["elapsed_s"] = elapsed0 + (now - session_start)
-                bar.update(1)
-                bar.set_postfix(loss=f"{loss:.3f}", img_s=f"{seen / max(now - session_start, 1e-9):.0f}", refresh=False)
+                bar.update(1, loss=f"{loss:.3f}", images_a_second=f"{seen / max(now - session_start, 1e-9):.0f}")
                 if now - last_checkpoint >= config.checkpoint_every_s:
                     _save_checkpoint(out_dir, snapshot())
                     last_checkpoint = now
@@ -644,7 +642,8 @@ def _fine_tune_loop(encoder: Encoder, pics: list[Image.Image], pairs: np.ndarray
     encoder.train()
     _freeze_batchnorm(encoder)
     losses = []
-    for _ in tqdm(range(config.steps), desc="fine-tune", unit="step", disable=not progress, dynamic_ncols=True):
+    bar = Progress(config.steps, "fine-tune", enabled=progress, unit="step", every_s=30.0)
+    for _ in range(config.steps):
         batch = pairs[rng.choice(len(pairs), size=min(config.batch_size, len(pairs)), replace=False)]
         xa = torch.stack([views(pics[i]) for i in batch[:, 0]])
         xb = torch.stack([views(pics[i]) for i in batch[:, 1]])
@@ -658,5 +657,7 @@ def _fine_tune_loop(encoder: Encoder, pics: list[Image.Image], pairs: np.ndarray
         loss.backward()
         optimizer.step()
         losses.append(float(loss.item()))
+        bar.update(1, loss=f"{losses[-1]:.3f}")
+    bar.close()
     encoder.eval()
     return losses

@@ -136,3 +136,17 @@ def test_an_index_run_logs_plain_words_and_no_warning(folder, tmp_path, caplog, 
         assert "{'" not in line and '{"' not in line and "['" not in line, line
         assert "IDMap" not in line and "range_pairs" not in line, line
     assert not [str(w.message) for w in recwarn if issubclass(w.category, (RuntimeWarning, UserWarning))]
+
+
+def test_long_work_logs_its_progress_when_no_terminal_shows_a_bar(caplog):
+    """In a cron job (stderr not a terminal) the bar is off and a plain line is logged instead, with the
+    count, the total, the rate and what the work reports (a training loop's loss)."""
+    import logging
+
+    from indexer.progress import Progress
+
+    with caplog.at_level(logging.INFO, logger="indexer.progress"):
+        with Progress(200, "train", enabled=False, unit="step", initial=50, every_s=0.0) as bar:
+            bar.update(1, loss="3.142")
+    (line,) = [r.getMessage() for r in caplog.records]
+    assert line.startswith("train: 51 of 200 steps (") and line.endswith(" a second, loss 3.142)")
