@@ -172,6 +172,15 @@ class Catalog:
         ).fetchone()
         return ContentRow(**{**dict(row), "thumb": bool(row["thumb"])}) if row else None
 
+    def present_files_with_hash(self, digest: str) -> list[dict]:
+        """Id and path of every present readable file whose bytes have this content hash, by id."""
+        rows = self.conn.execute(
+            "SELECT f.id, s.root, f.relpath FROM contents c JOIN files f ON f.content_id = c.id AND f.state = 'ok' "
+            "JOIN sources s ON s.id = f.source_id WHERE c.hash = ? ORDER BY f.id",
+            (digest,),
+        )
+        return [{"id": r["id"], "path": str(Path(r["root"]) / r["relpath"])} for r in rows]
+
     def add_content(self, conn: sqlite3.Connection, digest: str, size: int, decoded: dict, now: float) -> int:
         """Insert a content row inside the caller's transaction; return its id."""
         cur = conn.execute(

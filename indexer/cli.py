@@ -116,6 +116,22 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="JSON Lines: one object per query")
     p.set_defaults(func=commands.cmd_similar)
 
+    p = sub.add_parser("check", parents=[common], help="check new material against the archive (adds nothing to it)",
+                       description="For each PATH (an image, or a folder of images) say whether it is a copy of a "
+                                   "catalogued file, similar to one, new, or unreadable, with its best match. "
+                                   "Nothing is added to the store. Files whose bytes the catalog holds are "
+                                   "answered by their content hash, without decoding.")
+    p.add_argument("paths", nargs="+", metavar="PATH", help="image file or folder of images")
+    p.add_argument("--threshold", type=THRESHOLD.argparse_type(),
+                   help="similarity from which a match is a copy (default: the generation's query verdict)")
+    p.add_argument("--precision", type=PRECISION.argparse_type(), help="instead of a threshold: the calibrated one for this precision")
+    form = p.add_mutually_exclusive_group()
+    form.add_argument("--json", action="store_true", help="JSON Lines: one object per file")
+    form.add_argument("--csv", action="store_true", help="CSV: one row per file")
+    p.add_argument("--fail-on", choices=("copy", "similar"),
+                   help="exit with 1 when any file is a copy (copy), or a copy or similar (similar): for pipelines")
+    p.set_defaults(func=commands.cmd_check)
+
     p = sub.add_parser("groups", parents=[common], help="list duplicate groups",
                        description="List the current generation's duplicate groups, or regroup at --threshold, "
                                    "as a person's verdicts leave them: a pair marked different is never in one "
@@ -239,7 +255,7 @@ def _setup_logging(args) -> None:
     logging.getLogger("faiss").setLevel(max(level, logging.WARNING))
 
 
-QUERY_COMMANDS = ("similar", "serve")
+QUERY_COMMANDS = ("similar", "check", "serve")
 
 
 def main(argv: Sequence[str] | None = None) -> int:

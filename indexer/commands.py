@@ -227,6 +227,58 @@ def cmd_similar(args) -> int:
     return 1 if failed and failed == len(queries) else 0
 
 
+CHECK_COLUMNS = ("path", "verdict", "match_id", "match_path", "similarity", "probability", "verified", "reason")
+
+
+def _check_row(answer) -> dict:
+    match, error = answer.match or {}, answer.error or {}
+    return {"path": answer.path, "verdict": answer.verdict, "match_id": match.get("id"),
+            "match_path": match.get("path"), "similarity": match.get("similarity"),
+            "probability": match.get("probability"),
+            "verified": (match.get("evidence") or {}).get("verified", (match.get("evidence") or {}).get("same_bytes")),
+            "reason": error.get("reason")}
+
+
+def cmd_check(args) -> int:
+    import csv
+
+    from .check import check_files
+    from .query import Searcher, expand_queries
+
+    with open_store(args) as store:
+        searcher = Searcher(store)
+        paths = expand_queries(args.paths, store.settings.extensions)
+        threshold = _threshold_arg(args, searcher.generation)
+        counts = dict.fromkeys(("copy", "similar", "new", "unreadable"), 0)
+        writer = csv.DictWriter(sys.stdout, CHECK_COLUMNS, lineterminator="\n") if args.csv else None
+        if writer:
+            writer.writeheader()
+        for answer in check_files(searcher, paths, threshold=threshold):
+            counts[answer.verdict] += 1
+            if args.json:
+                print_json(answer.to_dict())
+            elif writer:
+                writer.writerow(_check_row(answer))
+            else:
+                row = _check_row(answer)
+                if answer.verdict == "unreadable":
+                    detail = answer.error["message"]
+                elif answer.match:
+                    chance = "" if row["probability"] is None else f", p={row['probability']:.2f}"
+                    detail = f"{row['similarity']:.3f}{chance}  #{row['match_id']}  {row['match_path']}"
+                else:
+                    detail = ""
+                print(f"{answer.verdict:<10}  {answer.path}  {detail}".rstrip())
+            sys.stdout.flush()
+    if not (args.json or args.csv):
+        print(", ".join(f"{n} {v}" for v, n in counts.items()), file=sys.stderr)
+    if args.fail_on == "copy" and counts["copy"]:
+        return 1
+    if args.fail_on == "similar" and (counts["copy"] or counts["similar"]):
+        return 1
+    return 1 if paths and counts["unreadable"] == len(paths) else 0
+
+
 def _threshold_arg(args, gen) -> float | None:
     """--threshold as given, or the calibrated threshold for --precision; None for the generation's own."""
     if args.threshold is not None and args.precision is not None:

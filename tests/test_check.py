@@ -1,0 +1,96 @@
+"""`nearsight check`: new material against the archive, without touching the store.
+
+The archive and the new material are scikit-image's bundled photos (open data); the edited copies are made
+with Pillow. The CSV output is read back with the standard library's csv module, the JSON Lines with json.
+"""
+
+import csv
+import io
+import json
+import shutil
+
+import pytest
+from PIL import Image, ImageEnhance
+from skimage import data
+
+from indexer import generations
+from indexer.pipeline import run_index
+from indexer.settings import load_settings
+from indexer.store import Store
+from indexer.train import TrainConfig
+
+ARCHIVE = ("astronaut", "coffee", "chelsea", "rocket", "camera", "brick", "immunohistochemistry", "hubble_deep_field",
+           "retina", "coins")
+NEW = ("grass", "gravel", "moon")  # never catalogued
+TINY = TrainConfig(arch="tiny", size=64, dim=16, batch_size=8, steps=3, minutes=None)
+
+
+def _photo(name):
+    im = Image.fromarray(getattr(data, name)()).convert("RGB")
+    im.thumbnail((480, 480))
+    return im
+
+
+@pytest.fixture(scope="module")
+def archive(tmp_path_factory):
+    root = tmp_path_factory.mktemp("check")
+    (root / "archive").mkdir()
+    for name in ARCHIVE:  # each photo's four quarters: 40 files, enough to whiten and calibrate on
+        im = _photo(name)
+        w, h = im.size
+        for row in range(2):
+            for col in range(2):
+                box = (col * w // 2, row * h // 2, (col + 1) * w // 2, (row + 1) * h // 2)
+                im.crop(box).save(root / "archive" / f"{name}-{row}{col}.png")
+    with Store.open(root / "store", create=True, settings=load_settings(environ={})) as store:
+        run_index(store, [root / "archive"], progress=False, train_config=TINY)
+    donated = root / "donated"
+    donated.mkdir()
+    shutil.copy(root / "archive" / "coffee-01.png", donated / "coffee-same-bytes.png")
+    edited = Image.open(root / "archive" / "astronaut-10.png").convert("RGB").resize((180, 180))
+    ImageEnhance.Brightness(edited).enhance(1.15).save(donated / "astronaut-resized.jpg", quality=85)
+    for name in NEW:
+        _photo(name).save(donated / f"{name}.png")
+    (donated / "broken.jpg").write_bytes(b"\xff\xd8\xff\xe0 not really a JPEG")
+    return root
+
+
+def _state(store_dir):
+    """What a check must leave as it was: the catalog's rows and the published generation."""
+    with Store.open(store_dir, settings=load_settings(environ={})) as store:
+        return (store.catalog.counts(), len(store.catalog.files_with_hashes()),
+                generations.current(store).name, sorted(p.name for p in (store_dir / "generations").iterdir()))
+
+
+def test_each_file_gets_one_verdict_and_the_store_is_untouched(archive, run_cli):
+    before = _state(archive / "store")
+    proc = run_cli("check", archive / "donated", "--store", archive / "store", "--json", check_exit=0)
+    answers = {a["path"].rsplit("/", 1)[-1]: a for a in map(json.loads, proc.stdout.splitlines())}
+    assert set(answers) == {"coffee-same-bytes.png", "astronaut-resized.jpg", "broken.jpg"} | {f"{n}.png" for n in NEW}
+    for a in answers.values():
+        assert set(a) == {"path", "verdict", "match", "error"}
+    same = answers["coffee-same-bytes.png"]
+    assert same["verdict"] == "copy" and same["match"]["path"].endswith("/archive/coffee-01.png")
+    assert same["match"]["evidence"] == {"same_bytes": True}
+    resized = answers["astronaut-resized.jpg"]
+    assert resized["verdict"] == "copy" and resized["match"]["path"].endswith("/archive/astronaut-10.png")
+    assert resized["match"]["evidence"]["verified"]
+    assert answers["broken.jpg"]["verdict"] == "unreadable" and answers["broken.jpg"]["match"] is None
+    assert answers["broken.jpg"]["error"]["reason"] in ("corrupt", "truncated", "not-image")
+    for name in NEW:  # photos the archive does not hold are never called copies
+        assert answers[f"{name}.png"]["verdict"] in ("new", "similar")
+    assert _state(archive / "store") == before
+
+
+def test_fail_on_copy_fails_a_pipeline_and_csv_is_one_row_a_file(archive, run_cli):
+    failing = run_cli("check", archive / "donated", "--store", archive / "store", "--csv", "--fail-on", "copy")
+    assert failing.returncode == 1
+    rows = list(csv.DictReader(io.StringIO(failing.stdout)))
+    assert len(rows) == 3 + len(NEW)
+    verdicts = {r["path"].rsplit("/", 1)[-1]: r["verdict"] for r in rows}
+    assert verdicts["coffee-same-bytes.png"] == "copy" and verdicts["broken.jpg"] == "unreadable"
+    clean = run_cli("check", *(archive / "donated" / f"{n}.png" for n in NEW), "--store", archive / "store",
+                    "--fail-on", "copy")
+    assert clean.returncode == 0, clean.stdout + clean.stderr
+    table = clean.stdout.splitlines()
+    assert len(table) == len(NEW) and all(line.split()[0] in ("new", "similar") for line in table)
