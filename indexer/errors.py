@@ -93,6 +93,14 @@ class ForbiddenError(NearsightError):
     code = "forbidden"
 
 
+class MisdirectedError(NearsightError):
+    """A request naming a host this server does not answer for (RFC 9110 §15.5.20: 421). It keeps a web page
+    that rebinds its own name to 127.0.0.1 (DNS rebinding) from reading the collection through a browser."""
+
+    http_status = 421
+    code = "misdirected_request"
+
+
 class PayloadTooLargeError(NearsightError):
     """A request body over the service's upload limit."""
 

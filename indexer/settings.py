@@ -401,6 +401,14 @@ SETTINGS: tuple[Setting, ...] = (
         "too-large). Lower than max_pixels because a request decodes while others wait.",
     ),
     Setting(
+        "allowed_hosts",
+        "",
+        _origins,
+        "Host names the service answers for besides the loopback names (localhost, 127.0.0.1, [::1]) and the "
+        "address it listens on (comma-separated, e.g. photos.example.org; * for any). A request naming any "
+        "other host gets 421: a web page cannot rebind its own name to this machine and read the collection.",
+    ),
+    Setting(
         "cors_origins",
         "",
         _origins,

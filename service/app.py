@@ -18,7 +18,7 @@ from pathlib import Path
 from flask import Flask, g, jsonify, request
 from werkzeug.exceptions import HTTPException, RequestEntityTooLarge
 
-from indexer.errors import AuthError, ForbiddenError, NearsightError, NotReadyError
+from indexer.errors import AuthError, ForbiddenError, MisdirectedError, NearsightError, NotReadyError
 from indexer.store import Store
 
 from .config import ServiceConfig, resolve_config
@@ -94,6 +94,7 @@ def create_app(config=None) -> Flask:
     app.register_blueprint(api)
     app.register_blueprint(review)
     app.before_request(_start_timer)
+    app.before_request(_check_host)
     app.before_request(_authorize)
     app.after_request(_finish)
     app.register_error_handler(Exception, _error_response)
@@ -107,6 +108,14 @@ def _start_timer() -> None:
     g.started = time.perf_counter()
     state().metrics.in_flight.inc()
     g.counted = True
+
+
+def _check_host() -> None:
+    """Every route, health probes too: a request for another host is refused before anything is read."""
+    host = request.headers.get("Host", "")
+    if not state().config.answers_for(host):
+        raise MisdirectedError(f"this server does not answer for the host {host[:80]!r}: add it to the setting "
+                               "allowed_hosts if it is this machine's name")
 
 
 def _authorize() -> None:

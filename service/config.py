@@ -20,6 +20,7 @@ FROM_SETTINGS = {
     "host": "serve_host",
     "api_key": "api_key",
     "cors_origins": "cors_origins",
+    "allowed_hosts": "allowed_hosts",
     "max_upload_bytes": "max_upload_bytes",
     "max_upload_pixels": "max_upload_pixels",
     "max_pixels": "max_pixels",
@@ -45,11 +46,29 @@ class ServiceConfig:
     host: str
     api_key: str
     cors_origins: tuple[str, ...]
+    allowed_hosts: tuple[str, ...]
     max_upload_bytes: int
     max_upload_pixels: int
     max_pixels: int
     reload_s: float
     watch: bool = True  # run the thread that swaps in newly published generations
+
+    def answers_for(self, host_header: str) -> bool:
+        """Whether a request's Host (name or address, with or without a port) is one this server answers
+        for: a loopback name, the address it listens on (unless a wildcard), or a configured name."""
+        host = host_header.strip().lower()
+        if host.startswith("["):  # [::1]:8080
+            host = host[1:].partition("]")[0]
+        elif host.count(":") == 1:  # name:port or 127.0.0.1:port (a bare IPv6 address has more colons)
+            host = host.partition(":")[0]
+        if not host:
+            return False
+        if is_loopback(host) or "*" in self.allowed_hosts:
+            return True
+        listening = self.host.strip("[]").lower()
+        if host == listening and listening not in ("0.0.0.0", "::"):
+            return True
+        return host in (h.lower().strip("[]") for h in self.allowed_hosts)
 
     @property
     def reads_need_key(self) -> bool:
@@ -67,6 +86,7 @@ def resolve_config(config: Mapping[str, Any] | None) -> ServiceConfig:
         raise UsageError(f"unknown service config: {', '.join(sorted(given))}")
     values["api_key"] = values["api_key"] or ""
     values["cors_origins"] = tuple(values["cors_origins"] or ())
+    values["allowed_hosts"] = tuple(values["allowed_hosts"] or ())
     if values["reload_s"] <= 0:
         raise UsageError("reload_s must be > 0 seconds")
     cfg = ServiceConfig(store=store, settings=settings, watch=watch, **values)

@@ -445,3 +445,20 @@ def test_every_command_and_endpoint_refuses_an_out_of_range_number_with_the_same
         option = "-k" if name == "k" else f"--{name}"
         assert f"argument {option}: {expected}" in capsys.readouterr().err
         assert not (tmp_path / "no-store").exists()
+
+
+def test_a_foreign_host_is_refused_on_every_route_and_loopback_names_are_served(client):
+    """DNS rebinding: a page whose name now points at 127.0.0.1 sends its own name as Host. Every route (each
+    documented path with its ids filled in, the review page, a static file, the health probes) answers it with
+    421 in the JSON error shape (RFC 9110 §15.5.20), while the loopback names, with a port, are served."""
+    doc = client.get("/v1/openapi.json").json()
+    routes = [(method.upper(), path.replace("{image_id}", "1").replace("{gid}", "1"))
+              for path, operations in doc["paths"].items() for method in operations]
+    routes += [("GET", "/"), ("GET", "/static/review.js"), ("GET", "/healthz")]
+    assert len(routes) > 10
+    for method, path in routes:
+        _assert_error(client.request(method, path, b"", {"Host": "evil.example"}), 421, "misdirected_request")
+        _assert_error(client.request(method, path, b"", {"Host": f"evil.example:{client.port}"}), 421)
+    for host in ("localhost", "127.0.0.1", "[::1]"):
+        answered = client.request("GET", "/v1/status", None, {"Host": f"{host}:{client.port}"})
+        assert answered.status == 200, (host, answered.body[:200])
