@@ -87,12 +87,13 @@ def _better_of(direct: list[tuple[float, int]], other: list[tuple[float, int]],
 def _with_regions(merged: list[tuple[float, object, int]], found: list[tuple[float, int]], head: int,
                   places: int) -> list[tuple[float, object, int]]:
     """`merged` (similarity, other view, id) with up to `places` files found through region descriptors
-    (`found`, best first) put right after its first `head`, marked "region", each with the better of its
-    region and other score; files already among the first `head` are not repeated."""
+    (`found`, best first) put right after its first `head`, each with the better of its region score
+    (then marked "region") and the score it had; files already among the first `head` are not repeated."""
     first = merged[:head]
     have = {i for _, _, i in first}
-    rest = {i: d for d, _, i in merged[head:]}
-    regions = [(max(d, rest.get(i, d)), "region", i) for d, i in found if i not in have][:places]
+    rest = {i: (d, m) for d, m, i in merged[head:]}
+    regions = [(d, "region", i) if d > rest.get(i, (-np.inf, False))[0] else (*rest[i], i)
+               for d, i in found if i not in have][:places]
     moved = {i for _, _, i in regions}
     return first + regions + [t for t in merged[head:] if t[2] not in moved]
 

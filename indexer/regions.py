@@ -158,7 +158,8 @@ def region_candidates(index, xq: np.ndarray, n: int, excludes: Sequence[set], gr
     """Per query row, (similarity, file id) of up to `n` files, each with its best region's similarity,
     best first: the files whose regions are among the query's n * grid**2 nearest region vectors (enough
     for n files even when every region of the nearest files ranks first)."""
-    wanted = min(int(index.ntotal), n * grid * grid)
+    # Excluded files' regions take places in the search too: ask for theirs as well.
+    wanted = min(int(index.ntotal), (n + max((len(e) for e in excludes), default=0)) * grid * grid)
     if wanted == 0:
         return [[] for _ in range(len(xq))]
     D, I = index.search(np.ascontiguousarray(xq, dtype=np.float32), wanted)

@@ -220,10 +220,15 @@ def rerank_more(query, results: list[dict], candidates: dict[int, str], top: int
     part of it that only the fine check meets it at its scale; a query with no copy at all has nothing to
     verify; a query whose best candidate verified stops at `top`."""
     query = query_features(query)  # keypoints found once for every round
-    results = rerank(query, results, candidates, top, threshold, mirrored=mirrored)
+    # The head is verified first; the next `more` are taken in the order given, not re-sorted by the head's
+    # new scores, so that candidates placed right after the head (another view's, a region's) are checked
+    # whatever their score and however long the list is (the answer must not depend on k).
+    head = rerank(query, results[:top], candidates, top, threshold, mirrored=mirrored)
+    rest = results[top:]
+    results = sorted(head + rest, key=lambda r: -r["similarity"])
     if more and results and not _best_verified(results):
-        rest = rerank(query, results[top:], candidates, more, threshold, mirrored=mirrored)
-        results = sorted(results[:top] + rest, key=lambda r: -r["similarity"])
+        rest = rerank(query, rest, candidates, more, threshold, mirrored=mirrored)
+        results = sorted(head + rest, key=lambda r: -r["similarity"])
     if fine and results and not _best_verified(results):
         results = rerank_fine(query, results, candidates, fine, threshold, mirrored=mirrored)
     return results

@@ -72,8 +72,9 @@ def test_region_candidates_take_places_right_after_the_head_without_repeats():
     merged = [(0.9, False, 1), (0.8, False, 2), (0.7, True, 3), (0.6, False, 4), (0.5, False, 5)]
     found = [(0.95, 2), (0.65, 5), (0.4, 4), (0.3, 6)]
     out = _with_regions(merged, found, head=2, places=3)
-    # 2 is in the head already; 5 and 4 move up with the better of their scores; 6 is new.
-    assert out == [(0.9, False, 1), (0.8, False, 2), (0.65, "region", 5), (0.6, "region", 4), (0.3, "region", 6),
+    # 2 is in the head already; 5 and 4 move up, 5 with its region's better score (so marked a region), 4 with
+    # the score and mark it had (its region scores lower); 6 is new.
+    assert out == [(0.9, False, 1), (0.8, False, 2), (0.65, "region", 5), (0.6, False, 4), (0.3, "region", 6),
                    (0.7, True, 3)]
 
 

@@ -85,6 +85,21 @@ def test_more_candidates_are_verified_only_when_the_best_is_not(files):
 
 
 
+
+@pytest.mark.parametrize("length", [6, 40])
+def test_a_candidate_placed_after_the_head_is_verified_whatever_its_score_and_the_lists_length(files, length):
+    """A candidate put right after the head (as region descriptors place theirs) is among the next `more`
+    checked even when its score is the lowest: the list is not re-sorted before choosing them, so the
+    answer does not depend on how many results were asked for."""
+    from indexer.rerank import rerank_more
+
+    paths, query = files
+    candidates = {1: str(paths["left"])} | {i: str(paths["right" if i % 2 else "astronaut"]) for i in range(2, 100)}
+    look_alikes = [{"id": i, "similarity": 0.9 - 0.001 * i} for i in range(2, 2 + length)]
+    results = look_alikes[:2] + [{"id": 1, "similarity": 0.3}] + look_alikes[2:]
+    out = {r["id"]: r for r in rerank_more(query, results, candidates, top=2, more=3)}
+    assert out[1]["evidence"]["verified"] and out[1]["similarity"] == pytest.approx(boosted(0.3))
+
 # scikit-image's bundled photos (skimage.data); `cat` is left out, being chelsea again.
 FINE_PHOTOS = ("astronaut", "coffee", "chelsea", "rocket", "camera", "brick", "grass", "gravel", "immunohistochemistry", "hubble_deep_field", "retina", "page", "text", "moon", "coins", "clock")
 
