@@ -116,6 +116,8 @@ def _calibration_plan(prev, change: Change, calibration, settings) -> tuple[str,
     since = prev.meta.get("build", {}).get("since_calibration")
     if "calibration" not in prev.meta or since is None:
         return "calibrate", None
+    if int((prev.meta.get("regions") or {}).get("grid", 0)) != int(settings.region_grid):
+        return "calibrate", None  # the query verdict was measured through another search
     from .calibrate import MIN_IMAGES
 
     if "skipped" in prev.meta["calibration"] and since["indexed"] < MIN_IMAGES <= len(change.ids):
