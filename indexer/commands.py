@@ -68,7 +68,9 @@ def cmd_index(args) -> int:
 
     check_folders(args.folders)  # before the store is created: a mistyped folder leaves nothing behind
     with open_store(args, create=True) as store:
-        config = train_config(args, minutes=store.settings.train_minutes, max_images=store.settings.train_sample)
+        # --epochs alone replaces the time budget, as in `train`; --train-minutes with it keeps both.
+        minutes = None if args.epochs is not None and args.train_minutes is None else store.settings.train_minutes
+        config = train_config(args, minutes=minutes, max_images=store.settings.train_sample)
         summary = run_index(store, args.folders, progress=_progress(args), train_config=config,
                             build=not args.scan_only, index_spec=args.index_spec,
                             calibrate=not args.no_calibrate, retrain=args.retrain, cluster=args.cluster)
