@@ -642,22 +642,21 @@ def _fine_tune_loop(encoder: Encoder, pics: list[Image.Image], pairs: np.ndarray
     encoder.train()
     _freeze_batchnorm(encoder)
     losses = []
-    bar = Progress(config.steps, "fine-tune", enabled=progress, unit="step", every_s=30.0)
-    for _ in range(config.steps):
-        batch = pairs[rng.choice(len(pairs), size=min(config.batch_size, len(pairs)), replace=False)]
-        xa = torch.stack([views(pics[i]) for i in batch[:, 0]])
-        xb = torch.stack([views(pics[i]) for i in batch[:, 1]])
-        za, zb = encoder(torch.cat([xa, xb])).chunk(2)
-        if config.loss == "margin":
-            y = torch.as_tensor(1 - batch[:, 2])  # Hadsell et al.: y = 0 similar, 1 dissimilar
-            loss = margin_contrastive(za, zb, y, config.margin)
-        else:
-            loss = triplet_hard(torch.cat([za, zb]), torch.cat([labels[batch[:, 0]], labels[batch[:, 1]]]), config.margin)
-        optimizer.zero_grad(set_to_none=True)
-        loss.backward()
-        optimizer.step()
-        losses.append(float(loss.item()))
-        bar.update(1, loss=f"{losses[-1]:.3f}")
-    bar.close()
+    with Progress(config.steps, "fine-tune", enabled=progress, unit="step", every_s=30.0) as bar:
+        for _ in range(config.steps):
+            batch = pairs[rng.choice(len(pairs), size=min(config.batch_size, len(pairs)), replace=False)]
+            xa = torch.stack([views(pics[i]) for i in batch[:, 0]])
+            xb = torch.stack([views(pics[i]) for i in batch[:, 1]])
+            za, zb = encoder(torch.cat([xa, xb])).chunk(2)
+            if config.loss == "margin":
+                y = torch.as_tensor(1 - batch[:, 2])  # Hadsell et al.: y = 0 similar, 1 dissimilar
+                loss = margin_contrastive(za, zb, y, config.margin)
+            else:
+                loss = triplet_hard(torch.cat([za, zb]), torch.cat([labels[batch[:, 0]], labels[batch[:, 1]]]), config.margin)
+            optimizer.zero_grad(set_to_none=True)
+            loss.backward()
+            optimizer.step()
+            losses.append(float(loss.item()))
+            bar.update(1, loss=f"{losses[-1]:.3f}")
     encoder.eval()
     return losses
