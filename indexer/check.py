@@ -23,7 +23,7 @@ from typing import Iterator, Sequence
 
 from .errors import ImageReadError, NotFoundError
 from .fsutil import hash_file
-from .images import read_image
+from .query import read_query
 
 log = logging.getLogger(__name__)
 
@@ -66,14 +66,12 @@ def check_files(searcher, paths: Sequence[str], *, threshold: float | None = Non
         images, rows = [], []
         for row, given in enumerate(block):
             try:
-                if not Path(given).is_file():
-                    raise NotFoundError(f"no such file: {given}")
-                same = catalog.present_files_with_hash(hash_file(Path(given)))
+                same = catalog.present_files_with_hash(hash_file(Path(given))) if Path(given).is_file() else []
                 if same:  # the same bytes: no need to decode
                     answers[row] = CheckAnswer(given, "copy", {**same[0], "similarity": 1.0, "probability": 1.0,
                                                                "evidence": {"same_bytes": True}})
                     continue
-                images.append(read_image(given, max_side=2 * searcher.size)[0])
+                images.append(read_query(given, 2 * searcher.size))
                 rows.append(row)
             except (ImageReadError, NotFoundError) as exc:
                 answers[row] = CheckAnswer(given, "unreadable", error=exc.to_dict())

@@ -65,6 +65,14 @@ def expand_queries(paths: Sequence[str], extensions: tuple[str, ...]) -> list[st
     return out
 
 
+def read_query(given: str, max_side: int):
+    """A query file's pixels for searching (longest side `max_side`); NotFoundError when there is no such
+    file, ImageReadError when it is not a readable image."""
+    if not Path(given).exists():
+        raise NotFoundError(f"no such file: {given}")
+    return read_image(given, max_side=max_side)[0]
+
+
 def _better_of(direct: list[tuple[float, int]], other: list[tuple[float, int]],
                head: int | None = None) -> list[tuple[float, bool, int]]:
     """(similarity, whether it came from the other view, id) for every id of either list, with its better
@@ -376,13 +384,9 @@ class Searcher:
             images, good, answers = [], [], {}
             for given in block:
                 try:
-                    if not Path(given).exists():
-                        raise NotFoundError(f"no such file: {given}")
-                    images.append(read_image(given, max_side=max_side)[0])
+                    images.append(read_query(given, max_side))
                     good.append(given)
-                except ImageReadError as exc:
-                    answers[given] = {"query": given, "error": exc.to_dict()}
-                except NotFoundError as exc:
+                except (ImageReadError, NotFoundError) as exc:
                     answers[given] = {"query": given, "error": exc.to_dict()}
             if images:
                 for given, results in zip(good, self.neighbours(self.vectors_for_images(images), k, threshold,
