@@ -234,24 +234,24 @@ CHECK_COLUMNS = ("path", "verdict", "match_id", "match_path", "similarity", "pro
 
 def _check_row(answer) -> dict:
     match, error = answer.match or {}, answer.error or {}
+    evidence = match.get("evidence") or {}
     return {"path": answer.path, "verdict": answer.verdict, "match_id": match.get("id"),
             "match_path": match.get("path"), "similarity": match.get("similarity"),
             "probability": match.get("probability"),
-            "verified": (match.get("evidence") or {}).get("verified", (match.get("evidence") or {}).get("same_bytes")),
-            "reason": error.get("reason")}
+            "verified": evidence.get("verified", evidence.get("same_bytes")), "reason": error.get("reason")}
 
 
 def cmd_check(args) -> int:
     import csv
 
-    from .check import check_files
+    from .check import VERDICTS, check_files
     from .query import Searcher, expand_queries
 
     with open_store(args) as store:
         searcher = Searcher(store)
         paths = expand_queries(args.paths, store.settings.extensions)
         threshold = _threshold_arg(args, searcher.generation)
-        counts = dict.fromkeys(("copy", "similar", "new", "unreadable"), 0)
+        counts = dict.fromkeys(VERDICTS, 0)
         writer = csv.DictWriter(sys.stdout, CHECK_COLUMNS, lineterminator="\n") if args.csv else None
         if writer:
             writer.writeheader()
