@@ -32,7 +32,7 @@ LIBRARIES = ("numpy", "torch", "faiss-cpu", "pillow", "opencv-python-headless")
 def _answer(searcher, paths: list[str], batch: int, forget=None) -> dict[str, list[float]]:
     """Per stage, seconds per query of each batch (decode, embed, search + normalise + verify);
     `forget()`, when given, runs before each batch (untimed)."""
-    from indexer.images import read_image
+    from indexer.query import read_queries
 
     stages: dict[str, list[float]] = {"decode": [], "embed": [], "search and verify": [], "total": []}
     for start in range(0, len(paths), batch):
@@ -40,7 +40,7 @@ def _answer(searcher, paths: list[str], batch: int, forget=None) -> dict[str, li
         if forget is not None:
             forget()
         t0 = time.perf_counter()
-        images = [read_image(p, max_side=2 * searcher.size)[0] for p in block]
+        images = read_queries(block, 2 * searcher.size)  # as `similar` reads them: on every core at once
         t1 = time.perf_counter()
         xq = searcher.vectors_for_images(images)
         t2 = time.perf_counter()

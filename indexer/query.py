@@ -73,6 +73,20 @@ def read_query(given: str, max_side: int):
     return read_image(given, max_side=max_side)[0]
 
 
+def read_queries(paths: Sequence[str], max_side: int) -> list:
+    """`read_query` of each path, decoded on every core at once (indexer/cores.py): per path its image, or
+    the NotFoundError or ImageReadError that says why there is none."""
+    from .cores import each_on_cores
+
+    def one(given):
+        try:
+            return read_query(given, max_side)
+        except (ImageReadError, NotFoundError) as exc:
+            return exc
+
+    return each_on_cores(one, list(paths))
+
+
 def _better_of(direct: list[tuple[float, int]], other: list[tuple[float, int]],
                head: int | None = None) -> list[tuple[float, bool, int]]:
     """(similarity, whether it came from the other view, id) for every id of either list, with its better
@@ -382,12 +396,12 @@ class Searcher:
         for start in range(0, len(paths), QUERY_BATCH):
             block = paths[start : start + QUERY_BATCH]
             images, good, answers = [], [], {}
-            for given in block:
-                try:
-                    images.append(read_query(given, max_side))
+            for given, read in zip(block, read_queries(block, max_side)):
+                if isinstance(read, Exception):
+                    answers[given] = {"query": given, "error": read.to_dict()}
+                else:
+                    images.append(read)
                     good.append(given)
-                except (ImageReadError, NotFoundError) as exc:
-                    answers[given] = {"query": given, "error": exc.to_dict()}
             if images:
                 for given, results in zip(good, self.neighbours(self.vectors_for_images(images), k, threshold,
                                                                 images=images)):

@@ -202,9 +202,14 @@ def rerank_all(queries: Sequence, answers: list[list[dict]], candidates: dict[in
                threshold: float | None = None, more: int = 0, *, mirrored: bool = True, fine: int = 0) -> list[list[dict]]:
     """`rerank` for each (query, results) pair; with `more`, a query whose best result is still not
     verified has its next `more` results verified too, and with `fine` then its first `fine` unconfirmed
-    ones checked finely (`rerank_more`). A query is an image or its `query_features`."""
-    return [rerank_more(q, a, candidates, top, more, threshold, mirrored=mirrored, fine=fine)
-            for q, a in zip(queries, answers)]
+    ones checked finely (`rerank_more`). A query is an image or its `query_features`. The queries are
+    shared among the cores (indexer/cores.py)."""
+    from .cores import each_on_cores
+
+    def one(pair):
+        return rerank_more(pair[0], pair[1], candidates, top, more, threshold, mirrored=mirrored, fine=fine)
+
+    return each_on_cores(one, list(zip(queries, answers)))
 
 
 def _best_verified(results: list[dict]) -> bool:

@@ -1,0 +1,93 @@
+"""Work shared among the cores by threads (indexer/cores.py), and verification of a batch of queries on them.
+
+The reference for order and errors is what Python's own `map` and a plain loop give; the reference for the
+verification is the same function called one query at a time, on scikit-image's bundled photos.
+"""
+
+import threading
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from indexer import cores
+from indexer.rerank import rerank_all, rerank_more
+
+two_cores = pytest.mark.skipif(cores.usable_cores() < 2, reason="needs 2 usable cores")
+
+
+def test_results_come_back_in_the_items_order_as_map_gives_them():
+    items = list(range(50))
+    assert cores.each_on_cores(lambda x: x * x, items) == list(map(lambda x: x * x, items))
+    assert cores.each_on_cores(lambda x: x, []) == []
+
+
+@two_cores
+def test_the_items_run_in_several_threads_at_once():
+    barrier = threading.Barrier(2, timeout=10)  # only passes when two items run at the same time
+
+    def work(x):
+        barrier.wait()
+        return threading.current_thread().name
+
+    names = cores.each_on_cores(work, [0, 1])
+    assert len(set(names)) == 2 and all(n.startswith("nearsight-cores") for n in names)
+
+
+def test_an_error_in_one_item_reaches_the_caller():
+    def work(x):
+        if x == 3:
+            raise ValueError("item 3")
+        return x
+
+    with pytest.raises(ValueError, match="item 3"):
+        cores.each_on_cores(work, list(range(6)))
+
+
+@two_cores
+def test_faiss_runs_one_openmp_thread_in_the_workers_and_the_callers_setting_is_kept():
+    import faiss
+
+    before = faiss.omp_get_max_threads()
+    inside = cores.each_on_cores(lambda _: faiss.omp_get_max_threads(), [0, 1, 2, 3])
+    assert inside == [1, 1, 1, 1]
+    assert faiss.omp_get_max_threads() == before
+
+
+def _photo(name):
+    import skimage.data
+
+    return Image.fromarray(getattr(skimage.data, name)()).convert("RGB")
+
+
+def test_a_batch_verified_on_the_cores_answers_as_one_query_at_a_time_does(tmp_path):
+    """Six queries (crops and a mirror image of scikit-image photos, and one photo the candidates lack)
+    against five candidates: `rerank_all` gives exactly what `rerank_more` gives query by query."""
+    names = ["astronaut", "coffee", "chelsea", "rocket", "brick"]
+    candidates = {}
+    for i, name in enumerate(names):
+        path = tmp_path / f"{name}.png"
+        _photo(name).save(path)
+        candidates[i] = str(path)
+    queries = []
+    for name in names[:4]:
+        im = _photo(name)
+        w, h = im.size
+        queries.append(im.crop((w // 10, h // 10, w // 10 + int(0.7 * w), h // 10 + int(0.7 * h))))
+    queries += [_photo("coffee").transpose(Image.Transpose.FLIP_LEFT_RIGHT), _photo("camera").convert("RGB")]
+    rng = np.random.default_rng(0)
+
+    def answers():
+        return [[{"id": int(i), "similarity": round(float(s), 3)}
+                 for i, s in zip(order, sorted(rng_scores, reverse=True))]
+                for order, rng_scores in plans]
+
+    plans = [(np.random.default_rng(q).permutation(len(names)), rng.uniform(0.2, 0.9, len(names)))
+             for q in range(len(queries))]
+    together = rerank_all(queries, answers(), candidates, top=2, more=3, fine=1)
+    alone = [rerank_more(q, a, candidates, 2, 3, fine=1) for q, a in zip(queries, answers())]
+    assert together == alone
+    # Not a vacuous comparison: the crops and the mirror image verify, the photo the candidates lack does not.
+    originals = [0, 1, 2, 3, 1]  # candidate id of each query's photo; the last query has none
+    verified = [{r["id"] for r in results if (r.get("evidence") or {}).get("verified")} for results in together]
+    assert verified[:5] == [{i} for i in originals] and verified[5] == set()
