@@ -55,10 +55,10 @@ def describe(paths: Sequence[Path], model_dir: Path, classics: Sequence[str], mi
     with `regions`, the rows are each file's regions in REGIONS order instead."""
     import torch
 
-    from indexer.classic import classic_descriptor
-    from indexer.encoder import pixels, preprocess
-    from indexer.images import read_image
-    from indexer.model import load_model
+    from nearsight.indexer.classic import classic_descriptor
+    from nearsight.indexer.encoder import pixels, preprocess
+    from nearsight.indexer.images import read_image
+    from nearsight.indexer.model import load_model
 
     encoder, card = load_model(model_dir)
     size = int(card["image_size"])
@@ -129,7 +129,7 @@ def _symmetric(x: Described, mirrored: Described) -> Described:
 
 
 def _space(lever: Lever, xb: Described, *others: Described):
-    from indexer.whiten import fit_whitening, identity
+    from nearsight.indexer.whiten import fit_whitening, identity
 
     d = xb.learned.shape[1]
     w = lever.weight if lever.classic else 0.0
@@ -216,14 +216,14 @@ class Verifier:
         self.images: dict[int, object] = {}
 
     def _image(self, path: Path):
-        from indexer.images import read_image
-        from indexer.rerank import VERIFY_SIDE
+        from nearsight.indexer.images import read_image
+        from nearsight.indexer.rerank import VERIFY_SIDE
 
         return read_image(path, max_side=VERIFY_SIDE)[0]
 
     def verified(self, q: int, refs: Sequence[int]) -> list[bool]:
-        from indexer.rerank import VERIFY_SIDE
-        from indexer.verify import VerifyConfig, verify_candidates
+        from nearsight.indexer.rerank import VERIFY_SIDE
+        from nearsight.indexer.verify import VerifyConfig, verify_candidates
 
         todo = [r for r in refs if (q, r) not in self.done]
         if todo:
@@ -236,7 +236,7 @@ class Verifier:
         return [self.done[q, r] for r in refs]
 
     def rerank(self, pred: metrics.Predictions, top: int) -> metrics.Predictions:
-        from indexer.rerank import boosted
+        from nearsight.indexer.rerank import boosted
 
         score = pred.score.copy()
         for q in np.unique(pred.q):

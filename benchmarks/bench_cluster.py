@@ -34,11 +34,11 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from benchmarks.bench_read import make_small_jpegs  # noqa: E402
 from benchmarks.common import DEFAULT_LIBRARIES, machine  # noqa: E402
-from indexer import index as ix  # noqa: E402
-from indexer.cluster import iter_local, iter_on_client  # noqa: E402
-from indexer.embed import embed_files  # noqa: E402
-from indexer.encoder import DEFAULT_ARCH, create_encoder  # noqa: E402
-from indexer.model import save_model  # noqa: E402
+from nearsight.indexer import index as ix  # noqa: E402
+from nearsight.indexer.cluster import iter_local, iter_on_client  # noqa: E402
+from nearsight.indexer.embed import embed_files  # noqa: E402
+from nearsight.indexer.encoder import DEFAULT_ARCH, create_encoder  # noqa: E402
+from nearsight.indexer.model import save_model  # noqa: E402
 
 SIZE = 128
 DIM = 128

@@ -5,7 +5,7 @@ encoder (resnet_narrow at 128 px; a few training steps only: speed does not depe
 weights), then in one run:
 
 * the same queries in-process (`Searcher.similar_to_id`, `Searcher.similar_to_upload`) and over
-  HTTP to `python -m indexer serve` on 127.0.0.1 (GET /v1/images/<id>/similar, POST /v1/search
+  HTTP to `python -m nearsight serve` on 127.0.0.1 (GET /v1/images/<id>/similar, POST /v1/search
   with the raw JPEG), alternating in rounds so that drift hits both alike; the ratio of medians
   is the cost of the HTTP layer (Flask, waitress, JSON, loopback TCP, the SQLite path lookup is
   in both);
@@ -51,15 +51,15 @@ from PIL import Image  # noqa: E402
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from demo_data.generate import generate  # noqa: E402
-from indexer.errors import ImageReadError  # noqa: E402
-from indexer.images import read_image  # noqa: E402
+from nearsight.demo_data.generate import generate  # noqa: E402
+from nearsight.indexer.errors import ImageReadError  # noqa: E402
+from nearsight.indexer.images import read_image  # noqa: E402
 from benchmarks.common import DEFAULT_LIBRARIES, machine  # noqa: E402
-from indexer.pipeline import run_index  # noqa: E402
-from indexer.query import Searcher  # noqa: E402
-from indexer.settings import load_settings  # noqa: E402
-from indexer.store import Store  # noqa: E402
-from indexer.train import TrainConfig  # noqa: E402
+from nearsight.indexer.pipeline import run_index  # noqa: E402
+from nearsight.indexer.query import Searcher  # noqa: E402
+from nearsight.indexer.settings import load_settings  # noqa: E402
+from nearsight.indexer.store import Store  # noqa: E402
+from nearsight.indexer.train import TrainConfig  # noqa: E402
 
 K = 10
 UPLOADS = 8
@@ -101,7 +101,7 @@ class Client:
 def start_server(store: Path, threads: int = 8) -> tuple[subprocess.Popen, str, int]:
     env = {k: v for k, v in os.environ.items() if not k.startswith("NEARSIGHT_")}
     env["PYTHONPATH"] = str(ROOT)
-    proc = subprocess.Popen([sys.executable, "-m", "indexer", "serve", "--store", str(store), "--host", "127.0.0.1",
+    proc = subprocess.Popen([sys.executable, "-m", "nearsight", "serve", "--store", str(store), "--host", "127.0.0.1",
                              "--port", "0", "--threads", str(threads), "--quiet"],
                             stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True, env=env)
     for line in proc.stdout:

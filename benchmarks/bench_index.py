@@ -33,8 +33,8 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from indexer import index as ix  # noqa: E402
-from indexer.groups import ImageMeta, build_groups  # noqa: E402
+from nearsight.indexer import index as ix  # noqa: E402
+from nearsight.indexer.groups import ImageMeta, build_groups  # noqa: E402
 
 BLOCK = 100_000
 

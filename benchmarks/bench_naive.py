@@ -46,8 +46,8 @@ def naive(paths: list[Path], model_dir: Path) -> dict:
     """Decode at full size, embed, flat index, range search: seconds per step."""
     import faiss
 
-    from indexer.embed import embed_images
-    from indexer.model import load_model
+    from nearsight.indexer.embed import embed_images
+    from nearsight.indexer.model import load_model
 
     encoder, card = load_model(model_dir)
     stages = {"decode (full size) + shrink": 0.0, "embed": 0.0}
@@ -84,9 +84,9 @@ def naive(paths: list[Path], model_dir: Path) -> dict:
 
 
 def nearsight(folder: Path, model_dir: Path, store_dir: Path, calibrate: bool) -> dict:
-    from indexer.pipeline import run_index
-    from indexer.settings import load_settings
-    from indexer.store import Store
+    from nearsight.indexer.pipeline import run_index
+    from nearsight.indexer.settings import load_settings
+    from nearsight.indexer.store import Store
 
     with Store.open(store_dir, create=True, settings=load_settings(environ={})) as store:
         target = store.models_dir / model_dir.name
@@ -138,8 +138,8 @@ def main() -> None:
     parser.add_argument("--small", type=int, default=100, help="640x480 PNGs")
     parser.add_argument("--out", type=Path, help="write the Markdown report to this file")
     args = parser.parse_args()
-    from indexer.encoder import DEFAULT_ARCH, create_encoder
-    from indexer.model import save_model
+    from nearsight.indexer.encoder import DEFAULT_ARCH, create_encoder
+    from nearsight.indexer.model import save_model
 
     with tempfile.TemporaryDirectory() as tmp:
         work = Path(tmp)

@@ -39,8 +39,8 @@ import numpy as np  # noqa: E402
 from PIL import Image, ImageEnhance  # noqa: E402
 
 from benchmarks.common import machine  # noqa: E402
-from indexer.settings import load_settings  # noqa: E402
-from indexer.store import Store  # noqa: E402
+from nearsight.indexer.settings import load_settings  # noqa: E402
+from nearsight.indexer.store import Store  # noqa: E402
 
 # run_index and TrainConfig (torch, FAISS) are imported where they are used: the scan's worker
 # processes start by importing this file, and the command line's workers do not import them either.
@@ -99,7 +99,7 @@ def change_one_percent(folders: list[Path], seed: int = 1) -> dict:
 
 
 def timed(store_dir: Path, folders, *, train_config=None, **overrides) -> tuple[float, dict]:
-    from indexer.pipeline import run_index
+    from nearsight.indexer.pipeline import run_index
 
     settings = load_settings(store_dir=store_dir, environ={}, overrides=overrides or None)
     with Store.open(store_dir, create=True, settings=settings) as store:
@@ -109,11 +109,11 @@ def timed(store_dir: Path, folders, *, train_config=None, **overrides) -> tuple[
 
 
 def as_process(store_dir: Path, folders) -> tuple[float, dict]:
-    """`python -m indexer index ... --json` in a child process, timed from outside (start-up included)."""
+    """`python -m nearsight index ... --json` in a child process, timed from outside (start-up included)."""
     env = {k: v for k, v in os.environ.items() if not k.startswith("NEARSIGHT_")}
     env["PYTHONPATH"] = str(Path(__file__).resolve().parent.parent)
     started = time.perf_counter()
-    proc = subprocess.run([sys.executable, "-m", "indexer", "index", *map(str, folders), "--store", str(store_dir),
+    proc = subprocess.run([sys.executable, "-m", "nearsight", "index", *map(str, folders), "--store", str(store_dir),
                            "--json", "--no-progress", "-q"], capture_output=True, text=True, env=env, check=True)
     return time.perf_counter() - started, json.loads(proc.stdout)
 
@@ -149,7 +149,7 @@ def main() -> None:
         folders = make_collection(work, args.files)
         made = time.perf_counter() - started
         store = work / "store"
-        from indexer.train import TrainConfig
+        from nearsight.indexer.train import TrainConfig
 
         config = TrainConfig(steps=args.train_steps, minutes=None, seed=0)
         first_s, first = timed(store, folders, train_config=config)

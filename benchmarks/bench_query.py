@@ -32,7 +32,7 @@ LIBRARIES = ("numpy", "torch", "faiss-cpu", "pillow", "opencv-python-headless")
 def _answer(searcher, paths: list[str], batch: int, forget=None) -> dict[str, list[float]]:
     """Per stage, seconds per query of each batch (decode, embed, search + normalise + verify);
     `forget()`, when given, runs before each batch (untimed)."""
-    from indexer.query import read_queries
+    from nearsight.indexer.query import read_queries
 
     stages: dict[str, list[float]] = {"decode": [], "embed": [], "search and verify": [], "total": []}
     for start in range(0, len(paths), batch):
@@ -65,10 +65,10 @@ def main() -> int:
                         help="a setting other than its default (e.g. mirror_view=off); repeatable")
     args = parser.parse_args()
 
-    from indexer import rerank
-    from indexer.query import Searcher
-    from indexer.settings import load_settings
-    from indexer.store import Store
+    from nearsight.indexer import rerank
+    from nearsight.indexer.query import Searcher
+    from nearsight.indexer.settings import load_settings
+    from nearsight.indexer.store import Store
 
     overrides = dict(item.split("=", 1) for item in args.set)
     files = sorted(str(p) for p in (args.work / "queries").rglob("*") if p.is_file())

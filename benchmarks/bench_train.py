@@ -29,11 +29,11 @@ from PIL import Image
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from indexer import train as train_module  # noqa: E402
-from indexer.encoder import ARCHS, ProjectionHead  # noqa: E402
-from indexer.heldout import heldout_check  # noqa: E402
-from indexer.model import library_versions, load_model  # noqa: E402
-from indexer.train import CHECKPOINT_FILE, TrainConfig, split_heldout, train  # noqa: E402
+from nearsight.indexer import train as train_module  # noqa: E402
+from nearsight.indexer.encoder import ARCHS, ProjectionHead  # noqa: E402
+from nearsight.indexer.heldout import heldout_check  # noqa: E402
+from nearsight.indexer.model import library_versions, load_model  # noqa: E402
+from nearsight.indexer.train import CHECKPOINT_FILE, TrainConfig, split_heldout, train  # noqa: E402
 
 log = logging.getLogger("bench_train")
 
@@ -51,7 +51,7 @@ def build_collection(work: Path, originals: int) -> list[Path]:
     paths = []
     archive = work / f"archive-{originals}"
     if not (archive / "truth.json").is_file():
-        from demo_data.generate import generate
+        from nearsight.demo_data.generate import generate
 
         generate(archive, seed=7, originals=originals)
     truth = json.loads((archive / "truth.json").read_text())

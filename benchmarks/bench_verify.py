@@ -53,8 +53,8 @@ from benchmarks.protocol import (  # noqa: E402
     shape_overlay,
     text_overlay,
 )
-from indexer import edits  # noqa: E402
-from indexer.verify import (  # noqa: E402
+from nearsight.indexer import edits  # noqa: E402
+from nearsight.indexer.verify import (  # noqa: E402
     DEFAULT_VERIFY,
     VerifyConfig,
     extract_features,

@@ -358,7 +358,7 @@ def references(seed: int, limit: int | None = None) -> list[Reference]:
 
 def distractors(demo_dir: Path, *, originals: int, seed: int) -> list[Path]:
     """Originals and look-alikes of the invented demo archive (generated into demo_dir if missing)."""
-    from indexer.demo import ensure_archive
+    from nearsight.indexer.demo import ensure_archive
 
     truth = ensure_archive(demo_dir, seed=seed, originals=originals)
     return [demo_dir / img["path"] for img in truth["images"] if img["kind"] in ("original", "look-alike")]

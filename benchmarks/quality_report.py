@@ -19,7 +19,7 @@ def _f(x, digits: int = 3) -> str:
 
 
 def _wilson(k: int, n: int) -> str:
-    from indexer.rates import wilson_interval
+    from nearsight.indexer.rates import wilson_interval
 
     if n == 0:
         return "n/a"

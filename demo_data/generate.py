@@ -8,7 +8,7 @@ and a few damaged files. Everything derives from one seed:
 for the same seed on the same Pillow and numpy versions, whatever the number of
 worker processes.
 
-    python -m demo_data.generate OUT [--seed N] [--originals N]
+    python -m nearsight.demo_data.generate OUT [--seed N] [--originals N]
 """
 
 from __future__ import annotations
@@ -230,7 +230,7 @@ def summary(truth: dict) -> str:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="python -m demo_data.generate",
+    parser = argparse.ArgumentParser(prog="python -m nearsight.demo_data.generate",
                                      description="Generate the invented Quillon Ford demo archive and its truth.json.")
     parser.add_argument("out", help="folder to create (must be missing or empty)")
     parser.add_argument("--seed", type=int, default=7, help="random seed (default: 7)")

@@ -375,7 +375,7 @@ def _emit(text: str, out: str | None) -> None:
 
 # -- serve ---------------------------------------------------------------------------------------
 def cmd_serve(args) -> int:
-    from service.server import run_server
+    from nearsight.service.server import run_server
 
     with open_store(args) as store:
         root, settings = store.root, store.settings

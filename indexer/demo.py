@@ -1,6 +1,6 @@
 """`nearsight demo`: generate the invented demo archive, run the main job, compare with the truth.
 
-The archive comes from demo_data.generate (seeded, deterministic). The report
+The archive comes from nearsight.demo_data.generate (seeded, deterministic). The report
 measures what the stages built so far find against the planted truth and says
 plainly which stages are not there yet.
 """
@@ -41,7 +41,7 @@ def ensure_archive(out: Path, *, seed: int, originals: int) -> dict:
     into place when complete, so an interrupted generation never leaves a
     half-made archive where the next run would look for one.
     """
-    from demo_data.generate import generate
+    from nearsight.demo_data.generate import generate
 
     truth_path = out / TRUTH_FILE
     if truth_path.is_file():

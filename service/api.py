@@ -13,11 +13,11 @@ import time
 
 from flask import Blueprint, Response, jsonify, request, send_file
 
-from indexer import __version__
-from indexer.errors import ImageReadError, NotFoundError, UsageError
-from indexer.images import read_image
-from indexer.calibration_report import questions
-from indexer.pipeline import store_status
+from nearsight.indexer import __version__
+from nearsight.indexer.errors import ImageReadError, NotFoundError, UsageError
+from nearsight.indexer.images import read_image
+from nearsight.indexer.calibration_report import questions
+from nearsight.indexer.pipeline import store_status
 
 from . import params
 from .app import snapshot, state
@@ -230,7 +230,7 @@ def plan():
     verdicts leave them and the store's keeper rules, with the evidence for each file; nothing is moved or
     written (the CLI's --apply is the only way to act). Groups with a file to move or a near-duplicate left
     unverified are listed."""
-    from indexer.plan import ACTION_TIERS, plan_quarantine
+    from nearsight.indexer.plan import ACTION_TIERS, plan_quarantine
 
     tier = request.args.get("tier") or None
     if tier is not None and tier not in ACTION_TIERS:

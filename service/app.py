@@ -18,8 +18,8 @@ from pathlib import Path
 from flask import Flask, g, jsonify, request
 from werkzeug.exceptions import HTTPException, RequestEntityTooLarge
 
-from indexer.errors import AuthError, ForbiddenError, MisdirectedError, NearsightError, NotReadyError
-from indexer.store import Store
+from nearsight.indexer.errors import AuthError, ForbiddenError, MisdirectedError, NearsightError, NotReadyError
+from nearsight.indexer.store import Store
 
 from .config import ServiceConfig, resolve_config
 from .live import LiveGeneration, Snapshot
@@ -27,7 +27,7 @@ from .metrics import Metrics
 from .params import MULTIPART_SLACK
 
 log = logging.getLogger(__name__)
-request_log = logging.getLogger("service.requests")
+request_log = logging.getLogger("nearsight.service.requests")
 
 HERE = Path(__file__).resolve().parent
 GENERATION_HEADER = "X-Nearsight-Generation"

@@ -20,15 +20,15 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
 
-from indexer.errors import NearsightError, NotFoundError, StoreError, UsageError
-from indexer.generations import POINTER, Generation
-from indexer.groups import TIERS as GROUP_TIERS
-from indexer.groups import Group
-from indexer.query import Searcher
-from indexer.review_queue import ReviewQueue, review_queue
-from indexer.settings import Settings
-from indexer.store import Store
-from indexer.verdict_groups import judged_groups
+from nearsight.indexer.errors import NearsightError, NotFoundError, StoreError, UsageError
+from nearsight.indexer.generations import POINTER, Generation
+from nearsight.indexer.groups import TIERS as GROUP_TIERS
+from nearsight.indexer.groups import Group
+from nearsight.indexer.query import Searcher
+from nearsight.indexer.review_queue import ReviewQueue, review_queue
+from nearsight.indexer.settings import Settings
+from nearsight.indexer.store import Store
+from nearsight.indexer.verdict_groups import judged_groups
 
 log = logging.getLogger(__name__)
 

@@ -26,7 +26,7 @@ def run_cli(tmp_path):
         env = dict(os.environ, PYTHONPATH=str(ROOT))
         env.update(kwargs.pop("env", {}))
         proc = subprocess.run(
-            [sys.executable, "-m", "indexer", *map(str, args)],
+            [sys.executable, "-m", "nearsight", *map(str, args)],
             capture_output=True, text=True, env=env, cwd=kwargs.pop("cwd", tmp_path), timeout=600,
         )
         if check_exit is not None:

@@ -5,7 +5,7 @@ download): 16 photos at 320 px, a 3 x 3 grid of tiles cut from each (distractors
 a photo's texture), and for three photos a PNG with the same pixels plus a 75% JPEG copy,
 so the duplicate groups hold pairs of different contents that a person can judge.
 
-Servers are `python -m indexer serve --port 0` subprocesses bound to 127.0.0.1; the test
+Servers are `python -m nearsight serve --port 0` subprocesses bound to 127.0.0.1; the test
 reads the address the server prints. Each consumer that writes (verdicts, a new
 generation) gets its own copy of the store.
 """
@@ -34,7 +34,7 @@ COPIED = ("astronaut", "coffee", "chelsea")
 
 
 def _train_config():
-    from indexer.train import TrainConfig
+    from nearsight.indexer.train import TrainConfig
 
     # A tiny encoder trained for 20 steps (a few seconds on 2 cores). Measured while writing these
     # tests: 3 steps already rank a 70%-resized JPEG (quality 60) of each of the 13 uncopied photos
@@ -107,9 +107,9 @@ class BuiltStore:
 
 
 def build_store(work: Path) -> BuiltStore:
-    from indexer.pipeline import run_index
-    from indexer.settings import load_settings
-    from indexer.store import Store
+    from nearsight.indexer.pipeline import run_index
+    from nearsight.indexer.settings import load_settings
+    from nearsight.indexer.store import Store
 
     archive = work / "archive"
     originals = make_archive(archive)
@@ -141,7 +141,7 @@ class ServerProcess:
         self.log_path = self.log_path or self.store.parent / f"{self.store.name}-server.log"
         log = open(self.log_path, "wb")
         self.proc = subprocess.Popen(
-            [sys.executable, "-m", "indexer", "serve", "--store", str(self.store), "--host", "127.0.0.1",
+            [sys.executable, "-m", "nearsight", "serve", "--store", str(self.store), "--host", "127.0.0.1",
              "--port", "0", "--threads", "8"],
             stdout=subprocess.PIPE, stderr=log, env=env, cwd=str(self.store.parent), text=True)
         log.close()

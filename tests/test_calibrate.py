@@ -9,13 +9,13 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from indexer.errors import NotReadyError, UsageError
-from indexer.generations import threshold_for_precision
-from indexer.pipeline import run_index
-from indexer.rates import counts_at_or_above, fit_mixture, survival, wilson_interval
-from indexer.settings import load_settings
-from indexer.store import Store
-from indexer.verdicts import verdict_report
+from nearsight.indexer.errors import NotReadyError, UsageError
+from nearsight.indexer.generations import threshold_for_precision
+from nearsight.indexer.pipeline import run_index
+from nearsight.indexer.rates import counts_at_or_above, fit_mixture, survival, wilson_interval
+from nearsight.indexer.settings import load_settings
+from nearsight.indexer.store import Store
+from nearsight.indexer.verdicts import verdict_report
 
 from .test_pipeline import TINY, _scene
 
@@ -90,7 +90,7 @@ def test_the_tails_expected_count_is_scipys_integral_without_overflow(a, b):
     and no RuntimeWarning (turned into an error here)."""
     from scipy import integrate
 
-    from indexer.rates import MixtureFit
+    from nearsight.indexer.rates import MixtureFit
 
     fit = MixtureFit(floor=0.2, dup_hits=10.0, a=a, b=b, pos_mass_above_floor=1.0)
     for t in (0.2, 0.5, 0.9, 1.0):
@@ -148,7 +148,7 @@ def store_dir(tmp_path_factory):
 
 def test_index_calibrates_and_the_result_is_coherent(store_dir):
     with Store.open(store_dir, settings=load_settings(environ={})) as store:
-        from indexer.generations import require_current
+        from nearsight.indexer.generations import require_current
 
         gen = require_current(store)
         cal = gen.load_calibration()
@@ -172,9 +172,9 @@ def test_index_calibrates_and_the_result_is_coherent(store_dir):
 def test_negatives_leave_out_planted_duplicates(store_dir):
     """Contamination: the exact copy and a pair a person marked "same" are among each other's
     closest neighbours; the hard negatives must exclude exactly those pairs (counted with hashlib)."""
-    from indexer.build import load_vectors
-    from indexer.calibrate import neighbour_hits
-    from indexer.generations import require_current
+    from nearsight.indexer.build import load_vectors
+    from nearsight.indexer.calibrate import neighbour_hits
+    from nearsight.indexer.generations import require_current
 
     with Store.open(store_dir, settings=load_settings(environ={})) as store:
         gen = require_current(store)
@@ -232,8 +232,8 @@ def test_calibrate_command_summary_precision_flag_and_verdict_import(store_dir, 
 
 
 def test_calibration_refuses_a_store_too_small_to_measure(tmp_path):
-    from indexer.build import recalibrate
-    from indexer.calibrate import CalibrationConfig
+    from nearsight.indexer.build import recalibrate
+    from nearsight.indexer.calibrate import CalibrationConfig
 
     folder = tmp_path / "few"
     folder.mkdir()

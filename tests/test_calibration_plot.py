@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from indexer.calibration_report import LABEL_GID, plot_figure, plot_png, summary_text
+from nearsight.indexer.calibration_report import LABEL_GID, plot_figure, plot_png, summary_text
 
 
 def _tier(rng, threshold, target, positives, duplicate_pairs):

@@ -13,11 +13,11 @@ import pytest
 from PIL import Image, ImageEnhance
 from skimage import data
 
-from indexer import generations
-from indexer.pipeline import run_index
-from indexer.settings import load_settings
-from indexer.store import Store
-from indexer.train import TrainConfig
+from nearsight.indexer import generations
+from nearsight.indexer.pipeline import run_index
+from nearsight.indexer.settings import load_settings
+from nearsight.indexer.store import Store
+from nearsight.indexer.train import TrainConfig
 
 ARCHIVE = ("astronaut", "coffee", "chelsea", "rocket", "camera", "brick", "immunohistochemistry", "hubble_deep_field",
            "retina", "coins")

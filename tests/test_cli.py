@@ -7,8 +7,8 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from indexer.cli import build_parser
-from indexer.store import Store
+from nearsight.indexer.cli import build_parser
+from nearsight.indexer.store import Store
 
 
 @pytest.fixture

@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from indexer import cores
-from indexer.rerank import rerank_all, rerank_more
+from nearsight.indexer import cores
+from nearsight.indexer.rerank import rerank_all, rerank_more
 
 two_cores = pytest.mark.skipif(cores.usable_cores() < 2, reason="needs 2 usable cores")
 

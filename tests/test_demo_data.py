@@ -22,7 +22,7 @@ import numpy as np
 import pytest
 from PIL import Image, ImageOps
 
-from demo_data.generate import MAX_ORIGINALS, ROOT, TRUTH_FILE, generate
+from nearsight.demo_data.generate import MAX_ORIGINALS, ROOT, TRUTH_FILE, generate
 
 ROOT_DIR = Path(__file__).resolve().parent.parent
 SMALL = 30
@@ -309,7 +309,7 @@ def test_refuses_a_file_as_output_folder(tmp_path):
 
 def _cli(*args):
     env = {"PYTHONPATH": str(ROOT_DIR), "PATH": "/usr/bin:/bin"}
-    return subprocess.run([sys.executable, "-m", "demo_data.generate", *map(str, args)], capture_output=True,
+    return subprocess.run([sys.executable, "-m", "nearsight.demo_data.generate", *map(str, args)], capture_output=True,
                           text=True, cwd=ROOT_DIR, env=env, timeout=300)
 
 

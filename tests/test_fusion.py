@@ -8,13 +8,13 @@ import numpy as np
 from PIL import Image
 from sklearn.metrics import average_precision_score
 
-from indexer.build import load_vectors
-from indexer.fusion import AP_TOLERANCE, WEIGHT_GRID, choose_weight, fit_classic_weight
-from indexer.pipeline import run_index
-from indexer.settings import load_settings
-from indexer.store import Store
-from indexer.train import TrainConfig
-from indexer.whiten import fit_whitening
+from nearsight.indexer.build import load_vectors
+from nearsight.indexer.fusion import AP_TOLERANCE, WEIGHT_GRID, choose_weight, fit_classic_weight
+from nearsight.indexer.pipeline import run_index
+from nearsight.indexer.settings import load_settings
+from nearsight.indexer.store import Store
+from nearsight.indexer.train import TrainConfig
+from nearsight.indexer.whiten import fit_whitening
 
 
 def _unit(x):
@@ -78,10 +78,10 @@ def test_the_fit_reads_only_the_store_s_own_images(tmp_path, monkeypatch):
         model = store.read_pointer("models/CURRENT")
         ids, xb = load_vectors(store, model)
         read = []
-        import indexer.images
+        from nearsight.indexer import images as image_module
 
-        real = indexer.images.read_image
-        monkeypatch.setattr(indexer.images, "read_image", lambda src, *a, **k: (read.append(Path(src)), real(src, *a, **k))[1])
+        real = image_module.read_image
+        monkeypatch.setattr(image_module, "read_image", lambda src, *a, **k: (read.append(Path(src)), real(src, *a, **k))[1])
         fit = fit_classic_weight(store, store.models_dir / model, ids, xb, originals=25)
         assert fit.copies == 50 and fit.weight in WEIGHT_GRID
         assert read and all(p.is_relative_to(store.root) or p.is_relative_to(photos) for p in read)

@@ -10,8 +10,8 @@ import pytest
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
-from indexer.errors import UsageError
-from indexer.groups import (ImageMeta, build_groups, group_id, groups_from_json, groups_to_csv,
+from nearsight.indexer.errors import UsageError
+from nearsight.indexer.groups import (ImageMeta, build_groups, group_id, groups_from_json, groups_to_csv,
                             groups_to_json, keeper_key, reclaimable_bytes, summarize)
 
 

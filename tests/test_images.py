@@ -22,9 +22,9 @@ from PIL import Image, ImageOps, JpegImagePlugin
 from skimage import data as skdata
 from skimage import transform as sktransform
 
-from indexer import images
-from indexer.errors import ImageReadError
-from indexer.images import ImageInfo, fit_size, probe, read_image, save_thumbnail, to_rgb
+from nearsight.indexer import images
+from nearsight.indexer.errors import ImageReadError
+from nearsight.indexer.images import ImageInfo, fit_size, probe, read_image, save_thumbnail, to_rgb
 
 # Open data shipped inside the scikit-image package (skimage.data): public photos
 # bundled with the library, so no network is needed. "camera" is greyscale.

@@ -9,8 +9,8 @@ import numpy as np
 import pytest
 from sklearn.neighbors import NearestNeighbors
 
-from indexer import index as ix
-from indexer.errors import NotFoundError, NotReadyError, UsageError
+from nearsight.indexer import index as ix
+from nearsight.indexer.errors import NotFoundError, NotReadyError, UsageError
 
 
 def unit(x):

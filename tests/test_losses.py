@@ -5,8 +5,8 @@ import pytest
 import torch
 from scipy.spatial.distance import cdist
 
-from indexer.errors import UsageError
-from indexer.losses import batch_hard_indices, koleo, margin_contrastive, nt_xent, triplet, triplet_hard
+from nearsight.indexer.errors import UsageError
+from nearsight.indexer.losses import batch_hard_indices, koleo, margin_contrastive, nt_xent, triplet, triplet_hard
 
 
 def _unit(x: np.ndarray) -> np.ndarray:

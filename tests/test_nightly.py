@@ -24,14 +24,14 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from indexer import generations
-from indexer.build import load_vectors
-from indexer.groups import build_groups
-from indexer.pipeline import run_index
-from indexer.query import Searcher
-from indexer.settings import load_settings
-from indexer.store import Store
-from indexer.train import TrainConfig
+from nearsight.indexer import generations
+from nearsight.indexer.build import load_vectors
+from nearsight.indexer.groups import build_groups
+from nearsight.indexer.pipeline import run_index
+from nearsight.indexer.query import Searcher
+from nearsight.indexer.settings import load_settings
+from nearsight.indexer.store import Store
+from nearsight.indexer.train import TrainConfig
 
 from .conftest import ROOT
 
@@ -332,7 +332,7 @@ def _start_paused(store_dir: Path, sources, stage: str, log_path: Path, *flags: 
     """`nearsight index` in a child process, held by the test hook at `stage` (see indexer/pause.py)."""
     with open(log_path, "wb") as log:
         proc = subprocess.Popen(
-            [sys.executable, "-m", "indexer", "index", *map(str, sources), "--store", str(store_dir),
+            [sys.executable, "-m", "nearsight", "index", *map(str, sources), "--store", str(store_dir),
              *(flags or NIGHTLY_FLAGS)],
             env=_nightly_env(NEARSIGHT_TEST_PAUSE_AT=stage), stdout=subprocess.DEVNULL, stderr=log)
     deadline = time.monotonic() + 300
@@ -432,7 +432,7 @@ def test_the_held_out_drop_test_matches_statsmodels(before, now, n):
     pooled variance (its default)."""
     from statsmodels.stats.proportion import proportions_ztest
 
-    from indexer.retrain import recall_drop
+    from nearsight.indexer.retrain import recall_drop
 
     got = recall_drop(before, now, n)
     assert got["drop"] == pytest.approx((before - now) / n)
@@ -444,7 +444,7 @@ def test_the_held_out_drop_test_matches_statsmodels(before, now, n):
 
 
 def test_the_retrain_policy_follows_its_settings(models, tmp_path):
-    from indexer.retrain import SIGNIFICANCE, decide
+    from nearsight.indexer.retrain import SIGNIFICANCE, decide
 
     photos, scans = _first_collection(tmp_path)
     store_dir = _store_with_model(models, tmp_path / "store")

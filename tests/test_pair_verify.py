@@ -9,13 +9,13 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from indexer.build import load_vectors
-from indexer.generations import require_current
-from indexer.groups import build_groups
-from indexer.pair_verify import complete_components, verified_pairs, verified_score
-from indexer.pipeline import run_index
-from indexer.settings import load_settings
-from indexer.store import Store
+from nearsight.indexer.build import load_vectors
+from nearsight.indexer.generations import require_current
+from nearsight.indexer.groups import build_groups
+from nearsight.indexer.pair_verify import complete_components, verified_pairs, verified_score
+from nearsight.indexer.pipeline import run_index
+from nearsight.indexer.settings import load_settings
+from nearsight.indexer.store import Store
 
 from .test_pipeline import TINY
 

@@ -10,11 +10,11 @@ import numpy as np
 import pytest
 from PIL import Image, ImageEnhance, ImageOps
 
-from indexer.pipeline import run_index
-from indexer.query import Searcher
-from indexer.settings import load_settings
-from indexer.store import Store
-from indexer.train import TrainConfig
+from nearsight.indexer.pipeline import run_index
+from nearsight.indexer.query import Searcher
+from nearsight.indexer.settings import load_settings
+from nearsight.indexer.store import Store
+from nearsight.indexer.train import TrainConfig
 
 from .test_train import skimage_photos
 
@@ -142,8 +142,8 @@ def test_calibrated_duplicate_verdict_is_honest_on_transformed_scikit_image_phot
     on every pair (truth: a photo and its copies) is at least 0.97; recall is printed."""
     import shutil
 
-    from indexer.build import load_vectors
-    from indexer.generations import require_current
+    from nearsight.indexer.build import load_vectors
+    from nearsight.indexer.generations import require_current
 
     _store_dir, queries = photo_store
     collection = tmp_path / "collection"

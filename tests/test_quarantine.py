@@ -24,17 +24,17 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from indexer import generations
-from indexer.errors import NearsightError, UsageError
-from indexer.keepers import FORMAT_ALIASES, KeeperRules, normalize_format, path_matches
-from indexer.groups import ImageMeta
-from indexer.pipeline import run_index
-from indexer.quarantine import TEST_PAUSE_ENV, apply_quarantine, plan_quarantine
-from indexer.restore import restore
-from indexer.scan import scan_source
-from indexer.settings import load_settings
-from indexer.store import Store
-from indexer.train import TrainConfig
+from nearsight.indexer import generations
+from nearsight.indexer.errors import NearsightError, UsageError
+from nearsight.indexer.keepers import FORMAT_ALIASES, KeeperRules, normalize_format, path_matches
+from nearsight.indexer.groups import ImageMeta
+from nearsight.indexer.pipeline import run_index
+from nearsight.indexer.quarantine import TEST_PAUSE_ENV, apply_quarantine, plan_quarantine
+from nearsight.indexer.restore import restore
+from nearsight.indexer.scan import scan_source
+from nearsight.indexer.settings import load_settings
+from nearsight.indexer.store import Store
+from nearsight.indexer.train import TrainConfig
 
 ROOT = Path(__file__).resolve().parent.parent
 TINY = TrainConfig(arch="tiny", dim=16, size=32, batch_size=8, steps=3, minutes=None, heldout=4, workers=0,
@@ -204,7 +204,7 @@ def test_a_killed_quarantine_is_completed_by_the_next_run(exact, run_cli, stage)
     planned = {m["path"]: m["dest"] for m in _planned(plan)}
     env = dict(os.environ, PYTHONPATH=str(ROOT), **{TEST_PAUSE_ENV: f"{stage}:2"})
     with open(qdir.parent / "killed.stderr", "wb") as err:
-        proc = subprocess.Popen([sys.executable, "-m", "indexer", "quarantine", "--store", str(store_dir),
+        proc = subprocess.Popen([sys.executable, "-m", "nearsight", "quarantine", "--store", str(store_dir),
                                  "--to", str(qdir), "--apply"], env=env, stdout=subprocess.DEVNULL, stderr=err)
     try:
         def second_intent():
@@ -515,7 +515,7 @@ def _skimage(name: str) -> Image.Image:
 def _force_vectors(store: Store, copies: dict[Path, Path]) -> None:
     """Give each file the stored vector of another, as an encoder fooled by a look-alike would, and
     publish a generation grouped from those vectors (cosine 1.0, above any duplicate threshold)."""
-    from indexer.build import build_generation
+    from nearsight.indexer.build import build_generation
 
     model = generations.current(store).meta["model"]
     ids = {p: store.catalog.file_id_for_path(p) for pair in copies.items() for p in pair}

@@ -8,12 +8,12 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from indexer.calibrate import grouping_threshold
-from indexer.pipeline import run_index
-from indexer.query import Searcher
-from indexer.query_verdict import copy_probability, false_flag_threshold, fit_probability, threshold_report
-from indexer.settings import load_settings
-from indexer.store import Store
+from nearsight.indexer.calibrate import grouping_threshold
+from nearsight.indexer.pipeline import run_index
+from nearsight.indexer.query import Searcher
+from nearsight.indexer.query_verdict import copy_probability, false_flag_threshold, fit_probability, threshold_report
+from nearsight.indexer.settings import load_settings
+from nearsight.indexer.store import Store
 
 from .test_pipeline import TINY, _scene
 
@@ -135,7 +135,7 @@ def test_a_collection_without_duplicates_flags_copies_and_says_so(distinct_store
 def test_per_query_exclusions_in_one_batch_answer_as_one_query_at_a_time(distinct_store):
     """Calibration asks its negatives in batches, each query without its own file: the answers must be
     those of asking each query alone with its exclusion (the reference: the same call, one by one)."""
-    from indexer.images import read_image
+    from nearsight.indexer.images import read_image
 
     store_dir, copies, others = distinct_store
     with Store.open(store_dir, settings=load_settings(environ={})) as store:
@@ -185,7 +185,7 @@ def test_listing_commands_start_without_torch_or_faiss(distinct_store, tmp_path,
     store_dir, _, _ = distinct_store
     args = [str(tmp_path / "q") if a == "QDIR" else a for a in command] + ["--store", str(store_dir)]
     code = ("import contextlib, io, json, sys\n"
-            "from indexer.cli import main\n"
+            "from nearsight.indexer.cli import main\n"
             f"sys.argv = ['nearsight'] + {args!r}\n"
             "with contextlib.redirect_stdout(io.StringIO()):\n"
             "    code = main()\n"

@@ -12,13 +12,13 @@ import pytest
 from PIL import Image
 from skimage import data
 
-from indexer.generations import current
-from indexer.pipeline import run_index
-from indexer.query import Searcher, _settle_views, _with_regions
-from indexer.regions import REGION_SIDE, build_region_index, cut_regions, region_boxes, region_candidates, region_index
-from indexer.settings import load_settings
-from indexer.store import Store
-from indexer.train import TrainConfig
+from nearsight.indexer.generations import current
+from nearsight.indexer.pipeline import run_index
+from nearsight.indexer.query import Searcher, _settle_views, _with_regions
+from nearsight.indexer.regions import REGION_SIDE, build_region_index, cut_regions, region_boxes, region_candidates, region_index
+from nearsight.indexer.settings import load_settings
+from nearsight.indexer.store import Store
+from nearsight.indexer.train import TrainConfig
 
 
 @pytest.mark.parametrize("grid", [1, 2, 3, 4])

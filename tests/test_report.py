@@ -8,8 +8,8 @@ from html.parser import HTMLParser
 import numpy as np
 from PIL import Image
 
-from indexer.groups import ImageMeta, build_groups
-from indexer.report import human_bytes, write_html_report
+from nearsight.indexer.groups import ImageMeta, build_groups
+from nearsight.indexer.report import human_bytes, write_html_report
 
 
 class Collector(HTMLParser):

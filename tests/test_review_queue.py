@@ -12,13 +12,13 @@ import numpy as np
 import pytest
 from PIL import Image, ImageOps
 
-from indexer.generations import require_current
-from indexer.pipeline import run_index
-from indexer.rates import fit_mixture
-from indexer.review_queue import probability_model, review_queue
-from indexer.settings import load_settings
-from indexer.store import Store
-from indexer.verdicts import verdict_report
+from nearsight.indexer.generations import require_current
+from nearsight.indexer.pipeline import run_index
+from nearsight.indexer.rates import fit_mixture
+from nearsight.indexer.review_queue import probability_model, review_queue
+from nearsight.indexer.settings import load_settings
+from nearsight.indexer.store import Store
+from nearsight.indexer.verdicts import verdict_report
 
 from .test_calibrate import write_scenes_with_copies
 from .test_pipeline import TINY

@@ -12,9 +12,9 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from indexer.scan import scan_source
-from indexer.settings import load_settings
-from indexer.store import Store
+from nearsight.indexer.scan import scan_source
+from nearsight.indexer.settings import load_settings
+from nearsight.indexer.store import Store
 
 from .conftest import ROOT
 
@@ -124,7 +124,7 @@ def test_several_folders_share_one_catalog(archive, tmp_path):
         assert len(store.catalog.sources()) == 2
 
 
-SCAN_ONLY = "import sys; from indexer.cli import main; sys.exit(main(sys.argv[1:]))"
+SCAN_ONLY = "import sys; from nearsight.indexer.cli import main; sys.exit(main(sys.argv[1:]))"
 
 
 def test_a_killed_scan_leaves_the_store_usable_and_the_rerun_completes(tmp_path):

@@ -1,4 +1,4 @@
-"""The HTTP service as other systems meet it: a real `python -m indexer serve` process on
+"""The HTTP service as other systems meet it: a real `python -m nearsight serve` process on
 127.0.0.1, real HTTP requests (the standard library's http.client), answers checked against
 the catalog and the published generation read directly, against Pillow, and against the
 HTTP and Prometheus standards named beside each check.
@@ -13,11 +13,11 @@ import pytest
 from PIL import Image
 from prometheus_client.parser import text_string_to_metric_families
 
-from indexer import generations
-from indexer.catalog import Catalog
-from indexer.settings import load_settings
-from indexer.store import Store
-from indexer.rerank import verdict_score
+from nearsight.indexer import generations
+from nearsight.indexer.catalog import Catalog
+from nearsight.indexer.settings import load_settings
+from nearsight.indexer.store import Store
+from nearsight.indexer.rerank import verdict_score
 
 from .service_support import API_KEY, COPIED, Response, multipart, transformed
 
@@ -83,7 +83,7 @@ def test_health_readiness_and_status_describe_the_served_generation(client, serv
 
 def test_openapi_document_lists_exactly_the_served_routes(client):
     """OpenAPI 3 (spec.openapis.org/oas/v3.0.3): one path item per route, the methods the route answers."""
-    from service import create_app
+    from nearsight.service import create_app
 
     doc = client.get("/v1/openapi.json").json()
     assert doc["openapi"].startswith("3.0")
@@ -170,7 +170,7 @@ def test_image_ids_round_trip_with_the_catalog(client, served):
 
 def test_similar_by_id_matches_a_search_with_the_stored_vector(client, served):
     """The same neighbours as FAISS gives in-process for the stored (whitened) vector."""
-    from indexer.query import Searcher
+    from nearsight.indexer.query import Searcher
 
     image_id = sorted(_ids_by_path(served).values())[7]
     searcher = Searcher(served["store"])
@@ -236,7 +236,7 @@ def test_plan_is_the_quarantine_dry_run_and_moves_nothing(client, served):
     import hashlib
     from pathlib import Path
 
-    from indexer.quarantine import plan_quarantine
+    from nearsight.indexer.quarantine import plan_quarantine
 
     paths = [m["path"] for m in served["store"].catalog.image_meta().values()]
     before = {p: hashlib.sha256(Path(p).read_bytes()).hexdigest() for p in paths}
@@ -429,7 +429,7 @@ ENTRY_POINTS = {  # where each value goes in: (command line | HTTP request) for 
     if not (case[0] == "k" and entry in ("groups", "quarantine"))])  # neither takes a k
 def test_every_command_and_endpoint_refuses_an_out_of_range_number_with_the_same_range(
         entry, name, value, stated, client, capsys, tmp_path):
-    from indexer.cli import main
+    from nearsight.indexer.cli import main
 
     request = ENTRY_POINTS[entry](name, value, tmp_path)
     expected = f"{name} must be {stated}, not '{value}'"

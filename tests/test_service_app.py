@@ -8,15 +8,15 @@ import json
 
 import pytest
 
-from indexer import generations
-from indexer.cli import main as cli_main
-from indexer.errors import UsageError
-from indexer.generations import CALIBRATION_FILE
-from indexer.pipeline import run_index
-from indexer.settings import load_settings
-from indexer.store import Store
-from indexer.rerank import verdict_score
-from service import create_app
+from nearsight.indexer import generations
+from nearsight.indexer.cli import main as cli_main
+from nearsight.indexer.errors import UsageError
+from nearsight.indexer.generations import CALIBRATION_FILE
+from nearsight.indexer.pipeline import run_index
+from nearsight.indexer.settings import load_settings
+from nearsight.indexer.store import Store
+from nearsight.indexer.rerank import verdict_score
+from nearsight.service import create_app
 
 from .service_support import API_KEY, transformed
 
@@ -88,12 +88,12 @@ def test_review_page_is_served_with_a_strict_content_security_policy(store_dir):
 
 
 def test_an_unexpected_failure_is_a_json_500_without_details(store_dir, monkeypatch):
-    import service.api
+    from nearsight.service import api as api_module
 
     def broken(store):
         raise RuntimeError("secret internals")
 
-    monkeypatch.setattr(service.api, "store_status", broken)
+    monkeypatch.setattr(api_module, "store_status", broken)
     r = _app(store_dir).test_client().get("/v1/status")
     body = _error(r, 500)
     assert body["error"] == "internal_error" and "secret" not in r.get_data(as_text=True)

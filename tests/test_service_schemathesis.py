@@ -27,8 +27,8 @@ from schemathesis.specs.openapi.checks import (
     status_code_conformance,
 )
 
-from indexer import __version__
-from service.openapi import openapi_document
+from nearsight.indexer import __version__
+from nearsight.service.openapi import openapi_document
 
 from .service_support import API_KEY, ServerProcess
 

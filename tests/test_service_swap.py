@@ -6,10 +6,10 @@ moment of the swap: requests still in flight finish on it from memory.
 
 import time
 
-from indexer import generations
-from indexer.pipeline import run_index
-from indexer.settings import load_settings
-from indexer.store import Store
+from nearsight.indexer import generations
+from nearsight.indexer.pipeline import run_index
+from nearsight.indexer.settings import load_settings
+from nearsight.indexer.store import Store
 
 from .service_support import QueryLoad, ServerProcess, transformed
 

@@ -1,4 +1,4 @@
-"""A person's verdict acts at once: a real `python -m indexer serve` on 127.0.0.1
+"""A person's verdict acts at once: a real `python -m nearsight serve` on 127.0.0.1
 (tests/service_support.py), real HTTP requests (the standard library's http.client), the
 store's catalog and published generation read directly, and files checked by hashlib's
 SHA-256 (FIPS 180-4) after a real quarantine with apply on the same store.
@@ -9,10 +9,10 @@ from pathlib import Path
 
 import pytest
 
-from indexer import generations
-from indexer.quarantine import apply_quarantine
-from indexer.settings import load_settings
-from indexer.store import Store
+from nearsight.indexer import generations
+from nearsight.indexer.quarantine import apply_quarantine
+from nearsight.indexer.settings import load_settings
+from nearsight.indexer.store import Store
 
 from .service_support import API_KEY, ServerProcess
 

@@ -13,13 +13,13 @@ import pytest
 import torch
 from PIL import Image
 
-from indexer.edits import EDIT_KINDS, apply_edit, random_edit
-from indexer.embed import embed_files, embed_images
-from indexer.encoder import create_encoder, preprocess
-from indexer.errors import NearsightError, NotReadyError, UsageError
-from indexer.heldout import heldout_check, ranks_of_originals
-from indexer.model import load_model, save_model
-from indexer.train import (
+from nearsight.indexer.edits import EDIT_KINDS, apply_edit, random_edit
+from nearsight.indexer.embed import embed_files, embed_images
+from nearsight.indexer.encoder import create_encoder, preprocess
+from nearsight.indexer.errors import NearsightError, NotReadyError, UsageError
+from nearsight.indexer.heldout import heldout_check, ranks_of_originals
+from nearsight.indexer.model import load_model, save_model
+from nearsight.indexer.train import (
     CHECKPOINT_FILE,
     FineTuneConfig,
     TrainConfig,
@@ -27,7 +27,7 @@ from indexer.train import (
     read_verdicts_csv,
     train,
 )
-from indexer.views import ViewRecipe, make_views
+from nearsight.indexer.views import ViewRecipe, make_views
 
 PHOTOS = ("astronaut", "coffee", "chelsea", "rocket", "camera", "coins", "immunohistochemistry",
           "hubble_deep_field", "brick", "moon", "page", "clock", "colorwheel", "grass", "gravel", "text")
@@ -109,7 +109,7 @@ def test_interrupted_run_resumes_to_the_same_weights(collection, tmp_path, monke
     straight = train(collection, tmp_path / "straight", config, progress=False)
     expected, _ = load_model(tmp_path / "straight")
 
-    import indexer.train as train_module
+    import nearsight.indexer.train as train_module
 
     calls = {"n": 0}
     real_loss = train_module.nt_xent
@@ -179,7 +179,7 @@ def test_embed_files_skips_a_broken_file(collection, broken_file, tmp_path, work
     np.testing.assert_allclose(np.linalg.norm(result.vectors, axis=1), 1.0, rtol=1e-5)
     # The same vectors as embedding the decoded images directly.
     encoder, _ = load_model(tmp_path)
-    from indexer.images import read_image
+    from nearsight.indexer.images import read_image
 
     direct = embed_images(encoder, [read_image(p, 128)[0] for p in collection[:2]], size=64)
     np.testing.assert_allclose(result.vectors[:2], direct, atol=1e-6)

@@ -10,10 +10,10 @@ import pytest
 from scipy.cluster.hierarchy import fcluster, linkage
 from scipy.spatial.distance import squareform
 
-from indexer.catalog import Catalog
-from indexer.errors import UsageError
-from indexer.groups import ImageMeta, build_groups
-from indexer.verdict_groups import PERSON, PairVerdicts, apply_verdicts, person_classes
+from nearsight.indexer.catalog import Catalog
+from nearsight.indexer.errors import UsageError
+from nearsight.indexer.groups import ImageMeta, build_groups
+from nearsight.indexer.verdict_groups import PERSON, PairVerdicts, apply_verdicts, person_classes
 
 T_NEAR, T_SIMILAR = 0.9, 0.8
 
