@@ -18,7 +18,7 @@ from typing import Iterable, Iterator
 
 from .errors import NotFoundError, StoreError, UsageError
 
-SCHEMA_VERSION = 4
+SCHEMA_VERSION = 5
 
 VERDICTS = ("same", "different")
 
@@ -48,8 +48,12 @@ def _schema_v4(conn: sqlite3.Connection) -> None:
     _run_sql_file(conn, "schema_v4.sql")
 
 
+def _schema_v5(conn: sqlite3.Connection) -> None:
+    _run_sql_file(conn, "schema_v5.sql")
+
+
 # Ordered migrations: MIGRATIONS[n - 1] brings a catalog from version n - 1 to n.
-MIGRATIONS = (_schema_v1, _schema_v2, _schema_v3, _schema_v4)
+MIGRATIONS = (_schema_v1, _schema_v2, _schema_v3, _schema_v4, _schema_v5)
 assert len(MIGRATIONS) == SCHEMA_VERSION  # a developer's invariant, not user input
 
 
@@ -184,8 +188,9 @@ class Catalog:
     def add_content(self, conn: sqlite3.Connection, digest: str, size: int, decoded: dict, now: float) -> int:
         """Insert a content row inside the caller's transaction; return its id."""
         cur = conn.execute(
-            "INSERT INTO contents(hash, size, state, reason, format, mode, width, height, frames, thumb, first_seen) "
-            "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) "
+            "INSERT INTO contents(hash, size, state, reason, format, mode, width, height, frames, thumb, first_seen, "
+            "captured, camera, icc, origin_read) "
+            "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) "
             "ON CONFLICT(hash) DO UPDATE SET hash = excluded.hash RETURNING id",
             (
                 digest,
@@ -199,9 +204,29 @@ class Catalog:
                 decoded.get("frames"),
                 int(bool(decoded.get("thumb"))),
                 now,
+                decoded.get("captured"),
+                decoded.get("camera"),
+                int(bool(decoded.get("icc"))),
+                int(decoded["state"] == "ok"),
             ),
         )
         return cur.fetchone()[0]
+
+    def contents_without_origin(self) -> list[dict]:
+        """Readable contents whose EXIF and ICC facts were never read (catalogued before schema 5), each with
+        one present file holding it: content id and path."""
+        rows = self.conn.execute(
+            "SELECT c.id, MIN(s.root || '/' || f.relpath) AS path FROM contents c "
+            "JOIN files f ON f.content_id = c.id AND f.state = 'ok' JOIN sources s ON s.id = f.source_id "
+            "WHERE c.state = 'ok' AND c.origin_read = 0 GROUP BY c.id"
+        ).fetchall()
+        return [{"id": r["id"], "path": r["path"]} for r in rows]
+
+    def set_origins(self, origins: dict[int, tuple[str | None, str | None, bool]]) -> None:
+        """Record (captured, camera, icc) per content id; read means read, whatever was found."""
+        with self.transaction() as conn:
+            conn.executemany("UPDATE contents SET captured = ?, camera = ?, icc = ?, origin_read = 1 WHERE id = ?",
+                             [(cap, cam, int(bool(icc)), cid) for cid, (cap, cam, icc) in origins.items()])
 
     def upsert_file(
         self,
@@ -274,7 +299,8 @@ class Catalog:
     def image_meta(self, file_ids=None) -> dict[int, dict]:
         """What grouping needs per present readable file: path, hashes, size, format, mtime."""
         sql = (
-            "SELECT f.id, s.root, f.relpath, f.size, f.mtime_ns, c.hash, c.pixel_hash, c.width, c.height, c.format "
+            "SELECT f.id, s.root, f.relpath, f.size, f.mtime_ns, c.hash, c.pixel_hash, c.width, c.height, c.format, "
+            "c.captured, c.camera, c.icc "
             "FROM files f JOIN sources s ON s.id = f.source_id JOIN contents c ON c.id = f.content_id "
             "WHERE f.state = 'ok'"
         )
@@ -291,6 +317,7 @@ class Catalog:
                 "path": str(Path(r["root"]) / r["relpath"]), "content_hash": r["hash"], "pixel_hash": r["pixel_hash"],
                 "width": r["width"] or 0, "height": r["height"] or 0, "file_size": r["size"] or 0,
                 "format": r["format"] or "", "mtime": (r["mtime_ns"] or 0) / 1e9,
+                "captured": r["captured"], "camera": r["camera"], "icc": bool(r["icc"]),
             }
             for r in rows
         }
@@ -571,15 +598,16 @@ class Catalog:
 
     # -- quarantine ---------------------------------------------------------------
     def file_rows(self, file_ids) -> dict[int, dict]:
-        """id -> source id and root, relpath, size, mtime_ns, state, content and pixel hash, quarantine
-        path, for the given files (any state; ids that do not exist are left out)."""
+        """id -> source id and root, relpath, size, mtime_ns, state, content and pixel hash, the content's
+        origin (captured, camera, icc), quarantine path, for the given files (any state; ids that do not exist
+        are left out)."""
         ids = sorted(set(int(i) for i in file_ids))
         out: dict[int, dict] = {}
         for start in range(0, len(ids), 500):
             chunk = ids[start : start + 500]
             rows = self.conn.execute(
                 "SELECT f.id, f.source_id, s.root, f.relpath, f.size, f.mtime_ns, f.state, f.quarantine_path, "
-                "c.hash, c.pixel_hash FROM files f JOIN sources s ON s.id = f.source_id "
+                "c.hash, c.pixel_hash, c.captured, c.camera, c.icc FROM files f JOIN sources s ON s.id = f.source_id "
                 f"LEFT JOIN contents c ON c.id = f.content_id WHERE f.id IN ({','.join('?' * len(chunk))})",
                 chunk,
             )

@@ -52,6 +52,10 @@ _RANK = {tier: rank for rank, tier in enumerate(TIERS)}
 MAX_LINKAGE = 4000
 
 
+# Pillow format names of formats that store pixels without loss (a re-encode into one keeps what it was given).
+LOSSLESS_FORMATS = frozenset({"PNG", "TIFF", "BMP", "PPM", "TGA", "QOI"})
+
+
 @dataclass(frozen=True)
 class ImageMeta:
     """What grouping and the keeper policy need to know about one image file."""
@@ -64,10 +68,17 @@ class ImageMeta:
     format: str
     mtime: float
     pixel_hash: str | None = None
+    captured: str | None = None  # EXIF capture time, ISO 8601 (images.ImageInfo)
+    camera: str | None = None  # EXIF Make and Model
+    icc: bool = False  # embeds an ICC colour profile
 
     @property
     def pixels(self) -> int:
         return self.width * self.height
+
+    @property
+    def lossless(self) -> bool:
+        return self.format.upper() in LOSSLESS_FORMATS
 
 
 @dataclass
@@ -114,9 +125,12 @@ class Group:
 # ---------------------------------------------------------------- policies
 
 def keeper_key(meta: ImageMeta) -> tuple:
-    """Default keeper order (smallest key wins): most pixels, then the larger file
-    (less compressed), then the oldest mtime (likely the original), then the path."""
-    return (-meta.pixels, -meta.file_size, meta.mtime, meta.path)
+    """Default keeper order (smallest key wins). First where the file came from, because re-saving, sharing
+    and exporting strip it while the camera's file keeps it: an EXIF capture time, then a camera make and
+    model, then an ICC colour profile, then a lossless format, then the earlier capture time. Then most
+    pixels, the larger file (less compressed), the oldest mtime (likely the original), the path."""
+    return (meta.captured is None, meta.camera is None, not meta.icc, not meta.lossless, meta.captured or "",
+            -meta.pixels, -meta.file_size, meta.mtime, meta.path)
 
 
 def group_id(ids: Iterable[int]) -> str:

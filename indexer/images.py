@@ -82,6 +82,12 @@ class ImageInfo:
     mode: str  # original Pillow mode, e.g. "CMYK", "P", "I;16"
     frames: int  # frames (or pages) in the file; 1 unless animated
     orientation: int  # EXIF orientation tag value 1..8 (1 if absent)
+    # Where the file came from, for the keeper rule (indexer/groups.py's keeper_key), read with Pillow's EXIF
+    # support: the capture time (EXIF DateTimeOriginal, else DateTimeDigitized) as "YYYY-MM-DDTHH:MM:SS", the
+    # camera (EXIF Make and Model), and whether the file embeds an ICC colour profile.
+    captured: str | None = None
+    camera: str | None = None
+    icc: bool = False
 
 
 def read_image(
@@ -98,7 +104,7 @@ def read_image(
     with _opened(src, max_pixels) as (im, fp):
         header = _Header(im.size, im.mode, _frame_count(im))
         rgb, orientation = _decode(im, fp, max_side)
-        return rgb, _info(im, header, orientation)
+        return rgb, _info(im, header, orientation, loaded=True)
 
 
 def probe(src, *, max_pixels: int | None = DEFAULT_MAX_PIXELS) -> ImageInfo:
@@ -111,7 +117,7 @@ def probe(src, *, max_pixels: int | None = DEFAULT_MAX_PIXELS) -> ImageInfo:
     _check_limits(None, max_pixels)
     with _opened(src, max_pixels) as (im, _fp):
         header = _Header(im.size, im.mode, _frame_count(im))
-        return _info(im, header, _orientation(im, loaded=False))
+        return _info(im, header, _orientation(im, loaded=False), loaded=False)
 
 
 def fit_size(size: tuple[int, int], max_side: int | None) -> tuple[int, int]:
@@ -317,10 +323,13 @@ class _Header:
     frames: int
 
 
-def _info(im: Image.Image, header: _Header, orientation: int) -> ImageInfo:
+def _info(im: Image.Image, header: _Header, orientation: int, *, loaded: bool) -> ImageInfo:
     width, height = header.size
     if orientation >= 5:
         width, height = height, width
+    # As for the orientation: before decoding, a PNG's eXIf chunk is known only if it precedes the pixels.
+    skip = not loaded and im.format == "PNG" and "exif" not in im.info
+    captured, camera = (None, None) if skip else _exif_origin(im)
     return ImageInfo(
         width=width,
         height=height,
@@ -328,7 +337,53 @@ def _info(im: Image.Image, header: _Header, orientation: int) -> ImageInfo:
         mode=header.mode,
         frames=header.frames,
         orientation=orientation,
+        captured=captured,
+        camera=camera,
+        icc=bool(im.info.get("icc_profile")),
     )
+
+
+def _exif_text(value) -> str | None:
+    if isinstance(value, bytes):
+        value = value.decode("ascii", "replace")
+    if not isinstance(value, str):
+        return None
+    text = " ".join(value.replace("\x00", " ").split())
+    return text or None
+
+
+def capture_time(value) -> str | None:
+    """An EXIF date and time ("YYYY:MM:DD HH:MM:SS", Exif 2.3 section 4.6.5) as "YYYY-MM-DDTHH:MM:SS"
+    (ISO 8601, so that text order is time order); None when absent, blank or not a real moment (cameras
+    without a set clock write zeros)."""
+    import datetime
+
+    text = _exif_text(value)
+    if text is None:
+        return None
+    try:
+        moment = datetime.datetime.strptime(text[:19], "%Y:%m:%d %H:%M:%S")
+    except ValueError:
+        return None
+    return moment.isoformat()
+
+
+def _exif_origin(im: Image.Image) -> tuple[str | None, str | None]:
+    """(capture time, camera) from the image's EXIF through Pillow's reader; (None, None) when absent or
+    unreadable (damaged EXIF must not cost us the pixels)."""
+    from PIL import ExifTags
+
+    try:
+        exif = im.getexif()
+        details = exif.get_ifd(ExifTags.IFD.Exif)
+        captured = capture_time(details.get(ExifTags.Base.DateTimeOriginal)) or \
+            capture_time(details.get(ExifTags.Base.DateTimeDigitized))
+        parts = [_exif_text(exif.get(ExifTags.Base.Make)), _exif_text(exif.get(ExifTags.Base.Model))]
+    except Exception:
+        log.debug("unreadable EXIF block", exc_info=True)
+        return None, None
+    camera = " ".join(p for p in parts if p) or None
+    return captured, camera
 
 
 # --- pixels ------------------------------------------------------------------

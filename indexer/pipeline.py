@@ -17,7 +17,7 @@ from typing import Sequence
 
 from . import generations
 from .models import current_model_dir
-from .scan import scan_sources
+from .scan import read_origins, scan_sources
 from .store import Store
 
 log = logging.getLogger(__name__)
@@ -35,6 +35,7 @@ def _scan_all(store: Store, folders, progress, cluster: str | None = None) -> di
             per_source = [s.to_dict() for s in scan_sources(store, folders, progress=progress, client=client)]
     else:
         per_source = [s.to_dict() for s in scan_sources(store, folders, progress=progress)]
+    read_origins(store)  # once, for contents catalogued before their EXIF and ICC facts were kept
     summary = {key: sum(s[key] for s in per_source) for key in COUNT_KEYS}
     reasons: dict[str, int] = {}
     for s in per_source:

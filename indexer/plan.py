@@ -155,7 +155,9 @@ def _present(member, row: dict | None) -> tuple[ImageMeta | None, str | None]:
         return None, "changed on disk since the last scan"
     m = member.meta
     return ImageMeta(path=path, content_hash=row["hash"], width=m.width, height=m.height, file_size=row["size"],
-                     format=m.format, mtime=row["mtime_ns"] / 1e9, pixel_hash=row["pixel_hash"]), None
+                     format=m.format, mtime=row["mtime_ns"] / 1e9, pixel_hash=row["pixel_hash"],
+                     # the origin as the catalog knows it now (read once more for stores older than it)
+                     captured=row["captured"], camera=row["camera"], icc=bool(row["icc"])), None
 
 
 @dataclass(frozen=True)

@@ -125,6 +125,9 @@ def _decode_one(job: tuple[str, int, int, str | None]) -> dict:
         "height": info.height,
         "frames": info.frames,
         "thumb": bool(thumb_path),
+        "captured": info.captured,
+        "camera": info.camera,
+        "icc": info.icc,
     }
 
 
@@ -361,3 +364,24 @@ def _moved_from(catalog, content_id: int) -> dict | None:
         except OSError:  # unreachable, not gone
             continue
     return None
+
+
+def read_origins(store) -> int:
+    """Read once the EXIF and ICC facts (images.ImageInfo: captured, camera, icc) of contents catalogued
+    before the catalog kept them, from the header of one present file each (no decoding); the keeper rule
+    then weighs every file alike. A file that cannot be read now is recorded as having none. Returns how
+    many contents were read."""
+    missing = store.catalog.contents_without_origin()
+    if not missing:
+        return 0
+    log.info("reading the capture facts (EXIF, ICC profile) of %d images catalogued before this version", len(missing))
+    found = {}
+    for row in missing:
+        try:
+            info = images.probe(row["path"], max_pixels=None)
+            found[row["id"]] = (info.captured, info.camera, info.icc)
+        except (ImageReadError, OSError) as exc:
+            log.debug("no capture facts for %s: %s", row["path"], exc)
+            found[row["id"]] = (None, None, False)
+    store.catalog.set_origins(found)
+    return len(found)
