@@ -22,7 +22,8 @@ from pathlib import Path
 from typing import Iterator, Sequence
 
 from .errors import ImageReadError, NotFoundError
-from .fsutil import hash_file
+from .fsutil import hash_bytes, hash_file
+from .images import read_image
 from .query import read_query
 
 log = logging.getLogger(__name__)
@@ -55,23 +56,49 @@ def _verdict(result: dict | None, similar_threshold: float) -> str:
     return "similar" if result["descriptor_similarity"] >= similar_threshold else "new"
 
 
-def check_files(searcher, paths: Sequence[str], *, threshold: float | None = None) -> Iterator[CheckAnswer]:
+def check_files(searcher, paths: Sequence[str], *, threshold: float | None = None,
+                catalog=None) -> Iterator[CheckAnswer]:
     """One CheckAnswer per path, in order. `searcher`: the store's indexer.query.Searcher; `threshold`
-    replaces the query verdict as `similar --threshold` does."""
-    catalog = searcher.store.catalog
+    replaces the query verdict as `similar --threshold` does; `catalog`: the connection to read with (a
+    thread's own in the service; default the store's)."""
+    def content_hash(given: str) -> str | None:
+        return hash_file(Path(given)) if Path(given).is_file() else None
+
+    def pixels(given: str):
+        return read_query(given, 2 * searcher.size)
+
+    yield from _check(searcher, list(paths), list(paths), content_hash, pixels, threshold, catalog)
+
+
+def check_uploads(searcher, uploads: Sequence[tuple[str, bytes]], *, threshold: float | None = None,
+                  max_pixels: int | None = None, catalog=None) -> Iterator[CheckAnswer]:
+    """`check_files` for images given as (name, bytes), e.g. the files of an HTTP request: the same hash
+    before decoding, the same reading (`images.read_image`, with `max_pixels` checked on the header) and the
+    same verdicts. Each answer's `path` is the name given."""
+    def pixels(data: bytes):
+        return read_image(data, max_side=2 * searcher.size, max_pixels=max_pixels)[0]
+
+    yield from _check(searcher, [name for name, _ in uploads], [data for _, data in uploads], hash_bytes, pixels,
+                      threshold, catalog)
+
+
+def _check(searcher, labels: list[str], sources: list, content_hash, pixels, threshold, catalog) -> Iterator[CheckAnswer]:
+    catalog = catalog if catalog is not None else searcher.store.catalog
     similar_threshold = float(searcher.generation.threshold("similar")) if searcher.generation else searcher.threshold
-    for start in range(0, len(paths), BATCH):
-        block = list(paths[start:start + BATCH])
+    for start in range(0, len(sources), BATCH):
+        block = sources[start:start + BATCH]
+        names = labels[start:start + BATCH]
         answers: dict[int, CheckAnswer] = {}
         images, rows = [], []
-        for row, given in enumerate(block):
+        for row, (given, source) in enumerate(zip(names, block)):
             try:
-                same = catalog.present_files_with_hash(hash_file(Path(given))) if Path(given).is_file() else []
+                digest = content_hash(source)
+                same = catalog.present_files_with_hash(digest) if digest else []
                 if same:  # the same bytes: no need to decode
                     answers[row] = CheckAnswer(given, "copy", {**same[0], "similarity": 1.0, "probability": 1.0,
                                                                "evidence": {"same_bytes": True}})
                     continue
-                images.append(read_query(given, 2 * searcher.size))
+                images.append(pixels(source))
                 rows.append(row)
             except (ImageReadError, NotFoundError) as exc:
                 answers[row] = CheckAnswer(given, "unreadable", error=exc.to_dict())
@@ -79,10 +106,11 @@ def check_files(searcher, paths: Sequence[str], *, threshold: float | None = Non
                 answers[row] = CheckAnswer(given, "unreadable", error={"error": "unreadable", "reason": "io-error",
                                                                         "message": f"{exc.strerror or exc}: {given}"})
         if images:
-            found = searcher.neighbours(searcher.vectors_for_images(images), 1, threshold, images=images)
+            found = searcher.neighbours(searcher.vectors_for_images(images), 1, threshold, images=images,
+                                        catalog=catalog)
             for row, results in zip(rows, found):
                 best = results[0] if results else None
                 verdict = _verdict(best, similar_threshold)
-                answers[row] = CheckAnswer(block[row], verdict, None if verdict == "new" else _match(best))
+                answers[row] = CheckAnswer(names[row], verdict, None if verdict == "new" else _match(best))
         for row in range(len(block)):
             yield answers[row]

@@ -47,6 +47,11 @@ def atomic_write_text(path: Path, text: str) -> None:
     atomic_write_bytes(path, text.encode("utf-8"))
 
 
+def hash_bytes(data: bytes) -> str:
+    """`hash_file` of bytes in memory (an upload): the same BLAKE2b-256 hex digest."""
+    return hashlib.blake2b(data, digest_size=32).hexdigest()
+
+
 def hash_file(path: Path) -> str:
     """Content hash of a file (BLAKE2b, 256-bit digest, hex), read in 1 MiB chunks."""
     digest = hashlib.blake2b(digest_size=32)

@@ -98,6 +98,26 @@ def search():
     return _search_answer(snap, results, args, threshold, source, query)
 
 
+@api.post("/v1/check")
+def check():
+    """New material against the archive (`nearsight check`): per uploaded image copy, similar, new or
+    unreadable, with its best match; nothing is added to the store."""
+    from nearsight.indexer.check import VERDICTS, check_uploads
+
+    st = state()
+    images, form = params.uploads(request, st.config.max_upload_bytes)
+    args = params.search_args({**form, **request.args})
+    snap = snapshot()
+    threshold, source = snap.threshold(args["threshold"], args["precision"])
+    answers = check_uploads(snap.searcher, images, threshold=None if source == "generation" else threshold,
+                            max_pixels=min(st.config.max_upload_pixels, st.config.max_pixels),
+                            catalog=st.store().catalog)
+    results = [a.to_dict() for a in answers]
+    counts = {v: sum(r["verdict"] == v for r in results) for v in VERDICTS}
+    return jsonify(generation=snap.name, model=snap.model, threshold=threshold, threshold_from=source,
+                   counts=counts, results=results)
+
+
 @api.get("/v1/images/<int:image_id>/similar")
 def similar(image_id: int):
     params.check_id(image_id)

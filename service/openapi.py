@@ -111,6 +111,26 @@ SCHEMAS = {
             "results": {"type": "array", "items": _ref("Neighbour")},
         },
     },
+    "CheckResult": {
+        "type": "object", "required": ["generation", "model", "threshold", "threshold_from", "counts", "results"],
+        "properties": {
+            "generation": {"type": "string"}, "model": {"type": "string"}, "threshold": {"type": "number"},
+            "threshold_from": {"type": "string", "enum": ["generation", "request", "precision"]},
+            "counts": {"type": "object", "additionalProperties": {"type": "integer"},
+                       "description": "uploads per verdict"},
+            "results": {"type": "array", "description": "one per uploaded image, in the order sent", "items": {
+                "type": "object", "required": ["path", "verdict", "match", "error"],
+                "properties": {
+                    "path": {"type": "string", "description": "the upload's file name (else its field name), "
+                                                              "only echoed back"},
+                    "verdict": {"type": "string", "enum": ["copy", "similar", "new", "unreadable"]},
+                    "match": {"type": "object", "nullable": True, "description": "the best catalogued match "
+                              "(id, path, similarity, probability, evidence); evidence {same_bytes: true} for a "
+                              "byte-identical file, found by content hash before decoding"},
+                    "error": {"type": "object", "nullable": True, "description": "why an unreadable upload "
+                              "could not be read (error, reason, message)"}}}},
+        },
+    },
     "Image": {
         "type": "object", "required": ["id", "path", "state"],
         "properties": {
@@ -200,7 +220,10 @@ SCHEMAS = {
                                "content_hash": {"type": "string"}, "pixel_hash": NULLABLE_STRING,
                                "width": {"type": "integer"}, "height": {"type": "integer"},
                                "file_size": {"type": "integer"}, "format": {"type": "string"},
-                               "mtime": {"type": "number"}}}},
+                               "mtime": {"type": "number"},
+                               "captured": {**NULLABLE_STRING, "description": "EXIF capture time, ISO 8601"},
+                               "camera": {**NULLABLE_STRING, "description": "EXIF make and model"},
+                               "icc": {"type": "boolean", "description": "embeds an ICC colour profile"}}}},
             "verdicts": {"type": "array", "description": "the latest verdict on each judged pair of members",
                          "items": {"type": "object", "required": ["a", "b", "verdict"],
                                    "properties": {"a": {"type": "integer"}, "b": {"type": "integer"},
@@ -344,6 +367,23 @@ def _paths() -> dict:
                                    "precision": PRECISION.schema()}}}}},
             "responses": {"200": _json(_ref("SearchResult"), "Neighbours of the uploaded image"),
                           **_errors("400", *read_errors, "409", "413", "415", "422")}}},
+        "/v1/check": {"post": {
+            "operationId": "check", "summary": "New material against the archive: copy, similar, new or unreadable",
+            "description": "The same answer as `nearsight check`, for a batch of uploads: send each image as a "
+                           "multipart/form-data file field (any field name; up to 64 images, their bytes together "
+                           "within max_upload_bytes), or one image as the raw body. A byte-identical upload is a "
+                           "copy by content hash before any decoding; an upload that is not a readable image gets "
+                           "the verdict unreadable, and the others are still answered. Nothing is added to the "
+                           "store.",
+            "parameters": [p for p in SEARCH_PARAMS if p["name"] != "k"],
+            "requestBody": {"required": True, "content": {
+                "image/jpeg": BINARY, "image/png": BINARY, "image/webp": BINARY, "application/octet-stream": BINARY,
+                "multipart/form-data": {"schema": {
+                    "type": "object",
+                    "additionalProperties": {"type": "string", "format": "binary"},
+                    "properties": {"threshold": THRESHOLD.schema(), "precision": PRECISION.schema()}}}}},
+            "responses": {"200": _json(_ref("CheckResult"), "A verdict for each upload"),
+                          **_errors("400", *read_errors, "409", "413", "415")}}},
         "/v1/images/{image_id}": {"get": {
             "operationId": "image", "summary": "One catalogued image file", "parameters": [IMAGE_ID],
             "responses": {"200": _json(_ref("Image"), "The image"), **_errors(*read_errors, "404")}}},

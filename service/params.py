@@ -91,6 +91,36 @@ def upload(request, limit: int) -> tuple[bytes, Mapping[str, Any]]:
     return data, params
 
 
+MAX_CHECK_FILES = 64  # images one POST /v1/check may carry (their bytes together within max_upload_bytes)
+
+
+def uploads(request, limit: int) -> tuple[list[tuple[str, bytes]], Mapping[str, Any]]:
+    """The images of a check request as (name, bytes), in the order sent, and the form fields beside them.
+
+    Multipart: every file field, each named by its file name (else its field name; only echoed back in the
+    answer, never used as a path). Raw body: one image named "upload". The bytes of all of them together
+    are held to `limit`, like one search's image."""
+    mimetype = (request.mimetype or "").lower()
+    if request.content_length is not None and request.content_length > limit + MULTIPART_SLACK:
+        raise PayloadTooLargeError(_too_large(request.content_length, limit))
+    if mimetype == "multipart/form-data":
+        files = list(request.files.items(multi=True))
+        if not files:
+            raise UsageError("the multipart body has no files: send each image as a file field")
+        if len(files) > MAX_CHECK_FILES:
+            raise UsageError(f"a check takes at most {MAX_CHECK_FILES} images a request, not {len(files)}")
+        out, total = [], 0
+        for field_name, storage in files:
+            data = storage.read(limit + 1)
+            total += len(data)
+            if total > limit:
+                raise PayloadTooLargeError(_too_large(total, limit))
+            out.append(((storage.filename or field_name)[:255], data))
+        return out, request.form
+    data, form = upload(request, limit)
+    return [("upload", data)], form
+
+
 def _too_large(size: int, limit: int) -> str:
     return f"the upload is {size} bytes; this server takes images up to {limit} bytes (setting max_upload_bytes)"
 

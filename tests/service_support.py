@@ -235,12 +235,18 @@ class Client:
 def multipart(field_name: str, filename: str, data: bytes, content_type: str = "image/jpeg",
               fields: dict | None = None) -> tuple[bytes, str]:
     """A multipart/form-data body (RFC 7578) and its Content-Type header."""
+    return multipart_files([(field_name, filename, data, content_type)], fields)
+
+
+def multipart_files(files: list[tuple[str, str, bytes, str]], fields: dict | None = None) -> tuple[bytes, str]:
+    """A multipart/form-data body (RFC 7578) with several files, each (field name, file name, bytes, type)."""
     boundary = "nearsight-test-boundary-7f3a"
     parts = []
     for name, value in (fields or {}).items():
         parts.append(f'--{boundary}\r\nContent-Disposition: form-data; name="{name}"\r\n\r\n{value}\r\n'.encode())
-    parts.append(f'--{boundary}\r\nContent-Disposition: form-data; name="{field_name}"; filename="{filename}"\r\n'
-                 f"Content-Type: {content_type}\r\n\r\n".encode() + data + b"\r\n")
+    for field_name, filename, data, content_type in files:
+        parts.append(f'--{boundary}\r\nContent-Disposition: form-data; name="{field_name}"; filename="{filename}"\r\n'
+                     f"Content-Type: {content_type}\r\n\r\n".encode() + data + b"\r\n")
     parts.append(f"--{boundary}--\r\n".encode())
     return b"".join(parts), f"multipart/form-data; boundary={boundary}"
 

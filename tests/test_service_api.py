@@ -19,7 +19,7 @@ from nearsight.indexer.settings import load_settings
 from nearsight.indexer.store import Store
 from nearsight.indexer.rerank import verdict_score
 
-from .service_support import API_KEY, COPIED, Response, multipart, transformed
+from .service_support import API_KEY, COPIED, Response, multipart, multipart_files, transformed
 
 
 @pytest.fixture(scope="module")
@@ -330,6 +330,60 @@ def test_bodies_that_are_not_images_are_refused_with_json(client, writer):
     _assert_error(client.post_image("/v1/search", b""), 400)
     _assert_error(writer.request("POST", "/v1/verdicts", b"file_a=1", {"Content-Type": "text/plain"}), 415)
     _assert_error(writer.request("POST", "/v1/verdicts", b"{not json", {"Content-Type": "application/json"}), 400)
+
+
+# -- checking new material -------------------------------------------------------------------------------
+def test_check_answers_each_upload_as_the_command_does(client, service_store, run_cli, tmp_path):
+    """POST /v1/check with four files (a byte copy of an archived photo, a 70 % JPEG of another, a noise
+    image the archive cannot hold, a broken file) against `nearsight check --json` on the same files and an
+    equal store: the same verdicts and matches. The byte copy is found by content hash (hashlib's BLAKE2b of
+    the bytes, as the catalog records it) without decoding."""
+    import hashlib
+
+    original = service_store.originals["astronaut"]
+    files = {"astronaut.jpg": original.read_bytes(),
+             "rocket-small.jpg": transformed(service_store.originals["rocket"], tmp_path / "r.jpg").read_bytes(),
+             "broken.jpg": b"\xff\xd8\xff\xe0 not really a JPEG"}
+    noise = io.BytesIO()
+    Image.effect_noise((300, 200), 80).convert("RGB").save(noise, "PNG")
+    files["noise.png"] = noise.getvalue()
+    body, ctype = multipart_files([(f"f{i}", name, data, "application/octet-stream")
+                                   for i, (name, data) in enumerate(files.items())])
+    r = client.request("POST", "/v1/check", body, {"Content-Type": ctype})
+    assert r.status == 200, r.body
+    answer = r.json()
+    by_name = {a["path"]: a for a in answer["results"]}
+    assert [a["path"] for a in answer["results"]] == list(files)
+    same = by_name["astronaut.jpg"]
+    assert same["verdict"] == "copy" and same["match"]["evidence"] == {"same_bytes": True}
+    assert same["match"]["path"] == str(original)
+    assert by_name["broken.jpg"]["verdict"] == "unreadable" and by_name["broken.jpg"]["error"]["reason"]
+    assert sum(answer["counts"].values()) == 4 and answer["threshold_from"] == "generation"
+    # The command line on the same bytes (saved under the same names) and a copy of the same store.
+    for name, data in files.items():
+        (tmp_path / name).write_bytes(data)
+    store = service_store.copy("check-cli")
+    cli = run_cli("check", *[tmp_path / n for n in files], "--store", store, "--json")
+    expected = {json.loads(line)["path"].rsplit("/", 1)[1]: json.loads(line) for line in cli.stdout.splitlines()}
+    for name in files:
+        assert by_name[name]["verdict"] == expected[name]["verdict"], name
+        assert by_name[name]["match"] == expected[name]["match"], name
+    digest = hashlib.blake2b(original.read_bytes(), digest_size=32).hexdigest()
+    assert _catalog_hash(store, same["match"]["id"]) == digest
+
+
+def _catalog_hash(store_dir, file_id):
+    with Catalog(store_dir / "catalog.sqlite") as catalog:
+        return catalog.file_rows([file_id])[file_id]["hash"]
+
+
+def test_check_refuses_what_is_not_a_batch_of_images(client):
+    _assert_error(client.request("POST", "/v1/check", b"hello", {"Content-Type": "text/plain"}), 415)
+    body, ctype = multipart_files([], fields={"threshold": "0.5"})
+    _assert_error(client.request("POST", "/v1/check", body, {"Content-Type": ctype}), 400)
+    body, ctype = multipart_files([(f"f{i}", f"{i}.jpg", b"x", "image/jpeg") for i in range(65)])
+    assert "at most 64" in _assert_error(client.request("POST", "/v1/check", body, {"Content-Type": ctype}), 400)["message"]
+    _assert_error(client.post_image("/v1/check?threshold=2", b"x"), 400)
 
 
 def test_uploads_over_the_size_or_pixel_limit_are_refused(client, live_server):
