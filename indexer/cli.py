@@ -209,6 +209,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print the result as JSON")
     p.set_defaults(func=commands.cmd_restore)
 
+    p = sub.add_parser("backup", parents=[common], help="a consistent copy of the store, while serve and index run",
+                       description="Copy the store into DEST (a new or empty folder outside it): the catalog "
+                                   "through SQLite's online backup, the published generations, their models and "
+                                   "the small copies hard-linked when DEST is on the same filesystem, else "
+                                   "copied. DEST is itself a store: point --store at it to use or restore it.")
+    p.add_argument("dest", metavar="DEST", help="the backup folder (new, or empty)")
+    p.add_argument("--without-small-copies", dest="small_copies", action="store_false",
+                   help="leave out the small copies (derivable again from the source files by `index`)")
+    p.add_argument("--json", action="store_true", help="print what was copied as JSON")
+    p.set_defaults(func=commands.cmd_backup)
+
     p = sub.add_parser("status", parents=[common], help="counts and state of the store",
                        description="Show what the store holds: files by state, sources, model, generation.")
     p.add_argument("--json", action="store_true", help="print as JSON")

@@ -459,6 +459,21 @@ def cmd_restore(args) -> int:
     return 1 if report["problems"] else 0
 
 
+def cmd_backup(args) -> int:
+    from .backup import backup_store
+
+    with open_store(args) as store:
+        report = backup_store(store, args.dest, small_copies=args.small_copies)
+    if args.json:
+        print_json(report)
+        return 0
+    print(f"backed up {report['store']} into {report['backup']}: generation {report['generation'] or 'none'}, "
+          f"{len(report['models'])} model(s), {report['small_copies']} small copies; "
+          f"{report['linked']} files hard-linked, {report['copied']} copied ({human_bytes(report['bytes_copied'])}), "
+          f"catalog {human_bytes(report['catalog_bytes'])}, in {report['seconds']:.1f} s")
+    return 0
+
+
 # -- demo, settings -----------------------------------------------------------------------------
 def cmd_demo(args) -> int:
     from .demo import run_demo

@@ -1,0 +1,139 @@
+"""`nearsight backup` (indexer/backup.py) on a real store of scikit-image's photos (tests/service_support.py).
+
+References: SQLite's own `PRAGMA integrity_check` and its transaction semantics (a copy made through the
+online backup API holds what was committed, never an open transaction's rows); SHA-256 (hashlib) and the
+files' inode numbers (os.stat) for what was copied or linked; the store's own answers before and after.
+"""
+
+import hashlib
+import json
+import sqlite3
+import shutil
+
+import pytest
+
+import nearsight
+from nearsight.indexer import backup as backup_module
+from nearsight.indexer.backup import backup_store
+from nearsight.indexer.errors import UsageError
+from nearsight.indexer.settings import load_settings
+from nearsight.indexer.store import Store
+
+from .service_support import COPIED, transformed
+
+
+def _sha(path):
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def _open(path):
+    return Store.open(path, settings=load_settings(environ={}))
+
+
+@pytest.fixture
+def store_dir(service_store):
+    return service_store.copy("backup")
+
+
+def test_the_backup_is_a_store_that_answers_as_the_original_does(store_dir, service_store, tmp_path):
+    dest = tmp_path / "backup"
+    with _open(store_dir) as store:
+        report = backup_store(store, dest)
+    assert report["generation"] and report["models"] and report["small_copies"] > 0
+    conn = sqlite3.connect(dest / "catalog.sqlite")
+    assert conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    conn.close()
+    gen = dest / "generations" / report["generation"]
+    for f in gen.iterdir():  # the generation's files: the same bytes, and on one filesystem the same inode
+        original = store_dir / "generations" / report["generation"] / f.name
+        assert _sha(f) == _sha(original) and f.stat().st_ino == original.stat().st_ino
+    queries = [transformed(p, tmp_path / f"{n}.jpg") for n, p in service_store.originals.items() if n not in COPIED][:4]
+    answers = {}
+    for where in (store_dir, dest):
+        with nearsight.open_store(where) as s:
+            status = s.status().to_dict()
+            answers[where] = ([a.to_dict() for a in s.similar(queries, k=5)], s.groups(), status["files"],
+                              status["generation"]["name"], status["model"])
+    assert answers[dest] == answers[store_dir]
+
+
+def test_an_open_write_transaction_is_not_in_the_backup_and_does_not_block_it(store_dir, tmp_path):
+    """A writer in the middle of a transaction (as `index` is while it commits a block): the backup proceeds
+    (WAL: readers do not wait for writers) and holds the last committed state, not the open transaction."""
+    writer = sqlite3.connect(store_dir / "catalog.sqlite", isolation_level=None, timeout=1)
+    writer.execute("BEGIN IMMEDIATE")
+    writer.execute("INSERT INTO meta(key, value) VALUES ('uncommitted', 'x')")
+    try:
+        with _open(store_dir) as store:
+            backup_store(store, tmp_path / "backup", small_copies=False)
+    finally:
+        writer.execute("ROLLBACK")
+        writer.close()
+    copy = sqlite3.connect(tmp_path / "backup" / "catalog.sqlite")
+    assert copy.execute("SELECT COUNT(*) FROM meta WHERE key = 'uncommitted'").fetchone()[0] == 0
+    original = sqlite3.connect(store_dir / "catalog.sqlite")
+    for table in ("files", "contents", "sources", "verdicts"):
+        n = original.execute(f"SELECT COUNT(*) FROM {table}").fetchone()[0]
+        assert copy.execute(f"SELECT COUNT(*) FROM {table}").fetchone()[0] == n, table
+    copy.close()
+    original.close()
+    assert not (tmp_path / "backup" / "thumbs").exists()
+
+
+def test_a_generation_published_during_the_backup_is_the_one_copied(store_dir, tmp_path, monkeypatch):
+    """The current generation is pruned while it is copied, a newer one having been published: the backup
+    copies the newer one and names it current."""
+    real = backup_module._copy_tree
+    with _open(store_dir) as store:
+        old = store.read_pointer("generations/CURRENT")
+        state = {"swapped": False}
+
+        def publish_meanwhile(src, dst, counts):
+            if src.name == old and not state["swapped"]:
+                state["swapped"] = True
+                shutil.copytree(src, src.with_name(old + "-newer"))
+                store.write_pointer("generations/CURRENT", old + "-newer")
+                shutil.rmtree(src)
+                raise FileNotFoundError(str(src))
+            return real(src, dst, counts)
+
+        monkeypatch.setattr(backup_module, "_copy_tree", publish_meanwhile)
+        report = backup_store(store, tmp_path / "backup", small_copies=False)
+    assert report["generation"] == old + "-newer" == (tmp_path / "backup" / "generations" / "CURRENT").read_text().strip()
+    assert old not in report["generations"]
+
+
+@pytest.mark.parametrize("where", ["nonempty", "inside", "around", "no-parent"])
+def test_a_destination_that_cannot_hold_a_backup_is_refused_and_nothing_is_written(store_dir, tmp_path, where):
+    dest = {"nonempty": tmp_path / "full", "inside": store_dir / "backup", "around": store_dir.parent,
+            "no-parent": tmp_path / "missing" / "backup"}[where]
+    if where == "nonempty":
+        dest.mkdir()
+        (dest / "keep.txt").write_text("mine")
+    before = sorted(p.name for p in tmp_path.iterdir())
+    with _open(store_dir) as store, pytest.raises(UsageError):
+        backup_store(store, dest)
+    assert sorted(p.name for p in tmp_path.iterdir()) == before
+    assert not (store_dir / "backup").exists()
+    if where == "nonempty":
+        assert [p.name for p in dest.iterdir()] == ["keep.txt"]
+
+
+def test_a_failed_backup_leaves_no_destination_and_no_partial_folder(store_dir, tmp_path, monkeypatch):
+    def full_disk(*args, **kwargs):
+        raise OSError(28, "No space left on device")
+
+    with _open(store_dir) as store:
+        monkeypatch.setattr(backup_module.sqlite3, "connect", full_disk)  # the catalog's copy fails
+        with pytest.raises(OSError):
+            backup_store(store, tmp_path / "backup")
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_the_command_prints_what_it_copied(store_dir, tmp_path, run_cli):
+    out = run_cli("backup", tmp_path / "b1", "--store", store_dir, check_exit=0).stdout
+    assert "hard-linked" in out and str(tmp_path / "b1") in out
+    report = json.loads(run_cli("backup", tmp_path / "b2", "--store", store_dir, "--json", check_exit=0).stdout)
+    assert report["copied"] == 0 and report["linked"] > 0
+    run_cli("status", "--store", tmp_path / "b2", check_exit=0)
+    assert "not empty" in run_cli("backup", tmp_path / "b2", "--store", store_dir, check_exit=2).stderr
