@@ -433,6 +433,28 @@ class Catalog:
         pairs = np.array([(r[0], r[1]) for r in rows], dtype=np.int64).reshape(-1, 2)
         return np.ascontiguousarray(pairs[:, 0]), np.ascontiguousarray(pairs[:, 1])
 
+    def contents_with_vectors(self, model: str, content_ids) -> set[int]:
+        """Those of `content_ids` that have a stored vector under `model`."""
+        ids = sorted(set(int(i) for i in content_ids))
+        out: set[int] = set()
+        for start in range(0, len(ids), 500):
+            chunk = ids[start : start + 500]
+            out.update(r[0] for r in self.conn.execute(
+                f"SELECT content_id FROM vectors WHERE model = ? AND content_id IN ({','.join('?' * len(chunk))})",
+                (model, *chunk)))
+        return out
+
+    def contents_with_small_copies(self) -> list[str]:
+        """The content hashes of readable contents the catalog records a small copy for."""
+        return [r[0] for r in self.conn.execute("SELECT hash FROM contents WHERE state = 'ok' AND thumb = 1 ORDER BY id")]
+
+    def quarantined_files(self) -> list[dict]:
+        """Files in a quarantine folder: id, relpath, quarantine path and manifest, and their content's hash."""
+        rows = self.conn.execute(
+            "SELECT f.id, f.relpath, f.quarantine_path, f.quarantine_manifest, c.hash FROM files f "
+            "LEFT JOIN contents c ON c.id = f.content_id WHERE f.state = 'quarantined' ORDER BY f.id")
+        return [dict(r) for r in rows]
+
     def file_vectors(self, file_ids, model: str) -> dict:
         """file id -> its content's stored vector under `model` (float32), for present readable files."""
         import numpy as np

@@ -220,6 +220,18 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print what was copied as JSON")
     p.set_defaults(func=commands.cmd_backup)
 
+    p = sub.add_parser("verify", parents=[common], help="check that the store is whole (--repair: make again what "
+                       "is derived)",
+                       description="Check the catalog (SQLite's integrity check), every published generation's files "
+                                   "against the checksums recorded when it was published, the current index against "
+                                   "its items, the vectors it needs, the small copies and the quarantined files. "
+                                   "One line per finding; exit 0 when nothing is wrong, 1 otherwise. --repair makes "
+                                   "again what is derived (small copies, vectors, the current generation) under the "
+                                   "store's lock; it never touches an image and never drops a verdict.")
+    p.add_argument("--repair", action="store_true", help="make again what is derived, then check again")
+    p.add_argument("--json", action="store_true", help="JSON Lines: one object per finding")
+    p.set_defaults(func=commands.cmd_verify)
+
     p = sub.add_parser("status", parents=[common], help="counts and state of the store",
                        description="Show what the store holds: files by state, sources, model, generation.")
     p.add_argument("--json", action="store_true", help="print as JSON")

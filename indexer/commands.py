@@ -474,6 +474,25 @@ def cmd_backup(args) -> int:
     return 0
 
 
+def cmd_verify(args) -> int:
+    from .integrity import repair_store, verify_store
+
+    with open_store(args) as store:
+        findings = verify_store(store)
+        repaired: list[str] = []
+        if args.repair and any(f.problem and f.repair for f in findings):
+            repaired = repair_store(store, findings)
+            findings = verify_store(store)
+    for line in repaired:
+        print(json.dumps({"repaired": line}) if args.json else f"repaired  {line}")
+    for f in findings:
+        print(json.dumps(f.to_dict(), sort_keys=True) if args.json else f.line())
+    problems = sum(f.problem for f in findings)
+    if not args.json:
+        print(f"{problems} problem(s), {len(findings) - problems} note(s)" if findings else "the store is whole")
+    return 1 if problems else 0
+
+
 # -- demo, settings -----------------------------------------------------------------------------
 def cmd_demo(args) -> int:
     from .demo import run_demo

@@ -51,6 +51,8 @@ CALIBRATION_EXTRAS = ("calibration.png", "calibration.txt")
 ITEMS_FILE = "items.npz"
 PAIRS_FILE = "pairs.npz"
 REGIONS_FILE = "regions.faiss"  # the region descriptors' index (indexer/regions.py), when the store makes them
+# Every other file's BLAKE2b-256 and size as published, so that `nearsight verify` can tell a damaged file.
+CHECKSUMS_FILE = "checksums.json"
 TIERS = ("near", "similar")
 
 
@@ -173,6 +175,25 @@ def _link_or_copy(src: Path, dest: Path) -> None:
         shutil.copy2(src, dest)
 
 
+def checksums(folder: Path, links: dict[str, Path] | None = None) -> dict[str, dict]:
+    """{file name: {"blake2b": hex digest, "size": bytes}} of every file in `folder` but the checksums
+    themselves. A file linked from an earlier generation (`links`) takes that generation's recorded sum
+    when it has one (the same bytes: published files are never written again), so an unchanged night
+    hashes only what it wrote."""
+    from .fsutil import hash_file
+
+    earlier: dict[str, dict] = {}
+    for filename, src in (links or {}).items():
+        try:
+            recorded = json.loads((src.parent / CHECKSUMS_FILE).read_text("utf-8")).get(src.name)
+        except (OSError, ValueError):
+            recorded = None
+        if recorded and recorded.get("size") == (folder / filename).stat().st_size:
+            earlier[filename] = recorded
+    return {f.name: earlier.get(f.name) or {"blake2b": hash_file(f), "size": f.stat().st_size}
+            for f in sorted(folder.iterdir()) if f.is_file() and f.name != CHECKSUMS_FILE}
+
+
 def publish(store: Store, index: faiss.Index | None, meta: dict, groups: dict | None, *, keep: int,
             extra: dict[str, bytes] | None = None, links: dict[str, Path] | None = None) -> Generation:
     """Write a complete generation directory (plus `extra` files, and `links`: files of an earlier
@@ -198,6 +219,7 @@ def publish(store: Store, index: faiss.Index | None, meta: dict, groups: dict | 
     missing = [f for f in (INDEX_FILE, GROUPS_FILE) if not (tmp / f).is_file()]
     if missing:
         raise StoreError(f"generation {name} would lack {', '.join(missing)}")
+    atomic_write_text(tmp / CHECKSUMS_FILE, json.dumps(checksums(tmp, links), sort_keys=True, indent=1))
     fsync_dir(tmp)
     pause_at("publish")
     os.rename(tmp, root / name)

@@ -122,6 +122,21 @@ def build_store(work: Path) -> BuiltStore:
     return BuiltStore(template, archive, originals, work)
 
 
+def sha256(path: Path) -> str:
+    """SHA-256 of a file's bytes (hashlib), the tests' outside check that files are what they were."""
+    import hashlib
+
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+
+
+def open_plain_store(path: Path):
+    """A store opened with its defaults only (no NEARSIGHT_* from the environment)."""
+    from nearsight.indexer.settings import load_settings
+    from nearsight.indexer.store import Store
+
+    return Store.open(path, settings=load_settings(environ={}))
+
+
 # -- a real server process --------------------------------------------------------------------------
 @dataclass
 class ServerProcess:

@@ -6,7 +6,6 @@ the answers must be equal); SHA-256 (hashlib) of every archive file before and a
 """
 
 import hashlib
-import io
 import json
 
 import pytest

@@ -5,7 +5,6 @@ online backup API holds what was committed, never an open transaction's rows); S
 files' inode numbers (os.stat) for what was copied or linked; the store's own answers before and after.
 """
 
-import hashlib
 import json
 import sqlite3
 import shutil
@@ -16,18 +15,8 @@ import nearsight
 from nearsight.indexer import backup as backup_module
 from nearsight.indexer.backup import backup_store
 from nearsight.indexer.errors import UsageError
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
 
-from .service_support import COPIED, transformed
-
-
-def _sha(path):
-    return hashlib.sha256(path.read_bytes()).hexdigest()
-
-
-def _open(path):
-    return Store.open(path, settings=load_settings(environ={}))
+from .service_support import COPIED, open_plain_store, sha256, transformed
 
 
 @pytest.fixture
@@ -37,16 +26,20 @@ def store_dir(service_store):
 
 def test_the_backup_is_a_store_that_answers_as_the_original_does(store_dir, service_store, tmp_path):
     dest = tmp_path / "backup"
-    with _open(store_dir) as store:
+    with open_plain_store(store_dir) as store:
         report = backup_store(store, dest)
     assert report["generation"] and report["models"] and report["small_copies"] > 0
     conn = sqlite3.connect(dest / "catalog.sqlite")
     assert conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
     conn.close()
+    from nearsight.indexer.integrity import verify_store
+
+    with open_plain_store(dest) as copy:
+        assert [f for f in verify_store(copy) if f.problem] == []  # `nearsight verify` passes on the backup
     gen = dest / "generations" / report["generation"]
     for f in gen.iterdir():  # the generation's files: the same bytes, and on one filesystem the same inode
         original = store_dir / "generations" / report["generation"] / f.name
-        assert _sha(f) == _sha(original) and f.stat().st_ino == original.stat().st_ino
+        assert sha256(f) == sha256(original) and f.stat().st_ino == original.stat().st_ino
     queries = [transformed(p, tmp_path / f"{n}.jpg") for n, p in service_store.originals.items() if n not in COPIED][:4]
     answers = {}
     for where in (store_dir, dest):
@@ -64,7 +57,7 @@ def test_an_open_write_transaction_is_not_in_the_backup_and_does_not_block_it(st
     writer.execute("BEGIN IMMEDIATE")
     writer.execute("INSERT INTO meta(key, value) VALUES ('uncommitted', 'x')")
     try:
-        with _open(store_dir) as store:
+        with open_plain_store(store_dir) as store:
             backup_store(store, tmp_path / "backup", small_copies=False)
     finally:
         writer.execute("ROLLBACK")
@@ -84,7 +77,7 @@ def test_a_generation_published_during_the_backup_is_the_one_copied(store_dir, t
     """The current generation is pruned while it is copied, a newer one having been published: the backup
     copies the newer one and names it current."""
     real = backup_module._copy_tree
-    with _open(store_dir) as store:
+    with open_plain_store(store_dir) as store:
         old = store.read_pointer("generations/CURRENT")
         state = {"swapped": False}
 
@@ -111,7 +104,7 @@ def test_a_destination_that_cannot_hold_a_backup_is_refused_and_nothing_is_writt
         dest.mkdir()
         (dest / "keep.txt").write_text("mine")
     before = sorted(p.name for p in tmp_path.iterdir())
-    with _open(store_dir) as store, pytest.raises(UsageError):
+    with open_plain_store(store_dir) as store, pytest.raises(UsageError):
         backup_store(store, dest)
     assert sorted(p.name for p in tmp_path.iterdir()) == before
     assert not (store_dir / "backup").exists()
@@ -123,7 +116,7 @@ def test_a_failed_backup_leaves_no_destination_and_no_partial_folder(store_dir, 
     def full_disk(*args, **kwargs):
         raise OSError(28, "No space left on device")
 
-    with _open(store_dir) as store:
+    with open_plain_store(store_dir) as store:
         monkeypatch.setattr(backup_module.sqlite3, "connect", full_disk)  # the catalog's copy fails
         with pytest.raises(OSError):
             backup_store(store, tmp_path / "backup")

@@ -1,0 +1,272 @@
+"""`nearsight verify [--repair]`: is this store whole, and mend what can be made again.
+
+Checks, each giving findings of one line (a problem, or a note that is not one):
+
+- ``catalog``: SQLite's `PRAGMA integrity_check` and `PRAGMA foreign_key_check`;
+- ``generation``: the pointer names a published generation, and every file of every published generation
+  has the size and BLAKE2b-256 recorded when it was published (generations.CHECKSUMS_FILE; generations
+  published before the sums were kept get a note);
+- ``index``: the current generation's index holds one vector for each item it lists, and its region index
+  (when it has one) only files it lists;
+- ``vectors``: every content the current generation indexes has its vector under the generation's model
+  in the catalog (incremental builds and grouping read them from there);
+- ``small-copies``: every small copy the catalog records exists and is a readable image;
+- ``quarantine``: every file the catalog records as quarantined is where its manifest moved it, with the
+  bytes it had (its content hash), and its manifest exists.
+
+`--repair` makes again only what is derived (under the store's lock): a missing or damaged small copy from
+its source file (when that file still holds the same bytes), missing vectors from the source files, and a
+damaged or inconsistent current generation by a full build from the catalog's vectors; a damaged generation
+that no pointer names any more is removed. It never touches a
+user's image, never drops a verdict, and a quarantined file that is missing or changed is reported, not
+"repaired".
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import shutil
+import sqlite3
+from dataclasses import asdict, dataclass
+from pathlib import Path
+
+import numpy as np
+
+from . import generations
+from .fsutil import hash_file
+from .store import CATALOG_FILE, Store
+
+log = logging.getLogger(__name__)
+
+CHECKS = ("catalog", "generation", "index", "vectors", "small-copies", "quarantine")
+
+
+@dataclass(frozen=True)
+class Finding:
+    check: str  # one of CHECKS
+    problem: bool  # False: a note, nothing wrong
+    message: str
+    # what --repair does about it: "small-copy", "vectors", "generation" (a full build), "remove" (a damaged
+    # generation no pointer names); None: nothing it may do
+    repair: str | None = None
+    subject: str | None = None  # the content hash, generation or file concerned
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+    def line(self) -> str:
+        mark = "problem" if self.problem else "note"
+        fix = f" (--repair: {self.repair})" if self.problem and self.repair else ""
+        return f"{mark:<7}  {self.check:<12}  {self.message}{fix}"
+
+
+def _catalog(store: Store) -> list[Finding]:
+    conn = sqlite3.connect(f"file:{store.root / CATALOG_FILE}?mode=ro", uri=True, timeout=30)
+    try:
+        rows = [r[0] for r in conn.execute("PRAGMA integrity_check").fetchall()]
+        keys = conn.execute("PRAGMA foreign_key_check").fetchall()
+    except sqlite3.DatabaseError as exc:
+        return [Finding("catalog", True, f"the catalog cannot be read: {exc}")]
+    finally:
+        conn.close()
+    out = [Finding("catalog", True, f"integrity check: {r}") for r in rows if r != "ok"]
+    out += [Finding("catalog", True, f"table {t} row {rowid} names a missing row of {parent}")
+            for t, rowid, parent, _ in keys]
+    return out
+
+
+def _generation_files(store: Store, current: str | None) -> list[Finding]:
+    out = []
+    root = store.generations_dir
+    names = sorted(p.name for p in root.iterdir() if p.is_dir() and not p.name.startswith(".")) if root.is_dir() else []
+    if current is not None and current not in names:
+        out.append(Finding("generation", True, f"generations/CURRENT names {current}, which is not there",
+                           "generation", current))
+    for name in names:
+        folder = root / name
+        try:
+            recorded = json.loads((folder / generations.CHECKSUMS_FILE).read_text("utf-8"))
+        except FileNotFoundError:
+            out.append(Finding("generation", False, f"{name} was published before checksums were kept: "
+                                                     "its files cannot be checked", subject=name))
+            continue
+        except ValueError:
+            out.append(Finding("generation", True, f"{name}: its checksums file is damaged",
+                               "generation" if name == current else "remove", name))
+            continue
+        for filename, want in sorted(recorded.items()):
+            path = folder / filename
+            if not path.is_file():
+                problem = f"{name}: {filename} is missing"
+            elif path.stat().st_size != want["size"]:
+                problem = f"{name}: {filename} has {path.stat().st_size} bytes, {want['size']} when published"
+            elif hash_file(path) != want["blake2b"]:
+                problem = f"{name}: {filename} is not what was published (its content hash differs)"
+            else:
+                continue
+            out.append(Finding("generation", True, problem, "generation" if name == current else "remove", name))
+    return out
+
+
+def _index(store: Store, gen) -> list[Finding]:
+    items = gen.load_items()
+    if items is None:
+        return [Finding("index", True, f"{gen.name} has no list of its items", "generation", gen.name)]
+    ids, contents = items
+    try:
+        index = gen.load_index()
+    except Exception as exc:  # FAISS raises RuntimeError for a damaged file
+        return [Finding("index", True, f"{gen.name}: the index cannot be read ({exc})", "generation", gen.name)]
+    out = []
+    if index.ntotal != len(ids):
+        out.append(Finding("index", True, f"{gen.name}: the index holds {index.ntotal} vectors for {len(ids)} "
+                                          "items", "generation", gen.name))
+    if (gen.meta.get("regions") or {}).get("grid"):
+        try:
+            regions, _grid = gen.load_regions()
+        except Exception as exc:
+            return out + [Finding("index", True, f"{gen.name}: the region index cannot be read ({exc})",
+                                  "generation", gen.name)]
+        if regions is not None and regions.ntotal:
+            import faiss
+
+            region_ids = np.unique(faiss.vector_to_array(faiss.downcast_index(regions).id_map))
+            stray = np.setdiff1d(region_ids, ids)
+            if len(stray):
+                out.append(Finding("index", True, f"{gen.name}: the region index holds {len(stray)} files the "
+                                                  "generation does not list", "generation", gen.name))
+    return out
+
+
+def _vectors(store: Store, gen) -> list[Finding]:
+    items = gen.load_items()
+    model = gen.meta.get("model")
+    if items is None or not model:
+        return []
+    contents = sorted(set(int(c) for c in items[1]))
+    have = store.catalog.contents_with_vectors(model, contents)
+    missing = len(contents) - len(have)
+    if missing:
+        return [Finding("vectors", True, f"{missing} of the {len(contents)} contents that {gen.name} indexes "
+                                         f"have no vector under model {model}", "vectors", gen.name)]
+    return []
+
+
+def _small_copies(store: Store) -> list[Finding]:
+    from PIL import Image
+
+    out = []
+    for digest in store.catalog.contents_with_small_copies():
+        path = store.thumb_path(digest)
+        try:
+            with Image.open(path) as im:
+                im.verify()
+        except FileNotFoundError:
+            out.append(Finding("small-copies", True, f"the small copy of content {digest[:12]} is missing",
+                               "small-copy", digest))
+        except Exception as exc:  # Pillow raises many kinds for a damaged file
+            out.append(Finding("small-copies", True, f"the small copy of content {digest[:12]} is damaged ({exc})",
+                               "small-copy", digest))
+    return out
+
+
+def _quarantine(store: Store) -> list[Finding]:
+    out = []
+    for row in store.catalog.quarantined_files():
+        where = Path(row["quarantine_path"] or "")
+        label = f"file {row['id']} ({row['relpath']})"
+        if not row["quarantine_path"] or not where.is_file():
+            out.append(Finding("quarantine", True, f"{label}: not at {where}, where its quarantine moved it",
+                               subject=str(where)))
+        elif hash_file(where) != row["hash"]:
+            out.append(Finding("quarantine", True, f"{label}: {where} no longer holds the bytes that were moved",
+                               subject=str(where)))
+        if row["quarantine_manifest"] and not Path(row["quarantine_manifest"]).is_file():
+            out.append(Finding("quarantine", True, f"{label}: its manifest {row['quarantine_manifest']} is missing "
+                                                   "(`restore` needs it)", subject=row["quarantine_manifest"]))
+    return out
+
+
+def verify_store(store: Store) -> list[Finding]:
+    """Every finding of every check (module docstring), problems and notes."""
+    findings = _catalog(store)
+    if any(f.check == "catalog" for f in findings):
+        return findings  # the other checks read the catalog
+    current = store.read_pointer(generations.POINTER)
+    findings += _generation_files(store, current)
+    gen = generations.current(store) if current and (store.generations_dir / current).is_dir() else None
+    if gen is not None:
+        findings += _index(store, gen)
+        findings += _vectors(store, gen)
+    findings += _small_copies(store)
+    findings += _quarantine(store)
+    return findings
+
+
+def repair_store(store: Store, findings: list[Finding]) -> list[str]:
+    """Make again what the findings say is derivable, under the store's lock; returns what was done."""
+    done: list[str] = []
+    wanted = {f.repair for f in findings if f.problem and f.repair}
+    if not wanted:
+        return done
+    with store.lock():
+        for f in findings:
+            if f.problem and f.repair == "small-copy":
+                done.append(_remake_small_copy(store, f.subject))
+        if wanted & {"vectors", "generation"}:
+            done += _rebuild_generation(store, embed="vectors" in wanted)
+        current = store.read_pointer(generations.POINTER)
+        for name in sorted({f.subject for f in findings if f.problem and f.repair in ("remove", "generation")}):
+            folder = store.generations_dir / name
+            if name != current and folder.is_dir():  # a damaged generation no pointer names: derived, unusable
+                shutil.rmtree(folder)
+                done.append(f"removed the damaged generation {name} (not the current one)")
+    return done
+
+
+def _remake_small_copy(store: Store, digest: str) -> str:
+    from .errors import ImageReadError
+    from .images import read_image, save_thumbnail
+
+    for source in store.catalog.present_files_with_hash(digest):
+        path = Path(source["path"])
+        try:
+            if hash_file(path) != digest:
+                continue  # the file changed since it was scanned: not this content any more
+            im, _ = read_image(path, max_side=store.settings.thumb_side, max_pixels=store.settings.max_pixels)
+        except (OSError, ImageReadError):
+            continue
+        save_thumbnail(im, store.thumb_path(digest))
+        return f"made the small copy of content {digest[:12]} again from {path}"
+    return f"could not make the small copy of content {digest[:12]} again: no file holds its bytes now"
+
+
+def _rebuild_generation(store: Store, *, embed: bool) -> list[str]:
+    from .build import build_generation
+    from .calibrate import CalibrationConfig
+    from .models import current_model_dir
+
+    settings = store.settings
+    model_dir = current_model_dir(store)
+    if model_dir is None:
+        return ["could not rebuild the generation: the store has no model"]
+    done = []
+    if embed:
+        from .vectors import embed_missing
+
+        embedded = embed_missing(store, model_dir, progress=False)
+        done.append(f"embedded {embedded['embedded']} contents that had no vector")
+    # Rebuilt as the generation it replaces was built: calibrated when it was (the calibration is derived from
+    # the collection too), not when it was built with --no-calibrate.
+    calibrated = True
+    try:
+        calibrated = (store.generations_dir / store.read_pointer(generations.POINTER)
+                      / generations.CALIBRATION_FILE).is_file()
+    except TypeError:  # no pointer
+        pass
+    built = build_generation(store, model_dir, t_near=settings.near_threshold, t_similar=settings.similar_threshold,
+                             keep=settings.keep_generations, reason="repair",
+                             calibration=CalibrationConfig.from_settings(settings) if calibrated else None)
+    done.append(f"published generation {built.get('generation')} by a full build from the catalog's vectors")
+    return done
