@@ -41,6 +41,8 @@ ATTEMPTS = 3  # times the current generation is looked up again when a publish s
 
 def _link_or_copy(src: Path, dst: Path, counts: dict) -> None:
     try:
+        if counts.get("copy_only"):
+            raise OSError(errno.EXDEV, "copies asked for")
         os.link(src, dst)
         counts["linked"] += 1
     except OSError as exc:
@@ -51,16 +53,38 @@ def _link_or_copy(src: Path, dst: Path, counts: dict) -> None:
         counts["bytes_copied"] += dst.stat().st_size
 
 
+def _raise(error: OSError) -> None:
+    raise error
+
+
 def _copy_tree(src: Path, dst: Path, counts: dict) -> None:
     """Every file under `src` linked or copied to the same place under `dst`; hidden entries (a run's
-    temporary folders) are left out."""
-    for folder, dirs, files in os.walk(src):
+    temporary folders) are left out. A folder that vanishes meanwhile raises FileNotFoundError."""
+    if not src.is_dir():
+        raise FileNotFoundError(str(src))
+    for folder, dirs, files in os.walk(src, onerror=_raise):
         dirs[:] = sorted(d for d in dirs if not d.startswith("."))
         rel = Path(folder).relative_to(src)
         (dst / rel).mkdir(parents=True, exist_ok=True)
         for name in sorted(files):
             if not name.startswith("."):
                 _link_or_copy(Path(folder) / name, dst / rel / name, counts)
+
+
+def _check_copy(folder: Path) -> None:
+    """Every file a generation's checksums name is in the copy with its size (FileNotFoundError if not:
+    the generation was pruned while it was copied). Generations from before checksums pass as they are."""
+    import json
+
+    from .generations import CHECKSUMS_FILE
+
+    try:
+        recorded = json.loads((folder / CHECKSUMS_FILE).read_text("utf-8"))
+    except FileNotFoundError:
+        return
+    for filename, want in recorded.items():
+        if (folder / filename).stat().st_size != want["size"]:
+            raise FileNotFoundError(f"{folder / filename} was cut short while it was copied")
 
 
 def _published(folder: Path) -> list[str]:
@@ -92,6 +116,7 @@ def _copy_generations(store: Store, work: Path, counts: dict) -> tuple[str | Non
         for name in _published(store.generations_dir):
             try:
                 _copy_tree(store.generations_dir / name, work / "generations" / name, counts)
+                _check_copy(work / "generations" / name)
                 done.append(name)
             except FileNotFoundError:  # pruned while we copied it
                 shutil.rmtree(work / "generations" / name, ignore_errors=True)
@@ -116,28 +141,33 @@ def _models_needed(store: Store, generations: list[str], work: Path) -> set[str]
     return needed
 
 
-def backup_store(store: Store, dest: str | os.PathLike, *, small_copies: bool = True) -> dict:
-    """Copy the store to `dest` (new or empty, outside the store) and return what was copied."""
+def backup_store(store: Store, dest: str | os.PathLike, *, small_copies: bool = True, copy: bool = False) -> dict:
+    """Copy the store to `dest` (new or empty, outside the store) and return what was copied. `copy`: copy
+    every file even on the same filesystem. A hard link costs nothing and survives the store's own mistakes
+    (the store never writes into a published file), but it is the same bytes on the same disk: a backup
+    against the loss or decay of that disk must be a copy, on another one."""
     dest = _check_destination(store, Path(dest))
     work = dest.parent / f".{dest.name}.partial-{os.getpid()}"
     shutil.rmtree(work, ignore_errors=True)
     work.mkdir()
     started = time.monotonic()
-    counts = {"linked": 0, "copied": 0, "bytes_copied": 0}
+    counts = {"linked": 0, "copied": 0, "bytes_copied": 0, "copy_only": copy}
     try:
         current, generations = _copy_generations(store, work, counts)
         models = sorted(_models_needed(store, generations, work) & set(_published(store.models_dir)))
         (work / "models").mkdir()
         for name in models:
             _copy_tree(store.models_dir / name, work / "models" / name, counts)
-        # After the generations: every file id they name is in this catalog.
-        source = sqlite3.connect(f"file:{store.root / CATALOG_FILE}?mode=ro", uri=True, timeout=30)
+        # After the generations: every file id they name is in this catalog. Through the store's own
+        # connection (no URI made from a path, where a '#' or '?' would name another file).
         target = sqlite3.connect(work / CATALOG_FILE)
         try:
-            source.backup(target)
+            store.catalog.conn.backup(target)
+            copied_version = target.execute("PRAGMA user_version").fetchone()[0]
         finally:
             target.close()
-            source.close()
+        if copied_version != store.catalog.schema_version():
+            raise StoreError(f"the catalog's copy is at schema {copied_version}, not {store.catalog.schema_version()}")
         catalog_bytes = (work / CATALOG_FILE).stat().st_size
         if (store.root / SETTINGS_FILE).is_file():
             shutil.copy2(store.root / SETTINGS_FILE, work / SETTINGS_FILE)
@@ -161,5 +191,6 @@ def backup_store(store: Store, dest: str | os.PathLike, *, small_copies: bool = 
         shutil.rmtree(work, ignore_errors=True)
         raise
     return {"backup": str(dest), "store": str(store.root), "generation": current, "generations": generations,
-            "models": models, "small_copies": thumbs, "catalog_bytes": catalog_bytes, **counts,
+            "models": models, "small_copies": thumbs, "catalog_bytes": catalog_bytes,
+            **{k: v for k, v in counts.items() if k != "copy_only"},
             "seconds": round(time.monotonic() - started, 2)}

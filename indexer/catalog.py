@@ -121,6 +121,8 @@ class Catalog:
             )
         for target in range(version + 1, SCHEMA_VERSION + 1):
             with self.transaction():
+                if self.schema_version() >= target:  # another process (serve, a nightly run) got there first
+                    continue
                 MIGRATIONS[target - 1](self.conn)
                 self.conn.execute(f"PRAGMA user_version={target}")
                 self.conn.execute(

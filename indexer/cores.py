@@ -18,6 +18,7 @@ R = TypeVar("R")
 
 _POOL: ThreadPoolExecutor | None = None
 _LOCK = threading.Lock()
+_INSIDE = threading.local()  # set in the pool's threads: work they start runs where they are (no deadlock)
 
 
 def usable_cores() -> int:
@@ -33,16 +34,17 @@ def _one_faiss_thread() -> None:
     import faiss
 
     faiss.omp_set_num_threads(1)
+    _INSIDE.pool = True
 
 
 def each_on_cores(work: Callable[[T], R], items: Sequence[T]) -> list[R]:
-    """`work` of every item, results in the items' order, on `usable_cores()` threads at once. One item, or
-    one core, runs in the caller's thread. An exception in `work` is raised here, as a loop would raise it.
-    The threads are shared by every caller in the process (a service's request threads included), so
+    """`work` of every item, results in the items' order, on `usable_cores()` threads at once. One item, one
+    core, or a call from one of the pool's own threads (no deadlock) runs in the caller's thread. An exception
+    in `work` is raised here, as a loop would raise it. The threads are shared by every caller in the process (a service's request threads included), so
     concurrent batches queue for them instead of multiplying them."""
     global _POOL
     cores = usable_cores()
-    if cores <= 1 or len(items) <= 1:
+    if cores <= 1 or len(items) <= 1 or getattr(_INSIDE, "pool", False):
         return [work(item) for item in items]
     with _LOCK:
         if _POOL is None:

@@ -343,6 +343,17 @@ def _info(im: Image.Image, header: _Header, orientation: int, *, loaded: bool) -
     )
 
 
+def origin(src) -> tuple[str | None, str | None, bool]:
+    """(captured, camera, icc) of an image file, as `read_image` reports them, without decoding it (except a
+    PNG, whose eXIf chunk may follow its pixels, where Pillow finds it only by reading them). Raises
+    ImageReadError like `probe`."""
+    with _opened(src, None) as (im, _fp):
+        if im.format == "PNG" and "exif" not in im.info:
+            im.load()  # a failure here becomes ImageReadError in _opened
+        captured, camera = _exif_origin(im)
+        return captured, camera, bool(im.info.get("icc_profile"))
+
+
 def _exif_text(value) -> str | None:
     if isinstance(value, bytes):
         value = value.decode("ascii", "replace")

@@ -35,7 +35,7 @@ import numpy as np
 
 from . import generations
 from .fsutil import hash_file
-from .store import CATALOG_FILE, Store
+from .store import Store
 
 log = logging.getLogger(__name__)
 
@@ -62,14 +62,12 @@ class Finding:
 
 
 def _catalog(store: Store) -> list[Finding]:
-    conn = sqlite3.connect(f"file:{store.root / CATALOG_FILE}?mode=ro", uri=True, timeout=30)
+    conn = store.catalog.conn
     try:
         rows = [r[0] for r in conn.execute("PRAGMA integrity_check").fetchall()]
         keys = conn.execute("PRAGMA foreign_key_check").fetchall()
     except sqlite3.DatabaseError as exc:
         return [Finding("catalog", True, f"the catalog cannot be read: {exc}")]
-    finally:
-        conn.close()
     out = [Finding("catalog", True, f"integrity check: {r}") for r in rows if r != "ok"]
     out += [Finding("catalog", True, f"table {t} row {rowid} names a missing row of {parent}")
             for t, rowid, parent, _ in keys]
@@ -204,13 +202,16 @@ def verify_store(store: Store) -> list[Finding]:
     return findings
 
 
-def repair_store(store: Store, findings: list[Finding]) -> list[str]:
-    """Make again what the findings say is derivable, under the store's lock; returns what was done."""
+def repair_store(store: Store, findings: list[Finding] | None = None) -> list[str]:
+    """Make again what is derivable, under the store's lock; returns what was done. The store is checked
+    again once the lock is held (`findings`, from before, only say whether to take it): a run that held
+    the lock meanwhile may have changed what is wrong."""
     done: list[str] = []
-    wanted = {f.repair for f in findings if f.problem and f.repair}
-    if not wanted:
+    if findings is not None and not any(f.problem and f.repair for f in findings):
         return done
     with store.lock():
+        findings = verify_store(store)
+        wanted = {f.repair for f in findings if f.problem and f.repair}
         for f in findings:
             if f.problem and f.repair == "small-copy":
                 done.append(_remake_small_copy(store, f.subject))

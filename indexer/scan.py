@@ -366,6 +366,11 @@ def _moved_from(catalog, content_id: int) -> dict | None:
     return None
 
 
+ORIGIN_BATCH = 500  # contents whose facts are committed together
+# Reasons (read_errors.py) that say the file could not be reached now, not that it is no image.
+TRANSIENT_REASONS = frozenset({"missing", "permission", "io-error"})
+
+
 def read_origins(store) -> int:
     """Read once the EXIF and ICC facts (images.ImageInfo: captured, camera, icc) of contents catalogued
     before the catalog kept them, from the header of one present file each (no decoding); the keeper rule
@@ -375,13 +380,21 @@ def read_origins(store) -> int:
     if not missing:
         return 0
     log.info("reading the capture facts (EXIF, ICC profile) of %d images catalogued before this version", len(missing))
-    found = {}
+    found: dict = {}
+    read = 0
     for row in missing:
         try:
-            info = images.probe(row["path"], max_pixels=None)
-            found[row["id"]] = (info.captured, info.camera, info.icc)
-        except (ImageReadError, OSError) as exc:
-            log.debug("no capture facts for %s: %s", row["path"], exc)
-            found[row["id"]] = (None, None, False)
+            found[row["id"]] = images.origin(row["path"])
+        except OSError as exc:  # cannot be opened now (permissions, a NAS away): tried again at the next run
+            log.debug("no capture facts for %s yet: %s", row["path"], exc)
+        except ImageReadError as exc:
+            if exc.reason in TRANSIENT_REASONS:
+                log.debug("no capture facts for %s yet: %s", row["path"], exc)
+            else:  # not readable as an image: it has none, and asking again will not change that
+                found[row["id"]] = (None, None, False)
+        if len(found) >= ORIGIN_BATCH:
+            store.catalog.set_origins(found)
+            read += len(found)
+            found = {}
     store.catalog.set_origins(found)
-    return len(found)
+    return read + len(found)

@@ -10,8 +10,9 @@
 
 A thin layer like the CLI (indexer/commands.py): every call goes to the same functions of
 `nearsight.indexer`, under the same rules (limits.py for thresholds, precisions and k; the store's write
-lock for `index`). Results are dataclasses with `to_dict()`, the same dictionaries the CLI prints with
-`--json`. Nothing here moves a file: applying a plan stays with `nearsight quarantine --apply`, where it
+lock for `index`). Results are dataclasses with `to_dict()`, the dictionaries the CLI prints with `--json`
+(a plan's without the CLI's `"applied": false`). An Archive holds one SQLite connection: use it from the
+thread that opened it (open one per thread). Nothing here moves a file: applying a plan stays with `nearsight quarantine --apply`, where it
 is journalled and verified by content hash.
 """
 
@@ -166,51 +167,57 @@ class Archive:
 
     def similar(self, images: Iterable, *, k: int = 10, threshold: float | None = None,
                 precision: float | None = None) -> list[Answer]:
-        """`nearsight similar`: for each image (a path, the bytes of a file, or a PIL image) its `k` nearest
+        """`nearsight similar`: for each image (a path, a folder of them, the bytes of a file, or a PIL image;
+        one alone or a list) its `k` nearest
         catalogued images, best first, each with the store's copy verdict. `threshold` (a cosine in (0, 1]) or
         `precision` (read off the calibration) replaces the calibrated verdict, as on the command line. An
         input that is not a readable image gets an Answer with its error; nothing is raised for it."""
+        from nearsight.indexer.query import QUERY_BATCH
+
         k = limits.K.check(k)
         searcher = self._current_searcher()
         cut = self._threshold(searcher, threshold, precision)
-        items = list(images)
-        read = self._read(searcher, items)
-        good = [i for i, r in enumerate(read) if not isinstance(r, NearsightError)]
-        found: dict[int, list[dict]] = {}
-        from nearsight.indexer.query import QUERY_BATCH
-
-        for start in range(0, len(good), QUERY_BATCH):
-            rows = good[start:start + QUERY_BATCH]
-            pixels = [read[i] for i in rows]
-            for i, results in zip(rows, searcher.neighbours(searcher.vectors_for_images(pixels), k, cut, images=pixels)):
-                found[i] = results
+        items = self._queries(images)
         out = []
-        for i, item in enumerate(items):
-            if i in found:
-                out.append(Answer(_label(item), tuple(Match(**{f: r.get(f) for f in Match.__dataclass_fields__})
-                                                      for r in found[i])))
-            else:
-                out.append(Answer(_label(item), error=read[i].to_dict()))
+        for start in range(0, len(items), QUERY_BATCH):  # decoded a batch at a time, as `similar` does
+            block = items[start:start + QUERY_BATCH]
+            read = self._read(searcher, block)
+            good = [i for i, r in enumerate(read) if not isinstance(r, NearsightError)]
+            pixels = [read[i] for i in good]
+            found = dict(zip(good, searcher.neighbours(searcher.vectors_for_images(pixels), k, cut, images=pixels)
+                             if pixels else []))
+            for i, item in enumerate(block):
+                if i in found:
+                    out.append(Answer(_label(item), tuple(Match(**{f: r.get(f) for f in Match.__dataclass_fields__})
+                                                          for r in found[i])))
+                else:
+                    out.append(Answer(_label(item), error=read[i].to_dict()))
         return out
 
-    def check(self, paths: Iterable[str | os.PathLike], *, threshold: float | None = None):
-        """`nearsight check`: each file of new material as `copy`, `similar`, `new` or `unreadable` against
-        the archive (indexer/check.py's CheckAnswer), the store untouched. Folders are expanded."""
+    def check(self, paths, *, threshold: float | None = None, precision: float | None = None):
+        """`nearsight check`: each file of new material (a path or a list of them; folders are expanded) as
+        `copy`, `similar`, `new` or `unreadable` against the archive (indexer/check.py's CheckAnswer), the
+        store untouched. `threshold` or `precision` as in `similar`."""
         from nearsight.indexer.check import check_files
         from nearsight.indexer.query import expand_queries
 
-        threshold = limits.THRESHOLD.check(threshold)
         searcher = self._current_searcher()
+        cut = self._threshold(searcher, threshold, precision)
+        if isinstance(paths, (str, os.PathLike)):
+            paths = [paths]
         given = expand_queries([str(p) for p in paths], self._store.settings.extensions)
-        return list(check_files(searcher, given, threshold=threshold))
+        return list(check_files(searcher, given, threshold=cut))
 
     def groups(self, *, tier: str | None = None, threshold: float | None = None, precision: float | None = None):
         """`nearsight groups`: the current groups (indexer/groups.py's Group: keeper first, each member's tier
         and similarity), a person's verdicts applied; optionally regrouped at a threshold or precision, and
         only those of one `tier` ("exact", "near-duplicate" or "similar")."""
+        from nearsight.indexer.groups import TIERS
         from nearsight.indexer.verdict_groups import current_groups
 
         threshold, precision = limits.THRESHOLD.check(threshold), limits.PRECISION.check(precision)
+        if tier is not None and tier not in TIERS:
+            raise UsageError(f"tier must be one of {', '.join(TIERS)}, not {tier!r}")
         groups = current_groups(self._store, threshold=threshold, precision=precision).groups
         return [g for g in groups if g.tier == tier] if tier else list(groups)
 
@@ -247,6 +254,21 @@ class Archive:
             return searcher.generation.threshold("near", precision)
         return threshold
 
+    def _queries(self, images) -> list:
+        """The inputs as a list: one path, bytes or image alone is one query; folders are expanded to their
+        image files, as `nearsight similar` does."""
+        from nearsight.indexer.query import expand_queries
+
+        if isinstance(images, (str, os.PathLike, bytes, bytearray)) or hasattr(images, "getpixel"):
+            images = [images]
+        out: list = []
+        for item in images:
+            if isinstance(item, (str, os.PathLike)) and Path(item).is_dir():
+                out.extend(expand_queries([str(item)], self._store.settings.extensions))
+            else:
+                out.append(item)
+        return out
+
     @staticmethod
     def _read(searcher, items: list) -> list:
         """Each input's pixels as the query path reads a file, or the NearsightError saying why not."""
@@ -264,8 +286,10 @@ class Archive:
             if i in paths:
                 continue
             try:
-                if isinstance(item, Image.Image):  # as read_image brings a decoded file: RGB, longest side max_side
-                    rgb = to_rgb(item)
+                if isinstance(item, Image.Image):  # as read_image brings a decoded file: upright, RGB, max_side
+                    from PIL import ImageOps
+
+                    rgb = to_rgb(ImageOps.exif_transpose(item))
                     target = fit_size(rgb.size, max_side)
                     out[i] = rgb if target == rgb.size else rgb.resize(target, RESAMPLE, reducing_gap=REDUCING_GAP)
                     continue

@@ -118,8 +118,9 @@ SCHEMAS = {
             "threshold_from": {"type": "string", "enum": ["generation", "request", "precision"]},
             "counts": {"type": "object", "additionalProperties": {"type": "integer"},
                        "description": "uploads per verdict"},
-            "results": {"type": "array", "description": "one per uploaded image, in the order sent", "items": {
+            "results": {"type": "array", "description": "one per uploaded image", "items": {
                 "type": "object", "required": ["path", "verdict", "match", "error"],
+                "description": "in the order sent (files sharing a field name together)",
                 "properties": {
                     "path": {"type": "string", "description": "the upload's file name (else its field name), "
                                                               "only echoed back"},

@@ -95,7 +95,8 @@ MAX_CHECK_FILES = 64  # images one POST /v1/check may carry (their bytes togethe
 
 
 def uploads(request, limit: int) -> tuple[list[tuple[str, bytes]], Mapping[str, Any]]:
-    """The images of a check request as (name, bytes), in the order sent, and the form fields beside them.
+    """The images of a check request as (name, bytes), and the form fields beside them: in the order sent,
+    except that files sharing a field name come together (werkzeug groups a multipart body by field).
 
     Multipart: every file field, each named by its file name (else its field name; only echoed back in the
     answer, never used as a path). Raw body: one image named "upload". The bytes of all of them together

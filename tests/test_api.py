@@ -58,6 +58,16 @@ def test_similar_answers_as_the_command_line_does(store_dir, queries, run_cli):
     assert got == expected
 
 
+def test_one_path_alone_and_a_folder_are_queries_too(store_dir, queries):
+    folder = next(iter(queries.values())).parent
+    with nearsight.open_store(store_dir) as store:
+        alone = store.similar(str(queries["rocket"]), k=2)
+        listed = store.similar([queries["rocket"]], k=2)
+        whole = store.similar([folder], k=1)
+    assert [a.to_dict() for a in alone] == [a.to_dict() for a in listed] and len(alone) == 1
+    assert sorted(a.query for a in whole) == sorted(str(p) for p in queries.values())
+
+
 def test_an_unreadable_input_gets_its_error_and_the_others_their_answers(store_dir, queries, tmp_path):
     good = next(iter(queries.values()))
     with nearsight.open_store(store_dir) as store:

@@ -82,13 +82,12 @@ def test_a_generation_published_during_the_backup_is_the_one_copied(store_dir, t
         state = {"swapped": False}
 
         def publish_meanwhile(src, dst, counts):
-            if src.name == old and not state["swapped"]:
+            if src.name == old and not state["swapped"]:  # a nightly run publishes and prunes right now
                 state["swapped"] = True
                 shutil.copytree(src, src.with_name(old + "-newer"))
                 store.write_pointer("generations/CURRENT", old + "-newer")
                 shutil.rmtree(src)
-                raise FileNotFoundError(str(src))
-            return real(src, dst, counts)
+            return real(src, dst, counts)  # the real copy meets the pruned folder
 
         monkeypatch.setattr(backup_module, "_copy_tree", publish_meanwhile)
         report = backup_store(store, tmp_path / "backup", small_copies=False)
@@ -130,3 +129,23 @@ def test_the_command_prints_what_it_copied(store_dir, tmp_path, run_cli):
     assert report["copied"] == 0 and report["linked"] > 0
     run_cli("status", "--store", tmp_path / "b2", check_exit=0)
     assert "not empty" in run_cli("backup", tmp_path / "b2", "--store", store_dir, check_exit=2).stderr
+
+
+def test_a_store_path_with_uri_characters_is_backed_up_whole(service_store, tmp_path):
+    """'#', '?' and '%' mean something in an SQLite URI; the copy must still be this catalog, row for row."""
+    store_dir = tmp_path / "store #1?a=b%20"
+    import shutil as _shutil
+
+    _shutil.copytree(service_store.template, store_dir)
+    with open_plain_store(store_dir) as store:
+        backup_store(store, tmp_path / "backup", small_copies=False, copy=True)
+    copy = sqlite3.connect(tmp_path / "backup" / "catalog.sqlite")
+    original = sqlite3.connect(store_dir / "catalog.sqlite")
+    for table in ("files", "contents", "vectors"):
+        n = original.execute(f"SELECT COUNT(*) FROM {table}").fetchone()[0]
+        assert n > 0 and copy.execute(f"SELECT COUNT(*) FROM {table}").fetchone()[0] == n, table
+    copy.close()
+    original.close()
+    gen = next(p for p in (tmp_path / "backup" / "generations").iterdir() if p.is_dir())
+    assert all(f.stat().st_nlink == 1 for f in gen.iterdir())  # --copy: copies, not links
+

@@ -91,3 +91,15 @@ def test_a_batch_verified_on_the_cores_answers_as_one_query_at_a_time_does(tmp_p
     originals = [0, 1, 2, 3, 1]  # candidate id of each query's photo; the last query has none
     verified = [{r["id"] for r in results if (r.get("evidence") or {}).get("verified")} for results in together]
     assert verified[:5] == [{i} for i in originals] and verified[5] == set()
+
+
+@two_cores
+def test_work_started_from_inside_the_pool_runs_where_it_is_without_waiting_for_the_pool():
+    """A nested call while every pool thread is busy with an outer item: it must not queue behind them."""
+    def outer(x):
+        return cores.each_on_cores(lambda y: (x, y, threading.current_thread().name), [0, 1, 2])
+
+    results = cores.each_on_cores(outer, list(range(cores.usable_cores())))
+    for x, inner in enumerate(results):
+        assert [r[:2] for r in inner] == [(x, 0), (x, 1), (x, 2)]
+        assert len({r[2] for r in inner}) == 1  # all in the outer item's own thread
