@@ -125,12 +125,21 @@ class Group:
 # ---------------------------------------------------------------- policies
 
 def keeper_key(meta: ImageMeta) -> tuple:
-    """Default keeper order (smallest key wins). First where the file came from, because re-saving, sharing
-    and exporting strip it while the camera's file keeps it: an EXIF capture time, then a camera make and
-    model, then an ICC colour profile, then a lossless format, then the earlier capture time. Then most
-    pixels, the larger file (less compressed), the oldest mtime (likely the original), the path."""
-    return (meta.captured is None, meta.camera is None, not meta.icc, not meta.lossless, meta.captured or "",
-            -meta.pixels, -meta.file_size, meta.mtime, meta.path)
+    """Default keeper order (smallest key wins), the first difference deciding:
+
+    1. the camera's own record, which re-saving and sharing strip: an EXIF capture time, then a camera make
+       and model (a copy that still has them is the original or closest to it, whatever its size);
+    2. most pixels;
+    3. an ICC colour profile, then a lossless format (signs of care, but exports add them too, so they
+       come after the pixels: a small PNG must not win over the full-size JPEG);
+    4. the earlier capture time;
+    5. the older modification time (an edit or a copy is saved later: a brightened edit, the larger file,
+       is not the original);
+    6. the shallower path (`coffee.jpg` stays, `backup/2019/coffee-copy.jpg` goes);
+    7. the larger file (less compressed), then the path."""
+    depth = meta.path.count("/")
+    return (meta.captured is None, meta.camera is None, -meta.pixels, not meta.icc, not meta.lossless,
+            meta.captured or "", meta.mtime, depth, -meta.file_size, meta.path)
 
 
 def group_id(ids: Iterable[int]) -> str:

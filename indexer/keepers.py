@@ -8,10 +8,10 @@ The policy, first difference wins:
    earliest-listed folder pattern wins; members under none come last;
 3. format priorities (`prefer_formats`, `--prefer-format`): the member whose
    format is listed earliest wins; unlisted formats come last;
-4. the default policy (`groups.keeper_key`): where the file came from (an EXIF
-   capture time, a camera make and model, an ICC profile, a lossless format, the
-   earlier capture time), then most pixels, then the larger file, then the oldest
-   modification time, then the path.
+4. the default policy (`groups.keeper_key`): the camera's EXIF record (capture
+   time, make and model), most pixels, an ICC profile, a lossless format, the
+   earlier capture, the older modification time, the shallower path, the larger
+   file, the path.
 
 A pattern is a path or a glob (``*``, ``?``, ``[...]``) compared one path
 component at a time, so ``*`` never crosses a ``/``. An absolute pattern is

@@ -75,8 +75,8 @@ def _meta(name, **kw):
 
 
 def test_the_keeper_order_is_origin_first_then_pixels():
-    """The order the rule states: capture time, camera, ICC profile, lossless format, earlier capture, then
-    the pixel count and the rest as before."""
+    """The order groups.keeper_key states: capture time, camera, pixels, ICC profile, lossless format,
+    earlier capture, older file, shallower path, larger file."""
     stripped_big = _meta("big.jpg", width=4000, height=3000)
     camera = _meta("camera.jpg", captured="2019-06-01T10:20:30", camera="Fernhill FX-20")
     dated_only = _meta("dated.jpg", captured="2019-06-01T10:20:30")
@@ -86,8 +86,20 @@ def test_the_keeper_order_is_origin_first_then_pixels():
     order = sorted([stripped_big, camera, dated_only, with_profile, lossless, earlier], key=keeper_key)
     assert [m.path.rsplit("/", 1)[1] for m in order] == [
         "earlier.tif", "profile.tif", "profile.jpg", "camera.jpg", "dated.jpg", "big.jpg"]
-    # Without any origin the old order stands: most pixels first.
-    assert sorted([_meta("small.jpg"), stripped_big], key=keeper_key)[0] is stripped_big
+    # Without the camera's record, most pixels first: a small lossless copy or one with a colour profile
+    # does not win over the full-size file.
+    assert sorted([_meta("small.png", format="PNG", width=500, height=500, icc=True), stripped_big],
+                  key=keeper_key)[0] is stripped_big
+    # Same pixels: the profile, then the lossless format, then the older file, then the shallower path,
+    # and only then the larger file (a brightened edit re-saved later is the larger file).
+    original = _meta("chelsea.jpg", mtime=100.0, file_size=90_000)
+    brighter = _meta("chelsea_bright.jpg", mtime=200.0, file_size=120_000)
+    assert sorted([brighter, original], key=keeper_key)[0] is original
+    top = ImageMeta(path="/archive/coffee.jpg", content_hash="c", width=10, height=10, file_size=5, format="JPEG",
+                    mtime=1.0)
+    deep = ImageMeta(path="/archive/backup/2019/coffee-copy.jpg", content_hash="c", width=10, height=10,
+                     file_size=5, format="JPEG", mtime=1.0)
+    assert sorted([deep, top], key=keeper_key)[0] is top
 
 
 def _sha(path):
