@@ -140,7 +140,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--precision", type=PRECISION.argparse_type(), help="regroup at the calibrated threshold for this precision")
     p.add_argument("--tier", choices=("same-bytes", "same-pixels", "person-same", "near-duplicate", "similar"),
                    help="only groups of this tier")
-    p.add_argument("--format", choices=("table", "json", "csv", "html"), default="table", help="output format")
+    p.add_argument("--format", choices=("table", "json", "csv", "html", "keep-list", "drop-list"), default="table",
+                   help="output format; keep-list: one path a line, every readable file the quarantine plan would "
+                        "not move; drop-list: CSV of the files it would move, each with the file it duplicates")
     p.add_argument("--out", help="write to this file (html: default STORE/reports/groups-<generation>.html)")
     p.set_defaults(func=commands.cmd_groups)
 
@@ -217,6 +219,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("dest", metavar="DEST", help="the backup folder (new, or empty)")
     p.add_argument("--without-small-copies", dest="small_copies", action="store_false",
                    help="leave out the small copies (derivable again from the source files by `index`)")
+    p.add_argument("--copy", action="store_true",
+                   help="copy every file even on the same filesystem (a hard link is the same bytes on the same "
+                        "disk: a backup against losing that disk must be a copy on another one)")
     p.add_argument("--json", action="store_true", help="print what was copied as JSON")
     p.set_defaults(func=commands.cmd_backup)
 

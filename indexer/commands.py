@@ -313,7 +313,21 @@ def cmd_groups(args) -> int:
         if args.tier:
             groups = [g for g in groups if g.tier == args.tier]
         buf = io.StringIO()
-        if args.format == "json":
+        if args.format in ("keep-list", "drop-list"):
+            from .keepers import KeeperRules
+            from .keeplist import keep_and_drop, write_drop_list, write_keep_list
+            from .plan import plan_quarantine
+
+            # The groups' weakest tier acted on is the plan's default (near-duplicate); --tier narrows it.
+            tier = args.tier if args.tier in ("same-bytes", "same-pixels", "person-same", "near-duplicate") else None
+            plan = plan_quarantine(store, tier=tier, threshold=args.threshold, precision=args.precision,
+                                   rules=KeeperRules.from_settings(store.settings))
+            keep, drop = keep_and_drop(store, plan)
+            if args.format == "keep-list":
+                write_keep_list(keep, buf)
+            else:
+                write_drop_list(drop, buf)
+        elif args.format == "json":
             groups_to_json(groups, buf)
         elif args.format == "csv":
             groups_to_csv(groups, buf)
@@ -445,6 +459,7 @@ def cmd_restore(args) -> int:
 
     if args.store is None and not os.environ.get(ENV_STORE):
         args.store = store_of_manifest(args.manifest)  # the manifest names the store it was written for
+        print(f"nearsight restore: the store the manifest names: {args.store}", file=sys.stderr)
     with open_store(args) as store:
         report = restore(store, args.manifest, apply=args.apply)
     if args.json:
@@ -463,7 +478,7 @@ def cmd_backup(args) -> int:
     from .backup import backup_store
 
     with open_store(args) as store:
-        report = backup_store(store, args.dest, small_copies=args.small_copies)
+        report = backup_store(store, args.dest, small_copies=args.small_copies, copy=args.copy)
     if args.json:
         print_json(report)
         return 0
