@@ -432,7 +432,7 @@ def cmd_quarantine(args) -> int:
 def _print_plan(plan: dict) -> None:
     print("dry run: nothing is moved (add --apply to move the files listed)")
     for g in plan["groups"]:
-        print(f"\ngroup {g['gid']}  {g['tier']}  keeper {g['keeper']['path']}")
+        print(f"\ngroup {g['gid']}  {g['tier']}  keeper {g['keeper']['path']}  (it {g['keeper']['reason']})")
         for m in g["moves"]:
             of = "" if m["copy_of"]["id"] == g["keeper"]["id"] else f" of {m['copy_of']['path']}, which stays"
             print(f"  move  {human_bytes(m['size']):>9}  {m['path']}  ->  {m['dest']}  ({m['evidence']}{of})")

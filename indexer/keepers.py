@@ -72,6 +72,25 @@ def _clean(values, what: str) -> tuple[str, ...]:
     return tuple(out)
 
 
+# What each place of KeeperRules.sort_key means (the three rules, then groups.keeper_key's ten places), said
+# of the keeper when that place decided.
+_REASONS = (
+    lambda m: "is always kept (keep_paths)",
+    lambda m: "is under a preferred folder (prefer_folders)",
+    lambda m: f"is in a preferred format, {m.format} (prefer_formats)",
+    lambda m: f"still has the camera's capture time ({m.captured})",
+    lambda m: f"still names its camera ({m.camera})",
+    lambda m: f"has the most pixels ({m.width} x {m.height})",
+    lambda m: "has an ICC colour profile",
+    lambda m: f"is in a lossless format ({m.format})",
+    lambda m: f"was captured earliest ({m.captured})",
+    lambda m: "is the oldest file (modification time)",
+    lambda m: "is the least deeply filed copy (shortest folder path)",
+    lambda m: f"is the largest file ({m.file_size} bytes: the least compressed)",
+    lambda m: "comes first by path (the copies are otherwise alike)",
+)
+
+
 @dataclass(frozen=True)
 class KeeperRules:
     """Who stays: always-kept patterns, then folder and format priorities, then the default."""
@@ -105,6 +124,16 @@ class KeeperRules:
         """Smaller wins: always kept, then folder rank, then format rank, then the default policy."""
         return (not self.always_kept(meta.path), self.folder_rank(meta.path), self.format_rank(meta),
                 *keeper_key(meta))
+
+    def reason(self, keeper: ImageMeta, others: Iterable[ImageMeta]) -> str:
+        """Why `keeper` was chosen over `others`, in plain words: the rule that decided against the member
+        that came closest (the first place where their sort keys differ)."""
+        mine = self.sort_key(keeper)
+        closest = min((self.sort_key(m) for m in others), default=None)
+        if closest is None:
+            return "is the only file of its group"
+        at = next((i for i, (a, b) in enumerate(zip(mine, closest)) if a != b), len(mine) - 1)
+        return _REASONS[min(at, len(_REASONS) - 1)](keeper)
 
     def choose(self, candidates: Mapping[int, ImageMeta]) -> int:
         """The keeper's id among `candidates` (id -> meta); ties go to the smaller id."""

@@ -91,13 +91,15 @@ class GroupPlan:
     keeper: int
     keeper_path: str
     keeper_hash: str
+    keeper_reason: str = ""  # why this member is the keeper, in plain words (KeeperRules.reason)
     moves: list[Move] = field(default_factory=list)
     kept: list[dict] = field(default_factory=list)      # other members that stay, with the reason
     skipped: list[dict] = field(default_factory=list)   # members left alone because they changed
     unverified: list[dict] = field(default_factory=list)  # near-duplicates left: verification did not confirm them
 
     def to_dict(self, to: Path | None) -> dict:
-        return {"gid": self.gid, "tier": self.tier, "keeper": {"id": self.keeper, "path": self.keeper_path},
+        return {"gid": self.gid, "tier": self.tier,
+                "keeper": {"id": self.keeper, "path": self.keeper_path, "reason": self.keeper_reason},
                 "moves": [m.to_dict(to) for m in self.moves], "kept": self.kept, "skipped": self.skipped,
                 "unverified": self.unverified, "bytes_freed": sum(m.size for m in self.moves)}
 
@@ -181,7 +183,9 @@ def _plan_group(store: Store, group: Group, rows: dict, verdicts: PairVerdicts, 
     if len(present) < 2:
         return None
     keeper = asked.rules.choose(present)
-    plan = GroupPlan(group.gid, group.tier, keeper, present[keeper].path, present[keeper].content_hash, skipped=skipped)
+    why = asked.rules.reason(present[keeper], [m for i, m in present.items() if i != keeper])
+    plan = GroupPlan(group.gid, group.tier, keeper, present[keeper].path, present[keeper].content_hash,
+                     keeper_reason=why, skipped=skipped)
     staying: dict[int, tuple[str, str]] = {}  # id -> (the plan's list, reason)
     movable = []
     for ident, meta in present.items():

@@ -197,7 +197,8 @@ SCHEMAS = {
             "groups": {"type": "array", "items": {
                 "type": "object", "required": ["gid", "tier", "keeper", "moves", "kept", "skipped", "unverified"],
                 "properties": {"gid": {"type": "string"}, "tier": {"type": "string", "enum": TIER_NAMES},
-                               "keeper": {"type": "object"},
+                               "keeper": {"type": "object", "description": "id, path, and reason: why this "
+                                          "member is the keeper, in plain words (the keeper rule that decided)"},
                                "moves": {"type": "array", "items": _ref("PlannedMove")},
                                "kept": {"type": "array", "items": _ref("LeftFile")},
                                "skipped": {"type": "array", "items": _ref("LeftFile")},

@@ -100,6 +100,15 @@ def test_the_keeper_order_is_origin_first_then_pixels():
     deep = ImageMeta(path="/archive/backup/2019/coffee-copy.jpg", content_hash="c", width=10, height=10,
                      file_size=5, format="JPEG", mtime=1.0)
     assert sorted([deep, top], key=keeper_key)[0] is top
+    # ... and the plan says which rule decided, in words.
+    from nearsight.indexer.keepers import KeeperRules
+
+    rules = KeeperRules()
+    assert rules.reason(original, [brighter]) == "is the oldest file (modification time)"
+    assert rules.reason(top, [deep]) == "is the least deeply filed copy (shortest folder path)"
+    assert rules.reason(camera, [stripped_big]) == "still has the camera's capture time (2019-06-01T10:20:30)"
+    assert KeeperRules(prefer_formats="png").reason(_meta("p.png", format="PNG"), [stripped_big]) == \
+        "is in a preferred format, PNG (prefer_formats)"
 
 
 def _sha(path):
@@ -145,6 +154,7 @@ def _keeper_of_astronaut(store_dir):
     for group in plan.to_dict()["groups"]:
         paths = [group["keeper"]["path"], *(m["path"] for m in group["moves"])]
         if any("IMG_0042" in p for p in paths):
+            _keeper_of_astronaut.reason = group["keeper"]["reason"]
             return group["keeper"]["path"], sorted(m["path"] for m in group["moves"])
     raise AssertionError(f"no group holds the camera's file: {plan.to_dict()['groups']}")
 
@@ -154,6 +164,7 @@ def test_the_plan_keeps_the_cameras_file_over_a_bigger_stripped_copy(archive_sto
     before = {p: _sha(p) for p in archive.rglob("*") if p.is_file()}
     keeper, moves = _keeper_of_astronaut(store_dir)
     assert keeper.endswith("camera/IMG_0042.jpg")
+    assert _keeper_of_astronaut.reason == "still has the camera's capture time (2019-06-01T10:20:30)"
     assert moves and all("shared/astronaut" in m for m in moves)
     assert {p: _sha(p) for p in archive.rglob("*") if p.is_file()} == before  # a plan moves nothing
 
@@ -177,6 +188,7 @@ def test_a_store_from_before_reads_the_facts_once_at_its_next_index(archive_stor
     conn.close()
     keeper, _ = _keeper_of_astronaut(store_dir)
     assert not keeper.endswith("IMG_0042.jpg")  # without the facts, the most pixels win, as before
+    assert _keeper_of_astronaut.reason == "has the most pixels (480 x 480)"
     with Store.open(store_dir, settings=load_settings(environ={}, overrides={"workers": 1})) as store:
         run_index(store, [archive], progress=False, train_config=_train_config(), calibrate=False)
         assert store.catalog.contents_without_origin() == []
