@@ -193,3 +193,31 @@ def test_the_fine_check_leaves_a_query_without_keypoints_as_it_was(fifths):
     results = [{"id": 1, "similarity": 0.7, "evidence": None}]
     out = rerank_fine(Image.new("RGB", (300, 200), (128, 128, 128)), [dict(r) for r in results], {1: small}, count=1)
     assert out == results
+
+
+def _iou(a, b):
+    """Intersection over union of two (x0, y0, x1, y1) boxes, as the PASCAL VOC detection measure defines it."""
+    ix = max(0.0, min(a[2], b[2]) - max(a[0], b[0]))
+    iy = max(0.0, min(a[3], b[3]) - max(a[1], b[1]))
+    inter = ix * iy
+    union = (a[2] - a[0]) * (a[3] - a[1]) + (b[2] - b[0]) * (b[3] - b[1]) - inter
+    return inter / union
+
+
+@pytest.mark.parametrize("name, corner", [("astronaut", (0.05, 0.1)), ("coffee", (0.2, 0.15)),
+                                          ("chelsea", (0.1, 0.2)), ("rocket", (0.2, 0.05))])
+def test_the_match_box_of_a_60_percent_crop_covers_where_it_was_cut(name, corner, tmp_path):
+    """The evidence box (fractions of the candidate) against the crop's true region: IoU >= 0.7."""
+    photo = _photo(name)
+    photo.save(tmp_path / "original.png")
+    w, h = photo.size
+    side = 0.6 ** 0.5  # 60 % of the area, the aspect kept
+    true = (corner[0], corner[1], corner[0] + side, corner[1] + side)
+    photo.crop((round(true[0] * w), round(true[1] * h), round(true[2] * w), round(true[3] * h))).save(
+        tmp_path / "crop.jpg", quality=85)
+    with Image.open(tmp_path / "crop.jpg") as im:
+        query = im.convert("RGB")
+    (result,) = rerank(query, [{"id": 1, "similarity": 0.5}], {1: str(tmp_path / "original.png")}, top=1)
+    assert result["evidence"]["verified"], result["evidence"]
+    iou = _iou(result["evidence"]["box"], true)
+    assert iou >= 0.7
