@@ -283,11 +283,7 @@ def cmd_check(args) -> int:
 
 def _threshold_arg(args, gen) -> float | None:
     """--threshold as given, or the calibrated threshold for --precision; None for the generation's own."""
-    if args.threshold is not None and args.precision is not None:
-        raise UsageError("give --threshold or --precision, not both")
-    if args.precision is not None:
-        return gen.threshold("near", args.precision)
-    return args.threshold
+    return gen.asked_threshold(args.threshold, args.precision)
 
 
 def _print_answer(answer: dict) -> None:

@@ -88,6 +88,14 @@ class Generation:
             return None
         return json.loads(path.read_text(encoding="utf-8"))
 
+    def asked_threshold(self, threshold: float | None, precision: float | None) -> float | None:
+        """The near-duplicate threshold a question asks for: `threshold` as given, or the calibrated one for
+        `precision`; None when it gives neither (the generation's own verdict). Both: UsageError. The one
+        rule of the commands, the service, grouping and the Python API."""
+        if threshold is not None and precision is not None:
+            raise UsageError("give a threshold or a precision, not both")
+        return self.threshold("near", precision) if precision is not None else threshold
+
     def threshold(self, tier: str = "near", precision: float | None = None) -> float:
         """The cosine threshold for a tier: the calibrated one, else the build's default; with
         `precision`, the lowest calibrated threshold whose estimated precision reaches it."""

@@ -400,6 +400,16 @@ def _exif_origin(im: Image.Image) -> tuple[str | None, str | None]:
 # --- pixels ------------------------------------------------------------------
 
 
+def from_pil(im: Image.Image, max_side: int | None = None) -> Image.Image:
+    """An image already in memory (a caller's PIL image) as `read_image` brings a file: upright by its EXIF
+    orientation, RGB, the longest side at most `max_side`."""
+    from PIL import ImageOps
+
+    rgb = to_rgb(ImageOps.exif_transpose(im))
+    target = fit_size(rgb.size, max_side)
+    return rgb if target == rgb.size else rgb.resize(target, RESAMPLE, reducing_gap=REDUCING_GAP)
+
+
 def _decode(im: Image.Image, fp, max_side: int | None) -> tuple[Image.Image, int]:
     """Decode the opened image to upright RGB at most `max_side`; also return its orientation."""
     target = fit_size(im.size, max_side)

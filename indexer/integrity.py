@@ -260,12 +260,8 @@ def _rebuild_generation(store: Store, *, embed: bool) -> list[str]:
         done.append(f"embedded {embedded['embedded']} contents that had no vector")
     # Rebuilt as the generation it replaces was built: calibrated when it was (the calibration is derived from
     # the collection too), not when it was built with --no-calibrate.
-    calibrated = True
-    try:
-        calibrated = (store.generations_dir / store.read_pointer(generations.POINTER)
-                      / generations.CALIBRATION_FILE).is_file()
-    except TypeError:  # no pointer
-        pass
+    current = store.read_pointer(generations.POINTER)
+    calibrated = current is None or (store.generations_dir / current / generations.CALIBRATION_FILE).is_file()
     built = build_generation(store, model_dir, t_near=settings.near_threshold, t_similar=settings.similar_threshold,
                              keep=settings.keep_generations, reason="repair",
                              calibration=CalibrationConfig.from_settings(settings) if calibrated else None)

@@ -281,11 +281,8 @@ def current_groups(store, *, threshold: float | None = None, precision: float | 
     and the quarantine plan all show and act on."""
     from .generations import require_current
 
-    if threshold is not None and precision is not None:
-        raise UsageError("give a threshold or a precision, not both")
     gen = require_current(store)
-    if precision is not None:
-        threshold = gen.threshold("near", precision)
+    threshold = gen.asked_threshold(threshold, precision)
     verdicts = PairVerdicts.from_rows(store.catalog.latest_verdict_files())
     whitening = gen.load_whitening() if verdicts or threshold is not None else None
     if threshold is None:

@@ -247,12 +247,7 @@ class Archive:
 
     @staticmethod
     def _threshold(searcher, threshold, precision) -> float | None:
-        threshold, precision = limits.THRESHOLD.check(threshold), limits.PRECISION.check(precision)
-        if threshold is not None and precision is not None:
-            raise UsageError("give a threshold or a precision, not both")
-        if precision is not None:
-            return searcher.generation.threshold("near", precision)
-        return threshold
+        return searcher.generation.asked_threshold(limits.THRESHOLD.check(threshold), limits.PRECISION.check(precision))
 
     def _queries(self, images) -> list:
         """The inputs as a list: one path, bytes or image alone is one query; folders are expanded to their
@@ -274,7 +269,7 @@ class Archive:
         """Each input's pixels as the query path reads a file, or the NearsightError saying why not."""
         from PIL import Image
 
-        from nearsight.indexer.images import RESAMPLE, REDUCING_GAP, fit_size, read_image, to_rgb
+        from nearsight.indexer.images import from_pil, read_image
         from nearsight.indexer.query import read_queries
 
         max_side = 2 * searcher.size
@@ -282,16 +277,11 @@ class Archive:
         paths = [i for i, item in enumerate(items) if isinstance(item, (str, os.PathLike))]
         for i, got in zip(paths, read_queries([str(items[i]) for i in paths], max_side)):
             out[i] = got
-        for i, item in enumerate(items):
-            if i in paths:
-                continue
+        for i in sorted(set(range(len(items))) - set(paths)):
+            item = items[i]
             try:
-                if isinstance(item, Image.Image):  # as read_image brings a decoded file: upright, RGB, max_side
-                    from PIL import ImageOps
-
-                    rgb = to_rgb(ImageOps.exif_transpose(item))
-                    target = fit_size(rgb.size, max_side)
-                    out[i] = rgb if target == rgb.size else rgb.resize(target, RESAMPLE, reducing_gap=REDUCING_GAP)
+                if isinstance(item, Image.Image):
+                    out[i] = from_pil(item, max_side)
                     continue
                 if not isinstance(item, (bytes, bytearray)):
                     raise UsageError(f"a query is a path, the bytes of an image file or a PIL image, "

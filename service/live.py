@@ -143,13 +143,10 @@ class Snapshot:
 
     def threshold(self, threshold: float | None, precision: float | None) -> tuple[float, str]:
         """The duplicate threshold for one request and where it came from."""
-        if threshold is not None and precision is not None:
-            raise UsageError("give threshold or precision, not both")
-        if threshold is not None:
-            return threshold, "request"
-        if precision is not None:
-            return self.generation.threshold("near", precision), "precision"
-        return self.searcher.verdict_threshold, "generation"
+        asked = self.generation.asked_threshold(threshold, precision)
+        if asked is None:
+            return self.searcher.verdict_threshold, "generation"
+        return asked, "request" if threshold is not None else "precision"
 
     def thresholds(self) -> dict:
         calibration = self.generation.calibration if isinstance(self.generation.calibration, dict) else {}
