@@ -18,7 +18,7 @@ from typing import Iterable, Iterator
 
 from .errors import NotFoundError, StoreError, UsageError
 
-SCHEMA_VERSION = 5
+SCHEMA_VERSION = 6
 
 VERDICTS = ("same", "different")
 
@@ -52,8 +52,12 @@ def _schema_v5(conn: sqlite3.Connection) -> None:
     _run_sql_file(conn, "schema_v5.sql")
 
 
+def _schema_v6(conn: sqlite3.Connection) -> None:
+    _run_sql_file(conn, "schema_v6.sql")
+
+
 # Ordered migrations: MIGRATIONS[n - 1] brings a catalog from version n - 1 to n.
-MIGRATIONS = (_schema_v1, _schema_v2, _schema_v3, _schema_v4, _schema_v5)
+MIGRATIONS = (_schema_v1, _schema_v2, _schema_v3, _schema_v4, _schema_v5, _schema_v6)
 assert len(MIGRATIONS) == SCHEMA_VERSION  # a developer's invariant, not user input
 
 

@@ -2,6 +2,8 @@
 
 The policy, first difference wins:
 
+0. a person's choice (the review page's "keep this one", indexer/picks.py): the
+   member picked most recently;
 1. always-kept paths (setting `keep_paths`, flag `--keep`): a member matching one
    is never moved, even when that leaves a group with two or more files;
 2. folder priorities (`prefer_folders`, `--prefer-folder`): the member under the
@@ -24,7 +26,7 @@ any folder or file named so, ``*.png`` any PNG file name, ``2019/raw`` any
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from fnmatch import fnmatchcase
 from pathlib import PurePosixPath
 from typing import Iterable, Mapping
@@ -72,9 +74,10 @@ def _clean(values, what: str) -> tuple[str, ...]:
     return tuple(out)
 
 
-# What each place of KeeperRules.sort_key means (the three rules, then groups.keeper_key's ten places), said
-# of the keeper when that place decided.
+# What each place of KeeperRules.sort_key means (a person's pick, the three rules, then groups.keeper_key's ten
+# places), said of the keeper when that place decided.
 _REASONS = (
+    lambda m: "was chosen by a person (keep this one, on the review page)",
     lambda m: "is always kept (keep_paths)",
     lambda m: "is under a preferred folder (prefer_folders)",
     lambda m: f"is in a preferred format, {m.format} (prefer_formats)",
@@ -98,16 +101,22 @@ class KeeperRules:
     keep_paths: tuple[str, ...] = ()
     prefer_folders: tuple[str, ...] = ()
     prefer_formats: tuple[str, ...] = ()
+    picks: tuple[tuple[str, float], ...] = ()  # (full path, time) of files a person chose to keep
 
     def __post_init__(self):
         object.__setattr__(self, "keep_paths", _clean(self.keep_paths, "keep_paths"))
         object.__setattr__(self, "prefer_folders", _clean(self.prefer_folders, "prefer_folders"))
         formats = tuple(normalize_format(f) for f in _clean(self.prefer_formats, "prefer_formats"))
         object.__setattr__(self, "prefer_formats", formats)
+        object.__setattr__(self, "_picked", dict(self.picks))
 
     @classmethod
     def from_settings(cls, settings: Mapping) -> "KeeperRules":
         return cls(settings["keep_paths"], settings["prefer_folders"], settings["prefer_formats"])
+
+    def with_picks(self, picks: Mapping[str, float]) -> "KeeperRules":
+        """These rules with a person's picks (full path -> time of the pick, indexer/picks.py) first."""
+        return replace(self, picks=tuple(sorted(picks.items())))
 
     def always_kept(self, path: str) -> bool:
         return any(path_matches(p, path) for p in self.keep_paths)
@@ -121,8 +130,9 @@ class KeeperRules:
         return next((i for i, f in enumerate(self.prefer_formats) if f in names), len(self.prefer_formats))
 
     def sort_key(self, meta: ImageMeta) -> tuple:
-        """Smaller wins: always kept, then folder rank, then format rank, then the default policy."""
-        return (not self.always_kept(meta.path), self.folder_rank(meta.path), self.format_rank(meta),
+        """Smaller wins: the latest pick, always kept, then folder rank, then format rank, then the default
+        policy."""
+        return (-self._picked.get(meta.path, 0.0), not self.always_kept(meta.path), self.folder_rank(meta.path), self.format_rank(meta),
                 *keeper_key(meta))
 
     def reason(self, keeper: ImageMeta, others: Iterable[ImageMeta]) -> str:
@@ -143,4 +153,4 @@ class KeeperRules:
 
     def to_dict(self) -> dict:
         return {"keep_paths": list(self.keep_paths), "prefer_folders": list(self.prefer_folders),
-                "prefer_formats": list(self.prefer_formats)}
+                "prefer_formats": list(self.prefer_formats), "picked": [path for path, _ in self.picks]}

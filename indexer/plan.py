@@ -31,6 +31,7 @@ from .evidence import near_duplicate_evidence, relation_to_keeper
 from .groups import TIERS, Group, ImageMeta
 from .keepers import KeeperRules
 from .moves import is_regular
+from .picks import picks_by_path
 from .store import Store
 from .verdict_groups import PairVerdicts, current_groups
 
@@ -215,6 +216,14 @@ def _plan_group(store: Store, group: Group, rows: dict, verdicts: PairVerdicts, 
     return plan
 
 
+def plan_group(store: Store, group: Group, verdicts: PairVerdicts, rules: KeeperRules, *,
+               tier: str = "near-duplicate", include_unverified: bool = False) -> GroupPlan | None:
+    """The plan of one group (as `plan_quarantine` plans each; `rules` as given, picks included);
+    None when fewer than two of its files are present."""
+    rows = store.catalog.file_rows(m.id for m in group.members)
+    return _plan_group(store, group, rows, verdicts, _Asked(rules, tier, bool(include_unverified)))
+
+
 def _move(ident: int, original: int, relation: str, evidence: str, present: dict[int, ImageMeta], rows: dict) -> Move:
     meta, row, kept = present[ident], rows[ident], present[original]
     dest = f"{source_folder(row['source_id'], row['root'])}/{row['relpath']}"
@@ -254,6 +263,7 @@ def plan_quarantine(store: Store, *, tier: str | None = None, threshold: float |
     if tier not in ACTION_TIERS:
         raise UsageError(f"tier must be one of {', '.join(ACTION_TIERS)}, not {tier!r}")
     rules = rules if rules is not None else KeeperRules.from_settings(store.settings)
+    rules = rules.with_picks(picks_by_path(store.catalog))  # a person's choice comes first, however rules were made
     folder = check_quarantine_dir(store, to) if to is not None else None
     now = current_groups(store, threshold=threshold, precision=precision)
     rows = store.catalog.file_rows(m.id for g in now.groups for m in g.members)

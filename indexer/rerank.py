@@ -110,11 +110,11 @@ def _fine_features_at(path: str, _mtime_ns: int, _size: int):
 
 
 def _evidence(v, size: tuple[int, int]) -> dict:
-    w, h = size
-    box = None if v.box is None else [round(v.box[0] / w, 4), round(v.box[1] / h, 4),
-                                      round(v.box[2] / w, 4), round(v.box[3] / h, 4)]
+    from .verify import fractions
+
     return {"verified": bool(v.verified), "inliers": int(v.inliers), "matches": int(v.matches),
-            "box": box, "scale": None if v.scale is None else round(float(v.scale), 4),
+            "box": fractions(v.box, size), "query_box": fractions(v.query_box, v.query_size),
+            "scale": None if v.scale is None else round(float(v.scale), 4),
             "mirrored": bool(v.mirrored), "reason": v.reason}
 
 

@@ -114,7 +114,10 @@ class Verification:
     """The verdict on one (query, candidate) pair.
 
     `box` is the query's footprint in the candidate as (x0, y0, x1, y1) in candidate
-    pixels, clipped to the candidate (set only when verified). Whenever a transform was
+    pixels, clipped to the candidate (set only when verified); `query_box` the other way
+    round, the candidate's footprint in the query in query pixels, and `query_size` the
+    query's (width, height), so that a page can draw the common region on both images.
+    Whenever a transform was
     fitted: `transform` maps query pixels to candidate pixels (2 x 3, rows of an affine
     matrix; a mirrored match includes the mirror), `scale` is candidate px per query px,
     `angle` the rotation in degrees, positive when the query is the candidate turned
@@ -135,13 +138,33 @@ class Verification:
     transform: tuple[tuple[float, float, float], tuple[float, float, float]] | None = None
     mirrored: bool = False
     reason: str = ""
+    query_box: tuple[int, int, int, int] | None = None
+    query_size: tuple[int, int] | None = None
+    candidate_size: tuple[int, int] | None = None
+
+    def boxes(self) -> tuple[list[float] | None, list[float] | None]:
+        """(the candidate's footprint in the query, the query's footprint in the candidate), each as
+        fractions (x0, y0, x1, y1) of that image's width and height, to draw on both; (None, None)
+        unless verified."""
+        return fractions(self.query_box, self.query_size), fractions(self.box, self.candidate_size)
 
     def to_dict(self) -> dict:
         """Plain JSON-ready values (lists for the box and the transform)."""
         out = dataclasses.asdict(self)
         out["box"] = list(self.box) if self.box is not None else None
+        out["query_box"] = list(self.query_box) if self.query_box is not None else None
+        out["query_size"] = list(self.query_size) if self.query_size is not None else None
+        out["candidate_size"] = list(self.candidate_size) if self.candidate_size is not None else None
         out["transform"] = [list(row) for row in self.transform] if self.transform is not None else None
         return out
+
+
+def fractions(box, size) -> list[float] | None:
+    """A pixel box (x0, y0, x1, y1) as fractions of an image's (width, height), as pages draw it."""
+    if box is None or not size:
+        return None
+    w, h = size
+    return [round(box[0] / w, 4), round(box[1] / h, 4), round(box[2] / w, 4), round(box[3] / h, 4)]
 
 
 def _config(config: VerifyConfig | None, overrides: dict) -> VerifyConfig:
@@ -389,7 +412,9 @@ def _judge(
     box = footprint(mapping, query.size, candidate.size)
     if box is None:
         return Verification(False, **found, reason="the query's footprint falls outside the candidate")
-    return Verification(True, **found, box=box, reason=f"{inliers} of {n} matches agree on one transform")
+    back = np.linalg.inv(np.vstack([mapping, [0.0, 0.0, 1.0]]))[:2]  # candidate pixels -> query pixels
+    return Verification(True, **found, box=box, query_box=footprint(back, candidate.size, query.size),
+                        query_size=tuple(query.size), candidate_size=tuple(candidate.size), reason=f"{inliers} of {n} matches agree on one transform")
 
 
 def to_pixels(transform: np.ndarray, query: Features, candidate: Features) -> np.ndarray:

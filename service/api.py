@@ -240,7 +240,40 @@ def group(gid: str):
         for v in catalog.latest_verdicts_among(member_ids)
         for a in by_content.get(v["content_a"], []) for b in by_content.get(v["content_b"], [])
     ]
-    return jsonify(generation=snap.name, **found, verdicts=verdicts)
+    return jsonify(generation=snap.name, **found, verdicts=verdicts, now=_explained(snap, catalog, gid))
+
+
+def _explained(snap, catalog, gid: str) -> dict | None:
+    """The group as a quarantine would see it now (indexer/explain.py): the file to keep and why, each
+    member's metadata, what would happen to it, and where it matches the keeper."""
+    from nearsight.indexer.explain import explain_group
+    from nearsight.indexer.verdict_groups import PairVerdicts, store_lookups
+
+    verdicts = PairVerdicts.from_rows(catalog.latest_verdict_files())
+    vectors, _ = store_lookups(catalog, snap.model, snap.searcher.whitening)
+    facts = explain_group(state().store(), snap.groups_now(catalog).group(gid), verdicts, vectors=vectors)
+    return None if facts is None else facts.to_dict()
+
+
+# -- a person's choice of the file to keep ----------------------------------------------------------
+@api.post("/v1/keepers")
+def pick_keeper():
+    """Keep this file in its group (indexer/picks.py): it becomes the keeper of the plan, the keep list
+    and the review page, before every other keeper rule. Body: {"file": id}. Needs the API key."""
+    from nearsight.indexer.picks import pick_keeper as pick
+
+    file_id, author = params.keeper_body(params.json_body(request))
+    response = jsonify(pick(state().store().catalog, file_id, author=author))
+    response.status_code = 201
+    return response
+
+
+@api.delete("/v1/keepers/<int:image_id>")
+def drop_keeper(image_id: int):
+    """Forget a person's choice of this file: the keeper rules choose again. Needs the API key."""
+    from nearsight.indexer.picks import drop_picks
+
+    return jsonify(file=image_id, removed=drop_picks(state().store().catalog, params.check_id(image_id)))
 
 
 # -- the quarantine plan (read-only) ----------------------------------------------------------------

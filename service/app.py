@@ -34,7 +34,7 @@ GENERATION_HEADER = "X-Nearsight-Generation"
 # Endpoints anyone may call: liveness and readiness probes, and the review page's own files
 # (they hold no data; every call the page makes for data carries the key when one is needed).
 PUBLIC_ENDPOINTS = {"api.healthz", "api.readyz", "review.page", "static"}
-WRITE_ENDPOINTS = {"api.add_verdicts"}
+WRITE_ENDPOINTS = {"api.add_verdicts", "api.pick_keeper", "api.drop_keeper"}
 
 
 @dataclass
@@ -161,7 +161,7 @@ def _cors(response, origins: tuple[str, ...]) -> None:
     if "*" in origins or origin.rstrip("/") in origins:
         response.headers["Access-Control-Allow-Origin"] = "*" if "*" in origins else origin
         response.headers["Access-Control-Allow-Headers"] = "Authorization, Content-Type"
-        response.headers["Access-Control-Allow-Methods"] = "GET, POST, OPTIONS"
+        response.headers["Access-Control-Allow-Methods"] = "GET, POST, DELETE, OPTIONS"
         response.headers["Access-Control-Expose-Headers"] = GENERATION_HEADER
         response.headers["Access-Control-Max-Age"] = "600"
         response.vary.add("Origin")

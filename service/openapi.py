@@ -73,12 +73,16 @@ SCHEMAS = {
     "Evidence": {
         "type": "object", "nullable": True,
         "description": "geometric verification of this candidate (null when it was not checked)",
-        "required": ["verified", "inliers", "matches", "box", "scale", "mirrored", "reason"],
+        "required": ["verified", "inliers", "matches", "box", "query_box", "scale", "mirrored", "reason"],
         "properties": {"verified": {"type": "boolean"},
                        "inliers": {"type": "integer", "description": "keypoint matches that agree with one transform"},
                        "matches": {"type": "integer"},
                        "box": {"type": "array", "nullable": True, "items": {"type": "number"},
-                               "description": "where the query lies in the candidate: x0, y0, x1, y1 as fractions"},
+                               "description": "where the query lies in the candidate: x0, y0, x1, y1 as fractions "
+                                              "of the candidate's width and height"},
+                       "query_box": {"type": "array", "nullable": True, "items": {"type": "number"},
+                                     "description": "where the candidate lies in the query, as fractions of the "
+                                                    "query's width and height"},
                        "scale": NULLABLE_NUMBER, "mirrored": {"type": "boolean"},
                        "reason": {"type": "string"}},
     },
@@ -232,7 +236,49 @@ SCHEMAS = {
                                                   "verdict": {"type": "string", "enum": ["same", "different"]},
                                                   "origin": {"type": "string"}, "created_at": {"type": "number"},
                                                   "id": {"type": "integer"}}}},
+            "now": {"$ref": "#/components/schemas/GroupNow"},
         },
+    },
+    "GroupNow": {
+        "type": "object", "nullable": True,
+        "description": "the group as a quarantine would see it now (null when fewer than two of its files are "
+                       "present): the file to keep and why, each member's metadata, what would happen to it and "
+                       "where it matches the keeper",
+        "required": ["gid", "tier", "keeper", "keeper_reason", "picked", "members"],
+        "properties": {
+            "gid": {"type": "string"}, "tier": {"type": "string", "enum": TIER_NAMES},
+            "keeper": {"type": "integer"},
+            "keeper_reason": {"type": "string", "description": "why it is kept, in plain words"},
+            "picked": {"type": "boolean", "description": "the keeper is a person's choice (POST /v1/keepers)"},
+            "members": {"type": "array", "description": "the keeper first", "items": {
+                "type": "object",
+                "required": ["id", "tier", "path", "width", "height", "file_size", "format", "captured", "camera",
+                             "icc", "modified", "action", "why", "similarity", "match"],
+                "properties": {
+                    "id": {"type": "integer"}, "tier": {"type": "string", "enum": TIER_NAMES},
+                    "path": {"type": "string"}, "folder": {"type": "string"},
+                    "width": {"type": "integer"}, "height": {"type": "integer"}, "file_size": {"type": "integer"},
+                    "format": {"type": "string"}, "captured": NULLABLE_STRING, "camera": NULLABLE_STRING,
+                    "icc": {"type": "boolean"}, "modified": {"type": "string", "description": "ISO 8601, UTC"},
+                    "action": {"type": "string", "enum": ["keep", "move", "stay", "changed"]},
+                    "why": {"type": "string"}, "similarity": {"type": "number"},
+                    "match": {"type": "object", "nullable": True,
+                              "description": "geometric verification against the keeper (null for the keeper)",
+                              "required": ["verified", "inliers", "reason", "keeper_box", "member_box"],
+                              "properties": {
+                                  "verified": {"type": "boolean"}, "inliers": {"type": "integer", "nullable": True},
+                                  "reason": {"type": "string"},
+                                  "keeper_box": {"type": "array", "nullable": True, "items": {"type": "number"},
+                                                 "description": "the common region in the keeper: x0, y0, x1, y1 "
+                                                                "as fractions of its width and height"},
+                                  "member_box": {"type": "array", "nullable": True, "items": {"type": "number"},
+                                                 "description": "the common region in this file"}}}}}},
+        },
+    },
+    "KeeperPick": {
+        "type": "object", "required": ["id", "file", "created_at"],
+        "properties": {"id": {"type": "integer"}, "file": {"type": "integer"}, "author": NULLABLE_STRING,
+                       "created_at": {"type": "number"}},
     },
     "PairFile": {
         "type": "object", "required": ["id", "path"],
@@ -471,6 +517,24 @@ def _paths() -> dict:
                 "responses": {"201": _json(_ref("VerdictsStored"), "Stored"),
                               **_errors("400", "401", "403", "404", "415")}},
         },
+        "/v1/keepers": {"post": {
+            "operationId": "pick_keeper",
+            "summary": "Keep this file in its group: a person's choice, before every other keeper rule (needs the API key)",
+            "description": "The quarantine plan, the keep list and the review page keep it from now on, whatever "
+                           "generation groups it; the latest pick among a group's files wins. Nothing moves.",
+            "requestBody": {"required": True, "content": {"application/json": {"schema": {
+                "type": "object", "required": ["file"],
+                "properties": {"file": {"type": "integer", "minimum": 1}, "author": {"type": "string", "maxLength": 200}},
+                "additionalProperties": False}}}},
+            "responses": {"201": _json(_ref("KeeperPick"), "Stored"), **_errors("400", "401", "403", "404", "415")}}},
+        "/v1/keepers/{image_id}": {"delete": {
+            "operationId": "drop_keeper",
+            "summary": "Forget a person's choice of this file: the keeper rules choose again (needs the API key)",
+            "parameters": [{"name": "image_id", "in": "path", "required": True, "schema": {"type": "integer"}}],
+            "responses": {"200": _json({"type": "object", "required": ["file", "removed"],
+                                        "properties": {"file": {"type": "integer"}, "removed": {"type": "integer"}}},
+                                       "How many picks of the file were forgotten"),
+                          **_errors("401", "403", "404")}}},
     }
 
 

@@ -180,3 +180,15 @@ def _verdict(item: Any, n: int) -> dict:
     if note is not None and (not isinstance(note, str) or len(note) > 2000):
         raise UsageError(f"{where}note must be text of at most 2000 characters")
     return {"file_a": item["file_a"], "file_b": item["file_b"], "verdict": item["verdict"], "note": note}
+
+
+def keeper_body(body: Any) -> tuple[int, str | None]:
+    """The file id and author of a POST /v1/keepers body: {"file": id, "author": optional text}."""
+    if not isinstance(body, dict) or "file" not in body or set(body) - {"file", "author"}:
+        raise UsageError('send {"file": <image id>}, and optionally "author"')
+    value, author = body["file"], body.get("author")
+    if isinstance(value, bool) or not isinstance(value, int) or not 0 < value <= MAX_ID:
+        raise UsageError("file must be an image id (a positive whole number)")
+    if author is not None and (not isinstance(author, str) or len(author) > 200):
+        raise UsageError("author must be text of at most 200 characters")
+    return value, author

@@ -221,3 +221,21 @@ def test_the_match_box_of_a_60_percent_crop_covers_where_it_was_cut(name, corner
     assert result["evidence"]["verified"], result["evidence"]
     iou = _iou(result["evidence"]["box"], true)
     assert iou >= 0.7
+
+
+@pytest.mark.parametrize("name, corner", [("astronaut", (0.05, 0.1)), ("chelsea", (0.1, 0.2))])
+def test_the_match_box_is_drawn_on_both_images(name, corner, tmp_path):
+    """The other way round, as a review page compares a keeper (the original, as the query) with its crop:
+    `query_box` (fractions of the query) covers where the crop was cut, IoU >= 0.7 (PASCAL VOC's measure),
+    and `box` (fractions of the candidate, here the whole crop) covers nearly all of the crop."""
+    photo = _photo(name)
+    w, h = photo.size
+    side = 0.6 ** 0.5
+    true = (corner[0], corner[1], corner[0] + side, corner[1] + side)
+    photo.crop((round(true[0] * w), round(true[1] * h), round(true[2] * w), round(true[3] * h))).save(
+        tmp_path / "crop.jpg", quality=85)
+    (result,) = rerank(photo, [{"id": 1, "similarity": 0.5}], {1: str(tmp_path / "crop.jpg")}, top=1)
+    evidence = result["evidence"]
+    assert evidence["verified"], evidence
+    assert _iou(evidence["query_box"], true) >= 0.7
+    assert _iou(evidence["box"], (0.0, 0.0, 1.0, 1.0)) >= 0.85

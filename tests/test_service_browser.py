@@ -195,3 +195,80 @@ def test_the_first_view_lists_pairs_to_judge_and_a_click_stores_a_verdict(browse
     with Catalog(queue_server.store / "catalog.sqlite") as catalog:
         stored = [v for v in catalog.latest_verdicts() if {v["file_a"], v["file_b"]} == {c, d}]
     assert [(v["verdict"], v["origin"]) for v in stored] == [("different", "review")]
+
+
+@pytest.fixture
+def keeper_server(service_store):
+    """A server of its own: the keeper picked below reaches no other test."""
+    process = ServerProcess(service_store.copy("browser-keeper")).start()
+    yield process
+    process.stop()
+
+
+# Every element that lays out a box must hold its content: scrollWidth > clientWidth means text or an image
+# sticks out of it (a mid-word break shows as overflow of a word-wrapping box too). Inline boxes (clientWidth 0)
+# are measured through their block parents.
+_OVERFLOWING = """
+return Array.from(document.querySelectorAll(arguments[0] + ' *'))
+  .filter((e) => e.offsetParent !== null && e.clientWidth > 0 && e.scrollWidth > e.clientWidth + 1)
+  .map((e) => `${e.tagName.toLowerCase()}#${e.id}.${e.className}: ${e.scrollWidth} > ${e.clientWidth}`);
+"""
+
+
+def _no_overflow(driver, view: str, shot_name: str) -> None:
+    for width in (1280, 390):
+        driver.set_window_size(width, 900)
+        _wait(lambda: abs(driver.execute_script("return window.innerWidth;") - width) < 20, what=f"{width} px")
+        time.sleep(0.3)  # one layout after the resize
+        found = driver.execute_script(_OVERFLOWING, f"#view-{view}")
+        shot = artifacts_dir() / f"{shot_name}-{width}.png"
+        driver.save_screenshot(str(shot))
+        print(f"screenshot: {shot}")
+        assert not found, f"at {width} px: {found}"
+    driver.set_window_size(1280, 900)
+
+
+def test_a_group_shows_metadata_side_by_side_and_a_click_changes_the_keeper(browser, keeper_server):
+    """The group page shows the keeper's reason (the plan's own words, from GET /v1/groups/<gid>), each file's
+    metadata, and a "Keep this one" button whose click is stored in the catalog and makes that file the keeper.
+    The pair page outlines the common region on both images. Nothing overflows at 1280 or 390 px."""
+    driver = browser
+    client = keeper_server.client()
+    groups = client.get("/v1/groups?limit=200").json()["groups"]
+    group = next(g for g in groups if any(m["path"].endswith("/astronaut-smaller.jpg") for m in g["members"]))
+    smaller = next(m["id"] for m in group["members"] if m["path"].endswith("/astronaut-smaller.jpg"))
+    reason = client.get(f"/v1/groups/{group['gid']}").json()["now"]["keeper_reason"]
+    client.close()
+
+    driver.get(keeper_server.base + "/#key=" + API_KEY)
+    _wait(lambda: driver.find_element("id", "view-judge").is_displayed(), what="the first view")
+    driver.get(f"{keeper_server.base}/#/group/{group['gid']}")
+    _wait(lambda: driver.find_elements("css selector", "#pair-list li.keeper dl.meta"), what="the keeper's card")
+    assert reason in driver.find_element("id", "group-facts").text
+    assert "Captured" in driver.find_element("css selector", "#pair-list li.keeper dl.meta").text
+    _no_overflow(driver, "group", "review-group")
+
+    card = next(c for c in driver.find_elements("css selector", "#pair-list li.member")
+                if c.find_element("css selector", ".name").text == "astronaut-smaller.jpg")
+    card.find_element("css selector", "button.keep-this").click()
+    _wait(lambda: driver.find_element("css selector", "#pair-list li.keeper .name").text == "astronaut-smaller.jpg",
+          what="the picked file as the keeper")
+    assert "chosen by a person" in driver.find_element("id", "group-facts").text
+    with Catalog(keeper_server.store / "catalog.sqlite") as catalog:
+        picked = [r["file_id"] for r in catalog.conn.execute("SELECT file_id FROM keeper_picks")]
+    assert picked == [smaller]
+
+    # The original beside its 75 % resize: verification outlines (nearly) the whole of both.
+    card = next(c for c in driver.find_elements("css selector", "#pair-list li.member")
+                if c.find_element("css selector", ".name").text == "astronaut.jpg")
+    card.find_element("css selector", "button.compare").click()
+    _wait(lambda: driver.find_element("id", "view-pair").is_displayed(), what="pair view")
+    _wait(lambda: driver.execute_script(
+        "const a = document.getElementById('img-a'), b = document.getElementById('img-b');"
+        "return a.complete && b.complete && a.naturalWidth > 0 && b.naturalWidth > 0;"), what="both previews")
+    for frame in ("frame-a", "frame-b"):
+        region = driver.find_element("css selector", f"#{frame} .region").size
+        image = driver.find_element("css selector", f"#{frame} img").size
+        assert region["width"] * region["height"] >= 0.7 * image["width"] * image["height"], (frame, region, image)
+    assert "keypoints agree" in driver.find_element("id", "pair-match").text
+    _no_overflow(driver, "pair", "review-pair-region")

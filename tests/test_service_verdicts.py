@@ -8,6 +8,7 @@ import hashlib
 from pathlib import Path
 
 import pytest
+from PIL import Image
 
 from nearsight.indexer import generations
 from nearsight.indexer.quarantine import apply_quarantine
@@ -95,5 +96,60 @@ def test_same_joins_two_ungrouped_files_at_once_and_the_plan_moves_one_on_that_e
     plan = client.get("/v1/plan?limit=200").json()
     (planned,) = [g for g in plan["groups"] if g["gid"] == group["gid"]]
     assert [(m["id"], m["evidence"]) for m in planned["moves"]] == [(joined["id"], "person-same")]
+    client.close()
+    writer.close()
+
+
+def _iou(a, b):
+    """Intersection over union of two (x0, y0, x1, y1) boxes, as the PASCAL VOC detection measure defines it."""
+    ix = max(0.0, min(a[2], b[2]) - max(a[0], b[0]))
+    iy = max(0.0, min(a[3], b[3]) - max(a[1], b[1]))
+    inter = ix * iy
+    return inter / ((a[2] - a[0]) * (a[3] - a[1]) + (b[2] - b[0]) * (b[3] - b[1]) - inter)
+
+
+def test_a_keeper_chosen_on_the_review_page_reaches_the_plan_and_can_be_taken_back(server):
+    """`astronaut-smaller.jpg` is a 75 % resize of `astronaut.jpg` (tests/service_support.py): by the default
+    rules the original (most pixels) is kept. A person picks the smaller copy; the plan of the service and
+    the plan a `quarantine` would carry out (read from the same catalog) keep it, say why, and the group's
+    page shows every member's metadata and the common region on both images: for a resize, the whole of
+    each (known by construction). Removing the pick gives the choice back to the rules."""
+    from nearsight.indexer.plan import plan_quarantine
+
+    client, writer = server.client(), server.client(API_KEY)
+    groups = client.get("/v1/groups?limit=200").json()["groups"]
+    group = next(g for g in groups if any(m["path"].endswith("/astronaut-smaller.jpg") for m in g["members"]))
+    ids = {Path(m["path"]).name: m["id"] for m in group["members"]}
+    smaller, original = ids["astronaut-smaller.jpg"], ids["astronaut.jpg"]
+
+    before = client.get(f"/v1/groups/{group['gid']}").json()["now"]
+    assert before["keeper"] != smaller and not before["picked"]
+
+    assert client.post_json("/v1/keepers", {"file": smaller}).status == 401  # a write needs the key
+    assert writer.post_json("/v1/keepers", {"file": 10**12}).status == 404
+    assert writer.post_json("/v1/keepers", {"file": "one"}).status == 400
+    r = writer.post_json("/v1/keepers", {"file": smaller, "author": "reviewer"})
+    assert r.status == 201 and r.json()["file"] == smaller
+
+    now = client.get(f"/v1/groups/{group['gid']}").json()["now"]
+    assert now["keeper"] == smaller and now["picked"] and "chosen by a person" in now["keeper_reason"]
+    assert now["members"][0]["id"] == smaller and now["members"][0]["action"] == "keep"
+    facts = {m["id"]: m for m in now["members"]}
+    with Image.open(facts[original]["path"]) as im:  # the metadata side by side, against Pillow's reading
+        assert (facts[original]["width"], facts[original]["height"]) == im.size
+        assert facts[original]["format"] == im.format
+    match = facts[original]["match"]
+    assert match["verified"], match
+    assert _iou(match["keeper_box"], (0, 0, 1, 1)) >= 0.85 and _iou(match["member_box"], (0, 0, 1, 1)) >= 0.85
+
+    planned = next(g for g in client.get("/v1/plan?limit=200").json()["groups"] if g["gid"] == group["gid"])
+    assert planned["keeper"]["id"] == smaller and "chosen by a person" in planned["keeper"]["reason"]
+    with Store.open(server.store, settings=load_settings(environ={})) as store:
+        cli_plan = plan_quarantine(store).to_dict()
+    assert next(g for g in cli_plan["groups"] if g["gid"] == group["gid"])["keeper"]["id"] == smaller
+
+    r = writer.request("DELETE", f"/v1/keepers/{smaller}")
+    assert r.status == 200 and r.json()["removed"] == 1
+    assert client.get(f"/v1/groups/{group['gid']}").json()["now"]["keeper"] == before["keeper"]
     client.close()
     writer.close()

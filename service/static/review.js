@@ -299,12 +299,19 @@
   $("next-page").addEventListener("click", () => { state.page += 1; renderGroups(); });
 
   // -- one group -----------------------------------------------------------------------------
+  // `now` (indexer/explain.py) is the group as a quarantine would see it: the file to keep and why,
+  // each member's metadata, what would happen to it, and where it matches the keeper.
   async function loadGroup(gid) {
     if (state.group && state.group.gid === gid) return state.group;
     const group = await api("/v1/groups/" + encodeURIComponent(gid));
-    const keeper = group.members.find((m) => m.id === group.keeper) || group.members[0];
     state.group = group;
-    state.pairs = group.members.filter((m) => m.id !== keeper.id).map((m) => [keeper, m]);
+    if (group.now) {
+      const [keeper, ...others] = group.now.members;
+      state.pairs = others.map((m) => [keeper, m]);
+    } else {
+      const keeper = group.members.find((m) => m.id === group.keeper) || group.members[0];
+      state.pairs = group.members.filter((m) => m.id !== keeper.id).map((m) => [keeper, m]);
+    }
     return group;
   }
 
@@ -312,6 +319,89 @@
     const found = (state.group.verdicts || []).filter(
       (v) => (v.a === a && v.b === b) || (v.a === b && v.b === a));
     return found.length ? found[found.length - 1].verdict : null;
+  }
+
+  // The metadata a keeper is chosen by, one row each, in the same order on every card.
+  function metaRows(m) {
+    const rows = [["Pixels", `${m.width}×${m.height}`], ["File", `${bytes(m.file_size)} · ${m.format || "?"}`]];
+    if ("captured" in m) {
+      rows.push(["Captured", m.captured ? m.captured.replace("T", " ") : "no capture time"],
+                ["Camera", m.camera || "not named"], ["Colour profile", m.icc ? "ICC profile" : "none"],
+                ["Modified", (m.modified || "").replace("T", " ").replace("Z", " UTC")],
+                ["Folder", m.folder || "."]);
+    }
+    return el("dl", { class: "meta" }, rows.flatMap(([k, v]) => [el("dt", { text: k }), el("dd", { text: v })]));
+  }
+
+  // An image with the common region outlined (`box`: x0, y0, x1, y1 as fractions of its width and height).
+  function framed(img, box) {
+    const frame = el("span", { class: "frame" }, [img]);
+    if (box) {
+      const [x0, y0, x1, y1] = box;
+      const region = el("span", { class: "region", "aria-hidden": "true" });
+      region.style.left = `${x0 * 100}%`; region.style.top = `${y0 * 100}%`;
+      region.style.width = `${(x1 - x0) * 100}%`; region.style.height = `${(y1 - y0) * 100}%`;
+      frame.append(region);
+    }
+    return frame;
+  }
+
+  function matchWords(match) {
+    if (!match) return "";
+    if (match.verified && match.inliers == null) return "Identical pixels: the whole picture matches.";
+    if (match.verified) return `Matches the keeper in the outlined region (${match.inliers} keypoints agree).`;
+    return match.reason.charAt(0).toUpperCase() + match.reason.slice(1) + ".";
+  }
+
+  async function keepThis(gid, id, method) {
+    const send = async () => {
+      try {
+        if (method === "DELETE") await api("/v1/keepers/" + encodeURIComponent(id), { method: "DELETE" });
+        else await api("/v1/keepers", { method: "POST", headers: { "Content-Type": "application/json" },
+                                         body: JSON.stringify({ file: id }) });
+        toast(method === "DELETE" ? "The keeper rules choose again." :
+              `Keeping #${id}: the quarantine plan now keeps it and compares the others with it.`);
+        state.group = null;
+        renderGroup(gid);
+      } catch (e) {
+        toast("Not changed: " + e.message, true);
+        if (e.status === 401 || e.status === 403) state.retry = send;
+      }
+    };
+    await send();
+  }
+
+  function memberCard(gid, m, index, keeper) {
+    const img = el("img");
+    showImage(img, thumb(m.id), basename(m.path));
+    const isKeeper = index < 0;
+    const card = el("li", { class: isKeeper ? "member keeper" : "member" }, [
+      framed(img, m.match ? m.match.member_box : null),
+      el("div", { class: "name", text: basename(m.path) }),
+    ]);
+    if (isKeeper) {
+      card.append(el("span", { class: "badge keep", text: state.group.now && state.group.now.picked ? "kept: your choice" : "kept" }));
+    } else {
+      const what = { move: "would move", stay: "stays", changed: "left alone" }[m.action] || "";
+      card.append(el("div", { class: "muted", text: `${tierName(m.tier || "")}${m.tier ? " · " : ""}similarity ${m.similarity.toFixed(3)}` }));
+      if (what) card.append(el("div", { class: "action", text: `${what}: ${m.why}` }));
+      const verdict = verdictOf(keeper.id, m.id);
+      if (verdict) card.append(el("span", { class: "badge " + verdict, text: "marked " + verdict }));
+    }
+    card.append(metaRows(m));
+    if (!isKeeper) {
+      if (m.match) card.append(el("p", { class: "match-note muted", text: matchWords(m.match) }));
+      const open = el("button", { type: "button", class: "compare", text: "Compare" });
+      open.addEventListener("click", () => { location.hash = `#/pair/${encodeURIComponent(gid)}/${index}`; });
+      const keep = el("button", { type: "button", class: "keep-this", text: "Keep this one" });
+      keep.addEventListener("click", () => keepThis(gid, m.id, "POST"));
+      card.append(el("div", { class: "actions" }, [open, keep]));
+    } else if (state.group.now && state.group.now.picked) {
+      const undo = el("button", { type: "button", class: "keep-undo", text: "Let the rules choose" });
+      undo.addEventListener("click", () => keepThis(gid, m.id, "DELETE"));
+      card.append(el("div", { class: "actions" }, [undo]));
+    }
+    return card;
   }
 
   async function renderGroup(gid) {
@@ -328,22 +418,12 @@
       return;
     }
     $("group-title").textContent = `${tierName(group.tier)} group of ${group.size} files`;
-    $("group-facts").textContent = `Keep ${basename(state.pairs.length ? state.pairs[0][0].path : "")}; ` +
+    const keeper = state.pairs.length ? state.pairs[0][0] : (group.now ? group.now.members[0] : null);
+    const why = group.now ? ` It ${group.now.keeper_reason}.` : "";
+    $("group-facts").textContent = `Keep ${basename(keeper ? keeper.path : "")}.${why} ` +
       `${bytes(group.reclaimable_bytes)} reclaimable. Generation ${group.generation}.`;
-    state.pairs.forEach(([keeper, member], i) => {
-      const img = el("img");
-      showImage(img, thumb(member.id), basename(member.path));
-      const verdict = verdictOf(keeper.id, member.id);
-      const facts = el("div", { class: "facts" }, [
-        el("div", { text: basename(member.path) }),
-        el("div", { class: "muted", text: `${tierName(member.tier)} · similarity ${member.similarity.toFixed(3)} · ` +
-                                          `${member.width}×${member.height} · ${bytes(member.file_size)}` }),
-      ]);
-      if (verdict) facts.append(el("span", { class: "badge " + verdict, text: "marked " + verdict }));
-      const open = el("button", { type: "button", class: "compare", text: "Compare" });
-      open.addEventListener("click", () => { location.hash = `#/pair/${encodeURIComponent(gid)}/${i}`; });
-      list.append(el("li", {}, [img, facts, open]));
-    });
+    if (keeper) list.append(memberCard(gid, keeper, -1, keeper));
+    state.pairs.forEach(([k, member], i) => list.append(memberCard(gid, member, i, k)));
     if (!state.pairs.length) list.append(el("li", { text: "This group has no pair to compare." }));
   }
 
@@ -363,10 +443,15 @@
     $("pair-back").href = "#/group/" + encodeURIComponent(gid);
     $("pair-title").textContent = `Pair ${index + 1} of ${state.pairs.length}: are these the same picture?`;
     const verdict = verdictOf(a.id, b.id);
-    $("pair-state").textContent = `Similarity ${b.similarity.toFixed(3)} (${tierName(b.tier)}). ` +
+    $("pair-state").textContent = `Similarity ${b.similarity.toFixed(3)}${b.tier ? ` (${tierName(b.tier)})` : ""}. ` +
       (verdict ? `Marked ${verdict} already; marking again replaces it.` : "Not judged yet.");
-    showImage($("img-a"), preview(a.id), "kept: " + basename(a.path));
-    showImage($("img-b"), preview(b.id), "copy: " + basename(b.path));
+    $("pair-match").textContent = matchWords(b.match);
+    const imgA = $("img-a"), imgB = $("img-b");
+    showImage(imgA, preview(a.id), "kept: " + basename(a.path));
+    showImage(imgB, preview(b.id), "copy: " + basename(b.path));
+    const box = b.match && b.match.verified && b.match.inliers != null;
+    $("frame-a").replaceWith(Object.assign(framed(imgA, box ? b.match.keeper_box : null), { id: "frame-a" }));
+    $("frame-b").replaceWith(Object.assign(framed(imgB, box ? b.match.member_box : null), { id: "frame-b" }));
     $("cap-a").textContent = `Keep · #${a.id} · ${a.width}×${a.height} · ${bytes(a.file_size)} · ${a.path}`;
     $("cap-b").textContent = `#${b.id} · ${b.width}×${b.height} · ${bytes(b.file_size)} · ${b.path}`;
     $("pair-prev").disabled = index === 0;
