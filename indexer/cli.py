@@ -128,6 +128,11 @@ def build_parser() -> argparse.ArgumentParser:
     form = p.add_mutually_exclusive_group()
     form.add_argument("--json", action="store_true", help="JSON Lines: one object per file")
     form.add_argument("--csv", action="store_true", help="CSV: one row per file")
+    form.add_argument("--format", choices=("table", "json", "csv", "html"), default="table",
+                      help="table (default), json (as --json), csv (as --csv), or html: a contact sheet with each "
+                           "copy beside its match and the common region outlined (written to --out)")
+    p.add_argument("--out", help="html: the page to write (default ./nearsight-check.html; its pictures go "
+                                 "to a folder beside it)")
     p.add_argument("--fail-on", choices=("copy", "similar"),
                    help="exit with 1 when any file is a copy (copy), or a copy or similar (similar): for pipelines")
     p.set_defaults(func=commands.cmd_check)

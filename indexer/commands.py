@@ -247,6 +247,9 @@ def cmd_check(args) -> int:
     from .check import VERDICTS, check_files
     from .query import Searcher, expand_queries
 
+    args.json, args.csv = args.json or args.format == "json", args.csv or args.format == "csv"
+    if args.out and args.format != "html":
+        raise UsageError("--out is for --format html; other formats go to standard output")
     with open_store(args) as store:
         searcher = Searcher(store)
         paths = expand_queries(args.paths, store.settings.extensions)
@@ -255,9 +258,12 @@ def cmd_check(args) -> int:
         writer = csv.DictWriter(sys.stdout, CHECK_COLUMNS, lineterminator="\n") if args.csv else None
         if writer:
             writer.writeheader()
+        answers = []
         for answer in check_files(searcher, paths, threshold=threshold):
             counts[answer.verdict] += 1
-            if args.json:
+            if args.format == "html":
+                answers.append(answer)
+            elif args.json:
                 print_json(answer.to_dict())
             elif writer:
                 writer.writerow(_check_row(answer))
@@ -272,6 +278,15 @@ def cmd_check(args) -> int:
                     detail = ""
                 print(f"{answer.verdict:<10}  {answer.path}  {detail}".rstrip())
             sys.stdout.flush()
+        if args.format == "html":
+            from .report import write_check_report
+
+            out = Path(args.out or "nearsight-check.html")
+            write_check_report(answers, out, read_given=given_thumbnail, thumbnail=_thumbnail_reader(store),
+                               title="nearsight: new material checked against the archive",
+                               summary={"store": str(store.root), "generation": searcher.generation.name
+                                        if searcher.generation else "none"})
+            print(f"wrote {out} ({len(answers)} files)")
     if not (args.json or args.csv):
         print(", ".join(f"{n} {v}" for v, n in counts.items()), file=sys.stderr)
     if args.fail_on == "copy" and counts["copy"]:
@@ -340,13 +355,36 @@ def cmd_groups(args) -> int:
             for name, answer in (questions(gen.load_calibration()) or {}).items():
                 summary[f"{name}: {answer['question']}"] = answer["text"]
             write_html_report(groups, out, thumbnail=_thumbnail_reader(store), title="nearsight: duplicate groups",
-                              summary=summary)
+                              summary=summary, explain=_explainer(store, now))
             print(f"wrote {out} ({len(groups)} groups)")
             return 0
         else:
             _groups_table(groups, summarize(groups), buf)
     _emit(buf.getvalue(), args.out)
     return 0
+
+
+def _explainer(store: Store, now):
+    """explain_group over the groups of `now` (verdict_groups.CurrentGroups), for the report."""
+    from .explain import explain_group
+    from .keepers import KeeperRules
+    from .verdict_groups import store_lookups
+
+    vectors, _ = store_lookups(store.catalog, now.generation.meta["model"], now.generation.load_whitening())
+    rules = KeeperRules.from_settings(store.settings)
+    return lambda group: explain_group(store, group, now.verdicts, rules=rules, vectors=vectors)
+
+
+def given_thumbnail(path: str) -> bytes | None:
+    """A report's thumbnail of a file that is not in the store (`check`): a JPEG of at most 256 px."""
+    import io
+
+    from .images import read_image
+
+    im, _ = read_image(path, max_side=256)
+    out = io.BytesIO()
+    im.save(out, format="JPEG", quality=85)
+    return out.getvalue()
 
 
 def _thumbnail_reader(store: Store):

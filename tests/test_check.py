@@ -94,3 +94,48 @@ def test_fail_on_copy_fails_a_pipeline_and_csv_is_one_row_a_file(archive, run_cl
     assert clean.returncode == 0, clean.stdout + clean.stderr
     table = clean.stdout.splitlines()
     assert len(table) == len(NEW) and all(line.split()[0] in ("new", "similar") for line in table)
+
+
+def test_the_html_sheet_shows_each_copy_beside_its_match_and_the_common_region(archive, run_cli, tmp_path):
+    """`--format html`: one section a copy or similar file with two pictures (the file, its match) and, for the
+    verified resize, the common region outlined on both; the new files and the unreadable one after; every
+    picture a JPEG in the folder beside the page (read back with Pillow); and the store as it was."""
+    from html.parser import HTMLParser
+
+    class Page(HTMLParser):
+        def __init__(self):
+            super().__init__()
+            self.sections, self.text = [], ""
+
+        def handle_starttag(self, tag, attrs):
+            attrs = dict(attrs)
+            if tag == "section":
+                self.sections.append({"id": attrs.get("id"), "img": [], "regions": 0, "text": ""})
+            elif tag == "img" and self.sections:
+                self.sections[-1]["img"].append(attrs["src"])
+            elif tag == "span" and attrs.get("class") == "region" and self.sections:
+                self.sections[-1]["regions"] += 1
+
+        def handle_data(self, data):
+            if self.sections:
+                self.sections[-1]["text"] += data
+
+    before = _state(archive / "store")
+    listing = sorted(p.relative_to(archive / "store") for p in (archive / "store").rglob("*"))
+    out = tmp_path / "sheet" / "check.html"
+    proc = run_cli("check", archive / "donated", "--store", archive / "store", "--format", "html", "--out", out,
+                   check_exit=0)
+    assert f"wrote {out}" in proc.stdout
+    page = Page()
+    page.feed(out.read_text("utf-8"))
+    found = [s for s in page.sections if s["id"] is None]
+    resized = next(s for s in found if "astronaut-resized.jpg" in s["text"])
+    assert len(resized["img"]) == 2 and resized["regions"] == 2 and "keypoints agree" in resized["text"]
+    assert any("coffee-same-bytes.png" in s["text"] and "same bytes" in s["text"] for s in found)
+    (unreadable,) = [s for s in page.sections if s["id"] == "unreadable"]
+    assert "broken.jpg" in unreadable["text"]
+    for src in (src for s in page.sections for src in s["img"]):
+        with Image.open(out.parent / src) as im:
+            assert im.format == "JPEG"
+    assert _state(archive / "store") == before
+    assert sorted(p.relative_to(archive / "store") for p in (archive / "store").rglob("*")) == listing

@@ -194,3 +194,42 @@ def test_a_store_from_before_reads_the_facts_once_at_its_next_index(archive_stor
         assert store.catalog.contents_without_origin() == []
     keeper, _ = _keeper_of_astronaut(store_dir)
     assert keeper.endswith("camera/IMG_0042.jpg")
+
+
+def test_the_report_shows_each_files_metadata_side_by_side_and_why_the_keeper_stays(archive_store, run_cli, tmp_path):
+    """`groups --format html`: the astronaut group's section names the keeper's reason in the plan's words,
+    shows the capture time and camera Pillow wrote into the camera's file beside the stripped copies' "no
+    capture time", and outlines the common region; its pictures are files beside the page (parsed with the
+    standard library's html.parser)."""
+    from html.parser import HTMLParser
+
+    store_dir, _ = archive_store
+
+    class Sections(HTMLParser):
+        def __init__(self):
+            super().__init__()
+            self.sections, self.images, self.regions = [], [], 0
+
+        def handle_starttag(self, tag, attrs):
+            attrs = dict(attrs)
+            if tag == "section":
+                self.sections.append([])
+            elif tag == "img":
+                self.images.append(attrs["src"])
+            elif tag == "span" and attrs.get("class") == "region":
+                self.regions += 1
+
+        def handle_data(self, data):
+            if self.sections:
+                self.sections[-1].append(data)
+
+    out = tmp_path / "report" / "groups.html"
+    run_cli("groups", "--store", store_dir, "--format", "html", "--out", out, check_exit=0)
+    page = Sections()
+    page.feed(out.read_text("utf-8"))
+    (text,) = [" ".join(s) for s in page.sections if "IMG_0042.jpg" in " ".join(s)]
+    assert "it still has the camera's capture time (2019-06-01T10:20:30)" in text
+    assert "2019-06-01 10:20:30" in text and "Fernhill FX-20" in text and "ICC profile" in text
+    assert "no capture time" in text and "not named" in text  # the stripped copies, side by side
+    assert page.regions >= 1
+    assert page.images and all((out.parent / src).is_file() and src.startswith("groups_files/") for src in page.images)

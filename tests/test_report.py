@@ -1,5 +1,6 @@
 """indexer.report: the page parses with the standard library's html.parser, holds one
-section per group, marks keepers, escapes every path and loads nothing from outside."""
+section per group, marks keepers, escapes every path, keeps its pictures as files in a folder
+beside it and loads nothing from outside."""
 
 import io
 import re
@@ -73,11 +74,15 @@ def test_text_is_escaped(tmp_path):
     assert "Groups <in> test" in "".join(parser.text)
 
 
-def test_images_are_data_uris_and_nothing_external(tmp_path):
+def test_images_are_files_beside_the_page_and_nothing_external(tmp_path):
     groups, _, page, parser = render(tmp_path)
     images = [a["src"] for t, a in parser.tags if t == "img"]
     assert len(images) == sum(g.size for g in groups)
-    assert all(src.startswith("data:image/jpeg;base64,") for src in images)
+    folder = tmp_path / "report"
+    for src in images:
+        assert src.startswith("groups_files/") and src.endswith(".jpg")
+        with Image.open(folder / src) as im:  # a real JPEG, read back with Pillow
+            assert im.format == "JPEG" and im.size == (32, 24)
     assert not re.search(r"https?://|//[a-z0-9.-]+\.[a-z]{2,}/", page)
     assert not any(t in ("link", "script", "iframe") for t, _ in parser.tags)
 
@@ -93,7 +98,9 @@ def test_missing_thumbnails_and_summary(tmp_path):
     text = "".join(parser.text)
     freed = sum(m.meta.file_size for g in groups for m in g.members if m.id != g.keeper)
     assert human_bytes(freed) in text and "threshold" in text
-    assert [p.name for p in (tmp_path / "report").iterdir()] == ["groups.html"]  # no temp file left
+    # no temp file or folder left, and only the pictures there are in the folder
+    assert sorted(p.name for p in (tmp_path / "report").iterdir()) == ["groups.html", "groups_files"]
+    assert len(list((tmp_path / "report" / "groups_files").iterdir())) == sum(g.size for g in groups) - 2
 
 
 def test_human_bytes():
@@ -101,3 +108,27 @@ def test_human_bytes():
     assert human_bytes(512) == "512 B"
     assert human_bytes(1536) == "1.5 KiB"
     assert human_bytes(3 * 1024**3) == "3.0 GiB"
+
+
+def test_a_second_report_replaces_the_first_whole(tmp_path):
+    groups, _ = make_groups()
+    out = tmp_path / "report" / "groups.html"
+    write_html_report(groups, out, thumbnail=lambda i: jpeg((10, 10, 10)), title="first", summary={})
+    write_html_report(groups[:1], out, thumbnail=lambda i: jpeg((200, 10, 10)), title="second", summary={})
+    parser = Collector()
+    parser.feed(out.read_text("utf-8"))
+    images = [a["src"] for t, a in parser.tags if t == "img"]
+    assert len(images) == groups[0].size
+    assert sorted(p.name for p in (tmp_path / "report" / "groups_files").iterdir()) == sorted(
+        src.split("/", 1)[1] for src in images)  # nothing of the first report is left behind
+
+
+def test_a_region_lands_on_the_picture_inside_its_square_tile():
+    """The tile shows a picture whole and centred (CSS object-fit: contain, as the CSS specification defines
+    it): a 200 x 100 picture fills the tile's width and the middle half of its height, so the picture's whole
+    area is the band y 0.25-0.75, and its right half is x 0.5-1 of that band. Worked by hand."""
+    from nearsight.indexer.report import in_square
+
+    assert in_square((0, 0, 1, 1), (200, 100)) == (0.0, 0.25, 1.0, 0.75)
+    assert in_square((0.5, 0, 1, 1), (200, 100)) == (0.5, 0.25, 1.0, 0.75)
+    assert in_square((0, 0.5, 1, 1), (100, 400)) == (0.375, 0.5, 0.625, 1.0)

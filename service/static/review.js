@@ -334,13 +334,22 @@
   }
 
   // An image with the common region outlined (`box`: x0, y0, x1, y1 as fractions of its width and height).
+  // The region is placed on the picture itself: a square tile shows it whole and centred (object-fit:
+  // contain), so the box is moved into the picture's part of the tile once its natural size is known.
   function framed(img, box) {
     const frame = el("span", { class: "frame" }, [img]);
     if (box) {
-      const [x0, y0, x1, y1] = box;
       const region = el("span", { class: "region", "aria-hidden": "true" });
-      region.style.left = `${x0 * 100}%`; region.style.top = `${y0 * 100}%`;
-      region.style.width = `${(x1 - x0) * 100}%`; region.style.height = `${(y1 - y0) * 100}%`;
+      const place = () => {
+        const w = img.clientWidth, h = img.clientHeight, nw = img.naturalWidth, nh = img.naturalHeight;
+        let sx = 1, sy = 1;
+        if (w && h && nw && nh) { const s = Math.min(w / nw, h / nh); sx = (nw * s) / w; sy = (nh * s) / h; }
+        const ox = (1 - sx) / 2, oy = (1 - sy) / 2;
+        region.style.left = `${(ox + box[0] * sx) * 100}%`; region.style.top = `${(oy + box[1] * sy) * 100}%`;
+        region.style.width = `${(box[2] - box[0]) * sx * 100}%`; region.style.height = `${(box[3] - box[1]) * sy * 100}%`;
+      };
+      place();
+      img.addEventListener("load", place);
       frame.append(region);
     }
     return frame;
