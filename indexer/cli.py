@@ -148,7 +148,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--format", choices=("table", "json", "csv", "html", "keep-list", "drop-list"), default="table",
                    help="output format; keep-list: one path a line, every readable file the quarantine plan would "
                         "not move; drop-list: CSV of the files it would move, each with the file it duplicates")
-    p.add_argument("--out", help="write to this file (html: default STORE/reports/groups-<generation>.html)")
+    p.add_argument("--out", help="write to this file (html: default STORE/reports/groups-<generation>.html, its "
+                                 "pictures in a folder beside it; keep-list and drop-list: a name ending in "
+                                 ".parquet writes Apache Parquet, with the optional extra nearsight[parquet])")
     p.set_defaults(func=commands.cmd_groups)
 
     p = sub.add_parser("calibrate", parents=[common], help="calibrate the duplicate thresholds for a stated precision",

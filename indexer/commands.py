@@ -334,6 +334,15 @@ def cmd_groups(args) -> int:
             plan = plan_quarantine(store, tier=tier, threshold=args.threshold, precision=args.precision,
                                    rules=KeeperRules.from_settings(store.settings))
             keep, drop = keep_and_drop(store, plan)
+            if args.out and str(args.out).lower().endswith(".parquet"):
+                from .keeplist import DROP_COLUMNS, KEEP_COLUMNS, write_parquet
+
+                if args.format == "keep-list":
+                    write_parquet([{"path": p} for p in keep], KEEP_COLUMNS, Path(args.out))
+                else:
+                    write_parquet(drop, DROP_COLUMNS, Path(args.out))
+                print(f"wrote {args.out}", file=sys.stderr)
+                return 0
             if args.format == "keep-list":
                 write_keep_list(keep, buf)
             else:

@@ -6,12 +6,18 @@ for want of evidence or by a keeper rule). `--format drop-list` writes the other
 the plan would move, with the file it duplicates and the evidence. Together they hold every present,
 readable file once. Nothing is moved: this is the plan (indexer/plan.py) written as lists, with the same
 options (`--tier`, `--threshold`, `--precision`) and the store's keeper rules.
+
+With `--out F.parquet` either list is written as Apache Parquet instead (pyarrow, the optional extra
+`nearsight[parquet]`): the keep list as one column `path`, the drop list with the CSV's columns, typed.
 """
 
 from __future__ import annotations
 
 import csv
+from pathlib import Path
 from typing import IO
+
+from .errors import UsageError
 
 DROP_COLUMNS = ("path", "id", "duplicate_of", "duplicate_of_id", "tier", "evidence", "bytes", "content_hash")
 
@@ -36,3 +42,28 @@ def write_drop_list(rows: list[dict], fh: IO[str]) -> None:
     writer = csv.DictWriter(fh, fieldnames=DROP_COLUMNS, lineterminator="\n")
     writer.writeheader()
     writer.writerows(rows)
+
+
+def write_parquet(rows: list[dict], columns: tuple[str, ...], out: Path) -> None:
+    """The rows as a Parquet file, written beside `out` and renamed into place."""
+    try:
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+    except ImportError:
+        raise UsageError("writing Parquet needs pyarrow: pip install 'nearsight[parquet]'") from None
+    table = pa.table({c: [r[c] for r in rows] for c in columns},
+                     schema=pa.schema([(c, _ARROW_TYPES.get(c, pa.string)()) for c in columns]))
+    out = Path(out)
+    tmp = out.with_name(f".{out.name}.partial")
+    pq.write_table(table, tmp)
+    tmp.replace(out)
+
+
+def _int64():
+    import pyarrow as pa
+
+    return pa.int64()
+
+
+_ARROW_TYPES = {"id": _int64, "duplicate_of_id": _int64, "bytes": _int64}
+KEEP_COLUMNS = ("path",)

@@ -38,3 +38,14 @@ def test_the_keep_list_is_every_file_less_the_plans_moves_and_the_drop_list_is_t
             (m["copy_of"]["path"], m["tier"], m["evidence"], m["size"])
     assert not set(keep) & {r["path"] for r in rows}
     assert not (tmp_path / "q").exists()  # lists, not moves
+    # The same lists as Apache Parquet, read back with pyarrow: the same rows, the numbers typed.
+    import pyarrow.parquet as pq
+
+    run_cli("groups", "--store", store, "--format", "keep-list", "--out", tmp_path / "keep.parquet", check_exit=0)
+    assert pq.read_table(tmp_path / "keep.parquet").column("path").to_pylist() == keep
+    run_cli("groups", "--store", store, "--format", "drop-list", "--out", tmp_path / "drop.parquet", check_exit=0)
+    table = pq.read_table(tmp_path / "drop.parquet")
+    assert str(table.schema.field("bytes").type) == "int64"
+    assert sorted(table.to_pylist(), key=lambda r: r["path"]) == sorted(
+        ({**r, "id": int(r["id"]), "duplicate_of_id": int(r["duplicate_of_id"]), "bytes": int(r["bytes"])}
+         for r in rows), key=lambda r: r["path"])
