@@ -53,6 +53,10 @@ def query_line(query: dict) -> str:
             f"{query['false_flag_rate']:.1%} of {query['negatives']:,} queries without their original got a flag "
             f"({f_lo:.1%}-{f_hi:.1%}; target {query['target_false_flag_rate']:.0%}), and it finds "
             f"{_fmt(query['recall'], 2)} ({_fmt(r_lo, 2)}-{_fmt(r_hi, 2)}) of {query['positives']:,} edited copies")
+    flags_at = query.get("false_flag_threshold")
+    if flags_at is not None and query["threshold"] > flags_at:
+        line += (f" (raised from {flags_at:.3f}, where the false-flag target alone would put it, to where a copy "
+                 "is at least as likely as not)")
     if not query["target_confirmed"]:
         line += (f" [{query['negatives']:,} queries are too few to confirm a rate of "
                  f"{query['target_false_flag_rate']:.0%}: the threshold sits above every one of them]")

@@ -100,6 +100,24 @@ def copy_probability(verdict: dict, score: float) -> float | None:
     return round(float(np.interp(score, mapping["scores"], mapping["probabilities"])), 4)
 
 
+def even_odds_score(mapping: dict | None) -> float | None:
+    """The lowest score at which `copy_probability` reaches one half (the fitted steps interpolated
+    linearly, as IsotonicRegression.predict does), rounded up to the 1e-4 grid of the thresholds; None
+    when every score already gets at least one half, or there is no fit."""
+    if not mapping or not mapping["scores"]:
+        return None
+    scores, probs = mapping["scores"], mapping["probabilities"]
+    above = [i for i, p in enumerate(probs) if p >= 0.5]
+    if not above:
+        return float(np.ceil(scores[-1] * 1e4) / 1e4 + 1e-4)  # never as likely as not: above every fitted score
+    i = above[0]
+    if i == 0:
+        return None
+    s0, s1, p0, p1 = scores[i - 1], scores[i], probs[i - 1], probs[i]
+    x = s0 + (0.5 - p0) * (s1 - s0) / (p1 - p0)
+    return float(np.ceil(round(x, 9) * 1e4) / 1e4)
+
+
 def threshold_report(positives: np.ndarray, misses: int, negatives: np.ndarray, t: float) -> dict:
     """Realised recall and false-flag rate at `t`, each with its Wilson interval."""
     n_pos = len(positives) + misses
@@ -214,17 +232,26 @@ def calibrate_query(searcher, ids: np.ndarray, meta: dict, same_pairs: set, edit
     t, met = false_flag_threshold(neg, config.false_flag_rate)
     # The same question on the descriptor's own scale (no normalisation, no verification): the
     # scale groups are built on, so the grouping threshold can be compared with this one.
+    probability = fit_probability(pos, neg, config.prior) if len(pos) and len(neg) else None
+    # A result is called a copy only where a copy is also at least as likely as not: on a collection whose
+    # own negatives are scarce near the top (a look-alike that verification confirms is left out of them as
+    # a likely duplicate), the false-flag bound alone can fall where the fitted chance of a copy is nil.
+    even = even_odds_score(probability)
+    t_flags = t
+    if even is not None and even > t:
+        t = even
     pos_d = np.asarray([r[DESCRIPTOR_KEY] for r in found])
     neg_d = np.asarray([r[DESCRIPTOR_KEY] for r in negatives])
     t_d, _ = false_flag_threshold(neg_d, config.false_flag_rate)
     verdict = {
-        "threshold": t, "target_false_flag_rate": config.false_flag_rate, "target_confirmed": met,
+        "threshold": t, "false_flag_threshold": t_flags, "even_odds_score": even,
+        "target_false_flag_rate": config.false_flag_rate, "target_confirmed": met,
         "positives": int(len(pos) + misses), "missed_positives": int(misses), "negatives": int(len(neg)),
         "negative_queries": {"as_indexed": len(plain), "edited": len(edited_rows)},
         "likely_duplicates": {"verified": len(likely), "not_verified": int(len(neg))},
         **threshold_report(pos, misses, neg, t),
         "descriptor_threshold": t_d, "descriptor": threshold_report(pos_d, misses, neg_d, t_d),
-        "probability": fit_probability(pos, neg, config.prior) if len(pos) and len(neg) else None,
+        "probability": probability,
     }
     samples = {"query_positives": np.round(pos, 4).tolist(), "query_negatives": np.round(neg, 4).tolist()}
     return verdict, samples

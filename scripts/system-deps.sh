@@ -5,7 +5,8 @@
 set -euo pipefail
 
 # chromium + chromium-driver: tests/test_service_browser.py drives the review page headless with Selenium.
-needed=(chromium chromium-driver)
+# strace: tests/test_durability.py traces real commands to check the order of fsync and rename.
+needed=(chromium chromium-driver strace)
 
 missing=()
 for pkg in "${needed[@]:-}"; do

@@ -67,6 +67,26 @@ def test_probability_is_sklearn_isotonic_regression_at_the_stated_prior():
     assert copy_probability({"probability": low}, 0.6) < copy_probability({"probability": high}, 0.6)
 
 
+def test_the_copy_threshold_is_where_sklearns_isotonic_fit_reaches_even_odds():
+    """Reference: sklearn.isotonic.IsotonicRegression's predict on the same fit. The score `even_odds_score`
+    gives is the lowest on the 1e-4 grid where the predicted chance of a copy is at least one half; one grid
+    step lower it is below one half. Worked by hand for the steps (0.311, 0) to (0.452, 1): 0.3815."""
+    from sklearn.isotonic import IsotonicRegression
+
+    from nearsight.indexer.query_verdict import even_odds_score
+
+    assert even_odds_score({"scores": [0.016, 0.311, 0.452, 0.863], "probabilities": [0, 0, 1, 1]}) == 0.3815
+    rng = np.random.default_rng(5)
+    pos = np.clip(rng.normal(0.7, 0.15, 400), -1, 1)
+    neg = np.clip(rng.normal(0.4, 0.15, 700), -1, 1)
+    w = np.r_[np.full(400, 0.5 / 400), np.full(700, 0.5 / 700)]
+    ref = IsotonicRegression(y_min=0, y_max=1, increasing=True, out_of_bounds="clip").fit(
+        np.r_[pos, neg], np.r_[np.ones(400), np.zeros(700)], sample_weight=w)
+    even = even_odds_score(fit_probability(pos, neg, 0.5))
+    assert ref.predict([even])[0] >= 0.5 - 1e-6 and ref.predict([even - 1e-4])[0] < 0.5
+    assert even_odds_score({"scores": [0.1, 0.9], "probabilities": [0.6, 1.0]}) is None  # even odds everywhere
+
+
 def test_groups_stay_at_the_query_threshold_without_evidence_from_the_collection():
     near = {"threshold": 0.995, "target_met": False, "target_precision": 0.99, "duplicate_pairs": 0.4}
     query = {"descriptor_threshold": 0.93}
