@@ -9,12 +9,13 @@ from __future__ import annotations
 import argparse
 import logging
 import os
+import sqlite3
 import sys
 from pathlib import Path
 from typing import Sequence
 
 from . import __version__, commands
-from .errors import NearsightError
+from .errors import NearsightError, disk_full
 from .limits import K, PRECISION, THRESHOLD
 
 log = logging.getLogger("nearsight")
@@ -303,7 +304,13 @@ def main(argv: Sequence[str] | None = None) -> int:
         # took 30-440 ms in benchmarks/bench_http.py). Must be set before either library loads.
         os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
     try:
-        return args.func(args)
+        try:
+            return args.func(args)
+        except (OSError, sqlite3.OperationalError) as exc:
+            full = disk_full(exc)
+            if full is None:
+                raise
+            raise full from exc
     except NearsightError as exc:
         if args.debug:
             log.exception("failed")

@@ -44,6 +44,30 @@ class StoreError(NearsightError):
     code = "store_error"
 
 
+class DiskFullError(StoreError):
+    """The disk (or the user's quota) ran out of space while writing. Nothing published is lost: the run
+    stops before its new generation is published, and a rerun after space is freed picks up its work."""
+
+    exit_code = 74  # EX_IOERR of BSD's sysexits.h
+    http_status = 507
+    code = "disk_full"
+
+
+def disk_full(exc: BaseException) -> "DiskFullError | None":
+    """The DiskFullError an OS or SQLite error stands for, or None: ENOSPC or EDQUOT from the system,
+    SQLITE_FULL ("database or disk is full") from the catalog."""
+    import errno
+    import sqlite3
+
+    where = ""
+    if isinstance(exc, OSError) and exc.errno in (errno.ENOSPC, errno.EDQUOT):
+        where = f" while writing {exc.filename}" if exc.filename else ""
+    elif not (isinstance(exc, sqlite3.OperationalError) and "full" in str(exc).lower()):
+        return None
+    return DiskFullError(f"the disk is full{where}: free some space and run the command again (the store "
+                         "keeps serving what it last published; the rerun picks up this run's work)")
+
+
 class StoreLockedError(StoreError):
     """Another run holds the store's lock."""
 

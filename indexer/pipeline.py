@@ -101,7 +101,10 @@ def run_index(store: Store, folders: Sequence[str | Path], *, progress: bool | N
                 summary.update(_build(store, stages, progress, train_config, index_spec, calibrate, retrain,
                                       cluster=cluster))
         except BaseException as exc:
-            store.catalog.finish_run(run_id, "failed", {"error": str(exc)})
+            try:
+                store.catalog.finish_run(run_id, "failed", {"error": str(exc)})
+            except Exception as also:  # a full disk may refuse this record too: the run's own error comes first
+                log.debug("could not record the failed run: %s", also)
             raise
         summary["stages"] = {k: round(v, 3) for k, v in stages.items()}
         summary["run"] = run_id

@@ -18,7 +18,8 @@ from pathlib import Path
 from flask import Flask, g, jsonify, request
 from werkzeug.exceptions import HTTPException, RequestEntityTooLarge
 
-from nearsight.indexer.errors import AuthError, ForbiddenError, MisdirectedError, NearsightError, NotReadyError
+from nearsight.indexer.errors import (AuthError, ForbiddenError, MisdirectedError, NearsightError, NotReadyError,
+                                      disk_full)
 from nearsight.indexer.store import Store
 
 from .config import ServiceConfig, resolve_config
@@ -170,6 +171,7 @@ def _cors(response, origins: tuple[str, ...]) -> None:
 # -- the one error handler ------------------------------------------------------------------------
 def _error_response(exc: Exception):
     headers = {}
+    exc = disk_full(exc) or exc  # a full disk under a write: 507 with what to do, not a bare 500
     if isinstance(exc, NearsightError):
         status, body = exc.http_status, exc.to_dict()
         if isinstance(exc, AuthError):
