@@ -24,7 +24,6 @@ from __future__ import annotations
 import argparse
 import hashlib
 import json
-import os
 import shutil
 import subprocess
 import sys
@@ -32,6 +31,8 @@ import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+
+from benchmarks.common import machine, write_report  # noqa: E402
 
 ROOT = Path(__file__).resolve().parent.parent
 STORED = ("masters", "scans-1987")
@@ -110,7 +111,7 @@ def main() -> int:
     lines = [
         "# `check` on new material against indexing it",
         "",
-        f"Machine: {os.cpu_count()} cores. Command: `.venv/bin/python benchmarks/bench_check.py --work WORK "
+        f"Machine: {machine()}. Command: `.venv/bin/python benchmarks/bench_check.py --work WORK "
         f"--originals {args.originals} --train-minutes {args.train_minutes:g}`.",
         "",
         f"Demo archive (seed 7, {args.originals} originals). The store holds {', '.join(STORED)} "
@@ -139,9 +140,7 @@ def main() -> int:
         f"{'unchanged (SHA-256)' if after == before else 'CHANGED: ' + json.dumps([before, after])}.",
         "",
     ]
-    args.out.write_text("\n".join(lines), encoding="utf-8")
-    print("\n".join(lines))
-    return 0
+    return write_report(args.out, lines)
 
 
 if __name__ == "__main__":

@@ -36,3 +36,12 @@ def machine(names=DEFAULT_LIBRARIES) -> str:
     libs = ", ".join(f"{k} {v}" for k, v in library_versions(names).items())
     return (f"{cpu_model()}, {os.cpu_count()} cores, {platform.system()} {platform.release()}, "
             f"Python {platform.python_version()}; {libs}; load average {load:.2f}")
+
+
+def write_report(out, lines: list[str]) -> int:
+    """Write a Markdown report and print it; the exit code of a benchmark's main (0)."""
+    from pathlib import Path
+
+    Path(out).write_text("\n".join(lines), encoding="utf-8")
+    print("\n".join(lines))
+    return 0

@@ -11,13 +11,19 @@ Checks, each giving findings of one line (a problem, or a note that is not one):
 - ``vectors``: every content the current generation indexes has its vector under the generation's model
   in the catalog (incremental builds and grouping read them from there);
 - ``small-copies``: every small copy the catalog records exists and is a readable image;
+- ``model``: the model pointer names a model folder holding its weights and card, and the current
+  generation's model is there (a model is made by training, not derived: a missing one is named, and
+  `index --retrain always` trains a new one);
 - ``quarantine``: every file the catalog records as quarantined is where its manifest moved it, with the
-  bytes it had (its content hash), and its manifest exists.
+  bytes it had (its content hash), and its manifest exists; and the other way round, every move a known
+  manifest (one the catalog names, and the others in its folder written for this store) records as done is
+  a quarantined file in the catalog, and no move was left half-told by a killed run.
 
 `--repair` makes again only what is derived (under the store's lock): a missing or damaged small copy from
-its source file (when that file still holds the same bytes), missing vectors from the source files, and a
-damaged or inconsistent current generation by a full build from the catalog's vectors; a damaged generation
-that no pointer names any more is removed. It never touches a
+its source file (when that file still holds the same bytes), missing vectors from the source files, a
+damaged or inconsistent current generation by a full build from the catalog's vectors, and the catalog's
+mark of a move a manifest records as done when the file is indeed in the quarantine folder and gone from
+its place; a damaged generation that no pointer names any more is removed. It never touches a
 user's image, never drops a verdict, and a quarantined file that is missing or changed is reported, not
 "repaired".
 """
@@ -39,7 +45,8 @@ from .store import Store
 
 log = logging.getLogger(__name__)
 
-CHECKS = ("catalog", "generation", "index", "vectors", "small-copies", "quarantine")
+CHECKS = ("catalog", "generation", "index", "vectors", "small-copies", "model", "quarantine")
+MODEL_FILES = ("model.pt", "card.json")
 
 
 @dataclass(frozen=True)
@@ -171,7 +178,8 @@ def _small_copies(store: Store) -> list[Finding]:
 
 def _quarantine(store: Store) -> list[Finding]:
     out = []
-    for row in store.catalog.quarantined_files():
+    rows = store.catalog.quarantined_files()
+    for row in rows:
         where = Path(row["quarantine_path"] or "")
         label = f"file {row['id']} ({row['relpath']})"
         if not row["quarantine_path"] or not where.is_file():
@@ -183,6 +191,63 @@ def _quarantine(store: Store) -> list[Finding]:
         if row["quarantine_manifest"] and not Path(row["quarantine_manifest"]).is_file():
             out.append(Finding("quarantine", True, f"{label}: its manifest {row['quarantine_manifest']} is missing "
                                                    "(`restore` needs it)", subject=row["quarantine_manifest"]))
+    return out + _manifest_records(store, rows)
+
+
+def _model(store: Store, gen) -> list[Finding]:
+    from .models import POINTER as MODEL_POINTER
+
+    out = []
+    current = store.read_pointer(MODEL_POINTER)
+    wanted = {current} if current else set()
+    if gen is not None and gen.meta.get("model"):
+        wanted.add(gen.meta["model"])
+    retrain = "; `nearsight index --retrain always` trains a new one"
+    for name in sorted(wanted):
+        folder = store.models_dir / name
+        if not folder.is_dir():
+            out.append(Finding("model", True, f"model {name} is missing{retrain}", subject=name))
+            continue
+        for filename in MODEL_FILES:
+            path = folder / filename
+            if not path.is_file() or path.stat().st_size == 0:
+                out.append(Finding("model", True, f"model {name} has no {filename}{retrain}", subject=name))
+        try:
+            json.loads((folder / "card.json").read_text("utf-8"))
+        except (OSError, ValueError):
+            if (folder / "card.json").is_file():
+                out.append(Finding("model", True, f"model {name}: its card.json is damaged{retrain}", subject=name))
+    return out
+
+
+def _manifest_records(store: Store, rows: list[dict]) -> list[Finding]:
+    """Moves known manifests record as done that the catalog does not show, and moves left half-told."""
+    from . import manifest
+    from .errors import UsageError
+
+    known = {Path(r["quarantine_manifest"]) for r in rows if r["quarantine_manifest"]}
+    for folder in {p.parent for p in known}:
+        known.update(folder.glob("manifest-*.jsonl"))
+    by_id = {r["id"]: r for r in rows}
+    out = []
+    for path in sorted(known):
+        try:
+            records = manifest.read(path)
+        except (OSError, UsageError):
+            continue  # a missing manifest is reported with its files; a foreign file is not ours
+        if records[0].get("store") != str(store.root):
+            continue
+        for entry in manifest.entries(records).values():
+            moved = entry.outcome is not None and entry.outcome["record"] == "moved"
+            restored = any(r["record"] == "restored" for r in entry.records)
+            file_id, to = entry.intent["file_id"], entry.intent["to"]
+            if entry.outcome is None and not restored:
+                out.append(Finding("quarantine", True, f"{path.name}: the move of file {file_id} to {to} was left "
+                                   "half-told by a stopped run; `nearsight quarantine --to "
+                                   f"{path.parent}` settles it", subject=str(path)))
+            elif moved and not restored and by_id.get(file_id, {}).get("quarantine_path") != to:
+                out.append(Finding("quarantine", True, f"{path.name}: records file {file_id} moved to {to}, but "
+                                   "the catalog does not list it there", "quarantine-marks", str(path)))
     return out
 
 
@@ -198,6 +263,7 @@ def verify_store(store: Store) -> list[Finding]:
         findings += _index(store, gen)
         findings += _vectors(store, gen)
     findings += _small_copies(store)
+    findings += _model(store, gen)
     findings += _quarantine(store)
     return findings
 
@@ -215,6 +281,8 @@ def repair_store(store: Store, findings: list[Finding] | None = None) -> list[st
         for f in findings:
             if f.problem and f.repair == "small-copy":
                 done.append(_remake_small_copy(store, f.subject))
+        for path in sorted({f.subject for f in findings if f.problem and f.repair == "quarantine-marks"}):
+            done.append(_sync_marks(store, Path(path)))
         if wanted & {"vectors", "generation"}:
             done += _rebuild_generation(store, embed="vectors" in wanted)
         current = store.read_pointer(generations.POINTER)
@@ -224,6 +292,20 @@ def repair_store(store: Store, findings: list[Finding] | None = None) -> list[st
                 shutil.rmtree(folder)
                 done.append(f"removed the damaged generation {name} (not the current one)")
     return done
+
+
+def _sync_marks(store: Store, path: Path) -> str:
+    """The catalog's quarantine marks from a manifest, for moves that did happen (the file is at its new
+    path and gone from its old one): quarantine.py's own settling, without moving anything."""
+    from . import manifest
+    from .quarantine import sync_catalog
+
+    before = {r["id"] for r in store.catalog.quarantined_files()}
+    sync_catalog(store, manifest.read(path), path)
+    marked = {r["id"] for r in store.catalog.quarantined_files()} - before
+    if marked:
+        return f"marked {len(marked)} file(s) quarantined as {path.name} records"
+    return f"{path.name}: its records of moves do not match the files on disk; left for you to check"
 
 
 def _remake_small_copy(store: Store, digest: str) -> str:

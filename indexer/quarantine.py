@@ -74,12 +74,12 @@ def settle(store: Store, journal: manifest.ManifestWriter) -> dict:
                       journal.path, src, dest)
             journal.write("abandoned", seq=entry.seq, reason="found at neither path with its catalogued bytes")
             counts["unaccounted"] += 1
-    _sync_catalog(store, manifest.read(journal.path), journal.path)
+    sync_catalog(store, manifest.read(journal.path), journal.path)
     log.info("settled interrupted run %s: %s", journal.path, ", ".join(f"{k} {n}" for k, n in counts.items()))
     return counts
 
 
-def _sync_catalog(store: Store, records: list[dict], path: Path) -> None:
+def sync_catalog(store: Store, records: list[dict], path: Path) -> None:
     moved = [e for e in manifest.entries(records).values()
              if e.outcome and e.outcome["record"] == "moved" and not any(r["record"] == "restored" for r in e.records)]
     rows = store.catalog.file_rows(e.intent["file_id"] for e in moved)

@@ -401,6 +401,40 @@ SETTINGS: tuple[Setting, ...] = (
         "too-large). Lower than max_pixels because a request decodes while others wait.",
     ),
     Setting(
+        "rate_uploads",
+        120,
+        _positive_int,
+        "Image uploads (POST /v1/search, /v1/check) one client may send a minute; more get 429 with "
+        "Retry-After (0: no limit).",
+    ),
+    Setting(
+        "rate_writes",
+        120,
+        _positive_int,
+        "Writes (verdicts, keeper choices) one client may send a minute; more get 429 with Retry-After "
+        "(0: no limit).",
+    ),
+    Setting(
+        "max_decodes",
+        2,
+        _positive_int,
+        "Uploads the HTTP service decodes at once; others wait up to decode_wait_s, then get 503. Bounds "
+        "the memory many large uploads can take together.",
+    ),
+    Setting(
+        "decode_wait_s",
+        10.0,
+        _positive_float,
+        "How long an upload waits for its turn to be decoded before the service answers 503.",
+    ),
+    Setting(
+        "client_timeout_s",
+        30.0,
+        _positive_float,
+        "Seconds the HTTP service keeps a connection on which nothing arrives (a slow or stalled client) "
+        "before closing it.",
+    ),
+    Setting(
         "allowed_hosts",
         "",
         _origins,

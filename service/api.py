@@ -91,9 +91,10 @@ def search():
     args = params.search_args({**form, **request.args})
     snap = snapshot()
     threshold, source = snap.threshold(args["threshold"], args["precision"])
-    results, info = snap.searcher.similar_to_upload(data, args["k"], None if source == "generation" else threshold,
-                                                    max_pixels=min(st.config.max_upload_pixels, st.config.max_pixels),
-                                                    catalog=st.store().catalog)
+    with st.decodes.place():  # at most max_decodes uploads decoded at once (service/guard.py)
+        results, info = snap.searcher.similar_to_upload(
+            data, args["k"], None if source == "generation" else threshold,
+            max_pixels=min(st.config.max_upload_pixels, st.config.max_pixels), catalog=st.store().catalog)
     query = {"width": info.width, "height": info.height, "format": info.format, "bytes": len(data)}
     return _search_answer(snap, results, args, threshold, source, query)
 
@@ -109,10 +110,11 @@ def check():
     args = params.search_args({**form, **request.args})
     snap = snapshot()
     threshold, source = snap.threshold(args["threshold"], args["precision"])
-    answers = check_uploads(snap.searcher, images, threshold=None if source == "generation" else threshold,
-                            max_pixels=min(st.config.max_upload_pixels, st.config.max_pixels),
-                            catalog=st.store().catalog)
-    results = [a.to_dict() for a in answers]
+    with st.decodes.place():
+        answers = check_uploads(snap.searcher, images, threshold=None if source == "generation" else threshold,
+                                max_pixels=min(st.config.max_upload_pixels, st.config.max_pixels),
+                                catalog=st.store().catalog)
+        results = [a.to_dict() for a in answers]
     counts = {v: sum(r["verdict"] == v for r in results) for v in VERDICTS}
     return jsonify(generation=snap.name, model=snap.model, threshold=threshold, threshold_from=source,
                    counts=counts, results=results)

@@ -23,6 +23,7 @@ from nearsight.indexer.errors import (AuthError, ForbiddenError, MisdirectedErro
 from nearsight.indexer.store import Store
 
 from .config import ServiceConfig, resolve_config
+from .guard import UPLOAD_ENDPOINTS, DecodeGate, RateLimiter
 from .live import LiveGeneration, Snapshot
 from .metrics import Metrics
 from .params import MULTIPART_SLACK
@@ -45,6 +46,8 @@ class ServiceState:
     config: ServiceConfig
     live: LiveGeneration
     metrics: Metrics
+    limiter: RateLimiter
+    decodes: DecodeGate
     started_at: float = field(default_factory=time.time)
     _local: threading.local = field(default_factory=threading.local)
 
@@ -84,7 +87,9 @@ def create_app(config=None) -> Flask:
     live = LiveGeneration(cfg.store, cfg.settings, reload_s=cfg.reload_s,
                           on_swap=lambda snap: metrics.on_snapshot(snap, swapped=live.swaps > 0),
                           on_failure=metrics.load_failures.inc)
-    app.extensions["nearsight"] = ServiceState(cfg, live, metrics)
+    limiter = RateLimiter({"uploads": cfg.rate_uploads, "writes": cfg.rate_writes})
+    app.extensions["nearsight"] = ServiceState(cfg, live, metrics, limiter, DecodeGate(cfg.max_decodes,
+                                                                                       cfg.decode_wait_s))
     live.refresh()
     if cfg.watch:
         live.start()
@@ -97,6 +102,7 @@ def create_app(config=None) -> Flask:
     app.before_request(_start_timer)
     app.before_request(_check_host)
     app.before_request(_authorize)
+    app.before_request(_limit)
     app.after_request(_finish)
     app.register_error_handler(Exception, _error_response)
     if not cfg.api_key:
@@ -134,6 +140,14 @@ def _authorize() -> None:
         raise AuthError(f"{what} needs the API key: send the header 'Authorization: Bearer <key>'")
     if not hmac.compare_digest(token.strip().encode(), cfg.api_key.encode()):
         raise AuthError("the API key is not valid")
+
+
+def _limit() -> None:
+    """Per-client rate limits on uploads and writes (service/guard.py), after the key check so that a
+    request refused for its key costs the client nothing."""
+    kind = "uploads" if request.endpoint in UPLOAD_ENDPOINTS else "writes" if request.endpoint in WRITE_ENDPOINTS else None
+    if kind and request.method != "OPTIONS":
+        state().limiter.take(request.remote_addr or "?", kind)
 
 
 def _finish(response):
@@ -176,6 +190,8 @@ def _error_response(exc: Exception):
         status, body = exc.http_status, exc.to_dict()
         if isinstance(exc, AuthError):
             headers["WWW-Authenticate"] = 'Bearer realm="nearsight"'
+        if getattr(exc, "retry_after", None):
+            headers["Retry-After"] = str(exc.retry_after)
         if status >= 500:
             log.error("%s %s failed: %s", request.method, request.path, exc.message)
     elif isinstance(exc, RequestEntityTooLarge):

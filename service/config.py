@@ -25,6 +25,10 @@ FROM_SETTINGS = {
     "max_upload_pixels": "max_upload_pixels",
     "max_pixels": "max_pixels",
     "reload_s": "serve_reload_s",
+    "rate_uploads": "rate_uploads",
+    "rate_writes": "rate_writes",
+    "max_decodes": "max_decodes",
+    "decode_wait_s": "decode_wait_s",
 }
 
 
@@ -51,6 +55,10 @@ class ServiceConfig:
     max_upload_pixels: int
     max_pixels: int
     reload_s: float
+    rate_uploads: int = 120
+    rate_writes: int = 120
+    max_decodes: int = 2
+    decode_wait_s: float = 10.0
     watch: bool = True  # run the thread that swaps in newly published generations
 
     def answers_for(self, host_header: str) -> bool:

@@ -71,7 +71,8 @@ def run_server(store: Path, settings: Settings, *, out=None) -> int:
     try:
         server = create_server(app, host=host, port=port, threads=threads, ident="nearsight",
                                max_request_body_size=app.config["MAX_CONTENT_LENGTH"],
-                               clear_untrusted_proxy_headers=True, expose_tracebacks=False)
+                               clear_untrusted_proxy_headers=True, expose_tracebacks=False,
+                               channel_timeout=max(1, round(settings.client_timeout_s)))
     except OSError as exc:
         live.stop()
         raise UsageError(f"cannot listen on {host}:{port}: {exc.strerror or exc}") from None

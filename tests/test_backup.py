@@ -149,3 +149,54 @@ def test_a_store_path_with_uri_characters_is_backed_up_whole(service_store, tmp_
     gen = next(p for p in (tmp_path / "backup" / "generations").iterdir() if p.is_dir())
     assert all(f.stat().st_nlink == 1 for f in gen.iterdir())  # --copy: copies, not links
 
+
+
+@pytest.mark.slow
+def test_a_backup_taken_while_index_and_serve_run_verifies_and_answers_like_its_source(service_store, tmp_path):
+    """`nearsight backup` started while `nearsight index` adds new photos and `nearsight serve` answers on the
+    same store (real processes): all three finish, the server answers throughout, the backup passes
+    `verify`, and it answers like the source did at the generation it holds (the one before the index run or
+    the one it published)."""
+    import subprocess
+    import sys
+    import time
+
+    from .service_support import ROOT, ServerProcess
+
+    store_dir = service_store.copy("backup-live")  # indexing reads the shared archive, moves nothing
+    queries = [transformed(p, tmp_path / f"{n}.jpg") for n, p in service_store.originals.items() if n not in COPIED][:3]
+
+    def answers(where):
+        with nearsight.open_store(where) as s:
+            return s.status().to_dict()["generation"]["name"], [a.to_dict() for a in s.similar(queries, k=5)]
+
+    before = answers(store_dir)
+    new_photos = tmp_path / "new-photos"
+    new_photos.mkdir()
+    for n, path in list(service_store.originals.items())[:4]:
+        transformed(path, new_photos / f"{n}-donated.jpg")
+    server = ServerProcess(store_dir).start()
+    client = server.client()
+    env = {k: v for k, v in __import__("os").environ.items() if not k.startswith("NEARSIGHT_")}
+    index = subprocess.Popen([sys.executable, "-m", "nearsight", "index", str(service_store.archive), str(new_photos),
+                              "--store", str(store_dir), "--no-progress", "--retrain", "never", "--no-calibrate"],
+                             cwd=ROOT, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        time.sleep(1.0)  # the index run has the store's lock and is scanning
+        backup = subprocess.run([sys.executable, "-m", "nearsight", "backup", str(tmp_path / "backup"), "--store",
+                                 str(store_dir)], cwd=ROOT, env=env, capture_output=True, text=True, timeout=300)
+        statuses = [client.get("/v1/status").status for _ in range(5)]
+        _, index_err = index.communicate(timeout=300)
+    finally:
+        if index.poll() is None:
+            index.kill()
+        client.close()
+        server.stop()
+    assert backup.returncode == 0, backup.stderr
+    assert index.returncode == 0, index_err
+    assert statuses == [200] * 5
+    assert subprocess.run([sys.executable, "-m", "nearsight", "verify", "--store", str(tmp_path / "backup")],
+                          cwd=ROOT, env=env, capture_output=True, text=True).returncode == 0
+    after = answers(store_dir)
+    held = answers(tmp_path / "backup")
+    assert held in (before, after)

@@ -115,3 +115,66 @@ def test_a_damaged_catalog_page_is_found_by_sqlites_integrity_check(store_dir):
     path.write_bytes(bytes(data))
     found = _problems(store_dir)
     assert found and all(f.check == "catalog" for f in found)
+
+
+def test_a_truncated_index_file_is_found_and_repair_rebuilds_it(store_dir):
+    """Half of index.faiss cut off: its checksum no longer matches (BLAKE2b, recorded at publishing) and FAISS
+    cannot read it; --repair publishes a full build whose index FAISS reads with every item."""
+    with open_plain_store(store_dir) as store:
+        gen = generations.require_current(store)
+    path = gen.path / generations.INDEX_FILE
+    path.write_bytes(path.read_bytes()[: path.stat().st_size // 2])
+    found = _problems(store_dir)
+    assert {(f.check, f.repair) for f in found} >= {("generation", "generation")}
+    assert any(f.check == "index" and "cannot be read" in f.message for f in found)
+    with open_plain_store(store_dir) as store:
+        repair_store(store, found)
+        new = generations.require_current(store)
+        assert new.load_index().ntotal == len(new.load_items()[0]) == gen.meta["indexed"]
+    assert _problems(store_dir) == []
+
+
+def test_a_pointer_to_nothing_is_found_and_repair_publishes_a_generation(store_dir):
+    (store_dir / "generations" / "CURRENT").write_text("g-19700101-000000-000000\n")
+    found = _problems(store_dir)
+    assert [(f.check, f.repair) for f in found] == [("generation", "generation")]
+    assert "not there" in found[0].message
+    with open_plain_store(store_dir) as store:
+        repair_store(store, found)
+        assert generations.require_current(store).load_index().ntotal > 0
+    assert _problems(store_dir) == []
+
+
+def test_a_missing_model_file_is_named_and_left_for_training(store_dir, run_cli):
+    """A model is made by training, not derived: verify names the missing weights and what to run, and
+    --repair (which may only make again what is derived) leaves it and exits with 1."""
+    with open_plain_store(store_dir) as store:
+        model = generations.require_current(store).meta["model"]
+    (store_dir / "models" / model / "model.pt").unlink()
+    found = _problems(store_dir)
+    assert [(f.check, f.repair, f.subject) for f in found] == [("model", None, model)]
+    assert "no model.pt" in found[0].message and "--retrain always" in found[0].message
+    run_cli("verify", "--store", store_dir, "--repair", check_exit=1)
+
+
+def test_an_orphaned_manifest_record_is_found(service_store, tmp_path, run_cli):
+    """A manifest line recording a move the catalog never saw (a file still in its place, listed 'ok'):
+    verify names it, and --repair, which marks only moves that did happen on disk, leaves it named."""
+    store_dir = service_store.copy_with_archive("verify-manifest")
+    quarantine = tmp_path / "q"
+    run_cli("quarantine", "--store", store_dir, "--to", quarantine, "--apply", check_exit=0)
+    assert _problems(store_dir) == []
+    (manifest_path,) = quarantine.glob("manifest-*.jsonl")
+    with open_plain_store(store_dir) as store:
+        moved = {r["id"] for r in store.catalog.quarantined_files()}
+        present = next(i for i, m in sorted(store.catalog.image_meta().items()) if i not in moved)
+        path = store.catalog.image_meta()[present]["path"]
+    with open(manifest_path, "a") as fh:
+        fh.write(json.dumps({"record": "intent", "seq": 9999, "file_id": present, "from": path,
+                             "to": str(quarantine / "planted.jpg"), "hash": "0" * 64}) + "\n")
+        fh.write(json.dumps({"record": "moved", "seq": 9999, "method": "link"}) + "\n")
+    found = _problems(store_dir)
+    assert [(f.check, f.repair) for f in found] == [("quarantine", "quarantine-marks")]
+    assert f"file {present}" in found[0].message
+    run_cli("verify", "--store", store_dir, "--repair", check_exit=1)
+    assert _problems(store_dir)  # still named: the file never moved

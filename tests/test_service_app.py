@@ -5,6 +5,7 @@ refusal to listen beyond loopback without a key.
 """
 
 import json
+import time
 
 import pytest
 
@@ -161,3 +162,59 @@ def test_settings_listing_never_shows_the_key(store_dir, capsys, monkeypatch):
     assert rows["api_key"]["value"] == "(set)" and API_KEY not in out
     monkeypatch.setenv("NEARSIGHT_API_KEY", "short")
     assert cli_main(["settings", "--store", str(store_dir)]) == 2
+
+
+# -- clients that misbehave (service/guard.py) -----------------------------------------------------
+
+def test_a_token_bucket_allows_its_rate_then_says_when_to_come_back():
+    """The token bucket by hand (common practice; RFC 2697's meter refills the same way): 3 a minute is a
+    full bucket of 3, then one token every 20 s; an empty bucket's Retry-After is the whole seconds until
+    the next token; clients and kinds have buckets of their own."""
+    from nearsight.service.guard import RateLimiter, TooManyRequestsError
+
+    now = [1000.0]
+    limiter = RateLimiter({"uploads": 3, "writes": 0}, clock=lambda: now[0])
+    for _ in range(3):
+        limiter.take("10.0.0.1", "uploads")
+    with pytest.raises(TooManyRequestsError) as refused:
+        limiter.take("10.0.0.1", "uploads")
+    assert refused.value.retry_after == 20 and refused.value.http_status == 429
+    limiter.take("10.0.0.2", "uploads")  # another client
+    for _ in range(50):
+        limiter.take("10.0.0.1", "writes")  # 0: no limit
+    now[0] += 10.0
+    with pytest.raises(TooManyRequestsError) as refused:
+        limiter.take("10.0.0.1", "uploads")
+    assert refused.value.retry_after == 10
+    now[0] += 10.0
+    limiter.take("10.0.0.1", "uploads")
+
+
+def test_the_decode_gate_never_lets_more_than_its_limit_in_and_refuses_after_its_wait():
+    import threading
+
+    from nearsight.service.guard import BusyError, DecodeGate
+
+    gate, inside, most, lock = DecodeGate(2, wait_s=5.0), [0], [0], threading.Lock()
+
+    def decode():
+        with gate.place():
+            with lock:
+                inside[0] += 1
+                most[0] = max(most[0], inside[0])
+            time.sleep(0.05)
+            with lock:
+                inside[0] -= 1
+
+    threads = [threading.Thread(target=decode) for _ in range(8)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert most[0] == 2
+    quick = DecodeGate(1, wait_s=0.05)
+    with quick.place():
+        with pytest.raises(BusyError) as busy:
+            with quick.place():
+                pass
+    assert busy.value.http_status == 503 and busy.value.retry_after >= 1

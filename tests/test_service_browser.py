@@ -151,6 +151,13 @@ def test_the_page_fits_a_phone_width(browser, live_server):
             shot = artifacts_dir() / f"review-phone-{view}.png"
             driver.save_screenshot(str(shot))
             print(f"screenshot: {shot}")
+        # The pair to judge takes one screen: one picture at a time, in the same place; T shows the other.
+        shown = ("return Array.from(document.querySelectorAll('#judge-side > figure'))"
+                 ".map((f) => getComputedStyle(f).display !== 'none');")
+        _wait(lambda: driver.execute_script(shown) == [True, False], what="one picture of the pair")
+        _press(driver, "t")
+        _wait(lambda: driver.execute_script(shown) == [False, True], what="the other picture in its place")
+        _press(driver, "t")
     finally:
         driver.set_window_size(1280, 900)
 

@@ -283,6 +283,7 @@
           el("span", { class: "muted", text: `${g.size} files · ${bytes(g.reclaimable_bytes)} reclaimable` }),
         ]),
         thumbs,
+        el("span", { class: "open", "aria-hidden": "true", text: "Open the group →" }),
       ]);
       list.append(el("li", {}, [card]));
     }
@@ -500,10 +501,18 @@
     $("judge-side").classList.toggle("fit", fit);
     for (const button of document.querySelectorAll(".fit-toggle")) button.setAttribute("aria-pressed", String(fit));
   }
+  // On a narrow screen one picture at a time, in the same place: T (or the button) shows the other.
+  function toggleSwap() {
+    const showB = $("side-by-side").classList.toggle("show-b");
+    $("judge-side").classList.toggle("show-b", showB);
+    for (const button of document.querySelectorAll(".swap-toggle")) button.setAttribute("aria-pressed", String(showB));
+  }
+  $("pair-swap").addEventListener("click", toggleSwap);
+  $("judge-swap").addEventListener("click", toggleSwap);
   $("pair-fit").addEventListener("click", toggleFit);
   $("judge-fit").addEventListener("click", toggleFit);
 
-  // The same keys in both views where a pair is shown: S, D, N, P, F (and Esc back to a group).
+  // The same keys in both views where a pair is shown: S, D, N, P, F, T (and Esc back to a group).
   const PAIR_KEYS = {
     pair: { s: () => mark("same"), d: () => mark("different"), n: () => movePair(1), p: () => movePair(-1) },
     judge: { s: () => judge("same"), d: () => judge("different"), n: () => moveJudge(1), p: () => moveJudge(-1) },
@@ -518,6 +527,7 @@
     const act = PAIR_KEYS[view][key];
     if (act) { event.preventDefault(); act(); }
     else if (key === "f") { event.preventDefault(); toggleFit(); }
+    else if (key === "t") { event.preventDefault(); toggleSwap(); }
     else if (key === "escape" && view === "pair" && state.group) {
       location.hash = "#/group/" + encodeURIComponent(state.group.gid);
     }
