@@ -22,6 +22,9 @@ ERROR_STATUSES = {
     "413": "The upload is larger than max_upload_bytes",
     "415": "The body is not of a media type this endpoint takes",
     "422": "The upload is not a readable image, or has more pixels than allowed",
+    "429": "This client sent more uploads or writes in the last minute than allowed (rate_uploads, rate_writes); "
+           "the header Retry-After says in how many seconds to try again",
+    "503": "The server is decoding as many uploads as it may at once (max_decodes); try again after Retry-After",
 }
 
 
@@ -414,7 +417,7 @@ def _paths() -> dict:
                                    "threshold": THRESHOLD.schema(),
                                    "precision": PRECISION.schema()}}}}},
             "responses": {"200": _json(_ref("SearchResult"), "Neighbours of the uploaded image"),
-                          **_errors("400", *read_errors, "409", "413", "415", "422")}}},
+                          **_errors("400", *read_errors, "409", "413", "415", "422", "429", "503")}}},
         "/v1/check": {"post": {
             "operationId": "check", "summary": "New material against the archive: copy, similar, new or unreadable",
             "description": "The same answer as `nearsight check`, for a batch of uploads: send each image as a "
@@ -431,7 +434,7 @@ def _paths() -> dict:
                     "additionalProperties": {"type": "string", "format": "binary"},
                     "properties": {"threshold": THRESHOLD.schema(), "precision": PRECISION.schema()}}}}},
             "responses": {"200": _json(_ref("CheckResult"), "A verdict for each upload"),
-                          **_errors("400", *read_errors, "409", "413", "415")}}},
+                          **_errors("400", *read_errors, "409", "413", "415", "429", "503")}}},
         "/v1/images/{image_id}": {"get": {
             "operationId": "image", "summary": "One catalogued image file", "parameters": [IMAGE_ID],
             "responses": {"200": _json(_ref("Image"), "The image"), **_errors(*read_errors, "404")}}},
@@ -515,7 +518,7 @@ def _paths() -> dict:
                 "requestBody": {"required": True, "content": {"application/json": {
                     "schema": {"oneOf": [_ref("VerdictIn"), _ref("VerdictsIn")]}}}},
                 "responses": {"201": _json(_ref("VerdictsStored"), "Stored"),
-                              **_errors("400", "401", "403", "404", "415")}},
+                              **_errors("400", "401", "403", "404", "415", "429")}},
         },
         "/v1/keepers": {"post": {
             "operationId": "pick_keeper",
@@ -526,7 +529,8 @@ def _paths() -> dict:
                 "type": "object", "required": ["file"],
                 "properties": {"file": {"type": "integer", "minimum": 1}, "author": {"type": "string", "maxLength": 200}},
                 "additionalProperties": False}}}},
-            "responses": {"201": _json(_ref("KeeperPick"), "Stored"), **_errors("400", "401", "403", "404", "415")}}},
+            "responses": {"201": _json(_ref("KeeperPick"), "Stored"),
+                          **_errors("400", "401", "403", "404", "415", "429")}}},
         "/v1/keepers/{image_id}": {"delete": {
             "operationId": "drop_keeper",
             "summary": "Forget a person's choice of this file: the keeper rules choose again (needs the API key)",
@@ -534,7 +538,7 @@ def _paths() -> dict:
             "responses": {"200": _json({"type": "object", "required": ["file", "removed"],
                                         "properties": {"file": {"type": "integer"}, "removed": {"type": "integer"}}},
                                        "How many picks of the file were forgotten"),
-                          **_errors("401", "403", "404")}}},
+                          **_errors("401", "403", "404", "429")}}},
     }
 
 

@@ -150,8 +150,10 @@ class ServerProcess:
 
     def start(self, timeout: float = 60.0) -> "ServerProcess":
         env = {k: v for k, v in os.environ.items() if not k.startswith("NEARSIGHT_")}
+        # No per-client rate limits unless a test sets them (tests/test_service_guard.py): every test client
+        # is 127.0.0.1, and the load and property-based tests send hundreds of uploads a minute.
         env.update({"PYTHONPATH": str(ROOT), "NEARSIGHT_API_KEY": API_KEY, "NEARSIGHT_SERVE_RELOAD_S": "0.2",
-                    "NEARSIGHT_WORKERS": "1"})
+                    "NEARSIGHT_WORKERS": "1", "NEARSIGHT_RATE_UPLOADS": "0", "NEARSIGHT_RATE_WRITES": "0"})
         env.update(self.env)
         self.log_path = self.log_path or self.store.parent / f"{self.store.name}-server.log"
         log = open(self.log_path, "wb")
