@@ -1,9 +1,9 @@
 """A soak on loopback: many clients at once, good and bad, against a real `nearsight serve`.
 
-Each client thread loops for the whole run over a mix: good requests (GET /v1/status, GET /v1/groups,
+Each client thread loops for the whole run, pausing about a quarter of a second between requests, over a mix: good requests (GET /v1/status, GET /v1/groups,
 POST /v1/search with a small JPEG), an oversized upload (over max_upload_bytes: 413), a garbage upload
-(random bytes: 415 or 422), and a slow sender that trickles a request's body a few bytes at a time. The
-server's resident memory (VmRSS from /proc) is sampled all along. What must hold: no 5xx, every good
+(random bytes: 415 or 422); two clients are slow senders that trickle a request's body a few bytes at a time. The
+server's resident memory (VmRSS from /proc) is sampled all along. Two of the clients only ever trickle. What must hold: no 5xx, every good
 request answered, memory within a stated bound, and the good requests' p99 latency within 3x of the same
 requests on the idle server (measured first, in the same run).
 
@@ -100,8 +100,11 @@ def _slow_sender(host, port, stop: threading.Event) -> None:
 
 
 def soak(host: str, port: int, *, clients: int, seconds: float, image: bytes, oversized: int,
-         pid: int | None = None) -> dict:
-    """Run the mix; returns statuses per kind, good latencies, unanswered good requests and peak RSS (MiB)."""
+         pid: int | None = None, pause: float = 0.25, slow_clients: int = 2) -> dict:
+    """Run the mix; returns statuses per kind, good latencies, unanswered good requests and peak RSS (MiB).
+    Each client waits `pause` seconds (0.5 to 1.5 times, at random) between requests, as people and
+    pipelines do: the measure is what the bad requests do to the good ones, not a saturated server. The first
+    `slow_clients` clients only trickle requests (a few bytes every half second)."""
     tally, stop = Tally(), threading.Event()
     rng = random.Random(0)
     peak = [0.0]
@@ -109,25 +112,27 @@ def soak(host: str, port: int, *, clients: int, seconds: float, image: bytes, ov
     def client(n: int) -> None:
         local = random.Random(n)
         while not stop.is_set():
+            if n < slow_clients:  # a stalled client: one trickling request after another, all run long
+                _slow_sender(host, port, stop)
+                tally.add("slow", 0)
+                continue
             roll = local.random()
             try:
-                if roll < 0.75:
+                if roll < 0.8:
                     kind = GOOD[local.randrange(3)]
                     status, ms = _good(host, port, kind, image)
                     tally.add(kind, status, ms)
-                elif roll < 0.85:
+                elif roll < 0.9:
                     tally.add("oversized", _request(host, port, "POST", "/v1/search", b"\0" * oversized,
                                                     {"Content-Type": "image/jpeg"}))
-                elif roll < 0.95:
+                else:
                     tally.add("garbage", _request(host, port, "POST", "/v1/search", rng.randbytes(50_000),
                                                   {"Content-Type": "image/jpeg"}))
-                else:
-                    _slow_sender(host, port, stop)
-                    tally.add("slow", 0)
             except (OSError, http.client.HTTPException):
-                if roll < 0.75:
+                if roll < 0.8:
                     with tally.lock:
                         tally.unanswered += 1
+            stop.wait(pause * local.uniform(0.5, 1.5))
 
     def watch_memory() -> None:
         while not stop.is_set() and pid:
@@ -162,6 +167,8 @@ def p99(values: list[float]) -> float:
 
 
 def idle_latency(host: str, port: int, image: bytes, rounds: int = 30) -> list[float]:
+    for kind in GOOD * 3:  # warm up (the first search loads what it needs), not measured
+        _good(host, port, kind, image)
     return [_good(host, port, kind, image)[1] for _ in range(rounds) for kind in GOOD]
 
 
