@@ -597,8 +597,25 @@ class Catalog:
         return [dict(r) for r in rows]
 
     def verdicts_version(self) -> int:
-        """The newest verdict's id (0 without any): verdicts are only ever added, so it changes with each."""
-        return self.conn.execute("SELECT COALESCE(MAX(id), 0) FROM verdicts").fetchone()[0]
+        """A number that changes with every verdict added or taken back: the newest verdict's id (0 without
+        any) plus 2**40 for each taking back (`remove_verdicts`), so it never repeats although a removed
+        newest id may be given again."""
+        newest = self.conn.execute("SELECT COALESCE(MAX(id), 0) FROM verdicts").fetchone()[0]
+        row = self.conn.execute("SELECT value FROM meta WHERE key = 'verdicts_removed'").fetchone()
+        return newest + (int(row[0]) if row else 0) * 2**40
+
+    def remove_verdicts(self, ids) -> int:
+        """Take back verdicts by id (a person's undo, right after giving them); returns how many were there.
+        The verdicts before them on the same pairs count again."""
+        ids = sorted({int(i) for i in ids})
+        if not ids:
+            return 0
+        with self.transaction() as conn:
+            removed = conn.execute(f"DELETE FROM verdicts WHERE id IN ({','.join('?' * len(ids))})", ids).rowcount
+            if removed:
+                conn.execute("INSERT INTO meta(key, value) VALUES ('verdicts_removed', '1') ON CONFLICT(key) "
+                             "DO UPDATE SET value = CAST(value AS INTEGER) + 1")
+        return removed
 
     def latest_verdicts_among(self, file_ids) -> list[dict]:
         """The latest verdict per content pair whose two contents both belong to the given files

@@ -125,13 +125,20 @@ def explain_group(store, group: Group, verdicts, *, rules: KeeperRules | None = 
     facts = GroupFacts(group.gid, group.tier, planned.keeper, planned.keeper_reason,
                        planned.keeper_path in dict(rules.picks))
     for m in [keeper, *others]:
-        row, meta = rows[m.id], m.meta
-        path = str(Path(row["root"]) / row["relpath"])
-        what, why = action.get(m.id, ("stay", "not in the plan"))
-        facts.members.append(MemberFacts(
-            m.id, tiers.get(m.id, "same-bytes"), path, str(Path(row["relpath"]).parent) if "/" in row["relpath"] else ".", meta.width, meta.height,
-            row["size"] if row["size"] is not None else meta.file_size, meta.format, row["captured"], row["camera"],
-            bool(row["icc"]), _iso(row["mtime_ns"] / 1e9), what, why,
-            1.0 if m.id == planned.keeper or identical(m) else round(float(similarity.get(m.id, m.similarity)), 6),
-            None if m.id == planned.keeper else _match(checks.get(m.id), identical(m))))
+        is_keeper = m.id == planned.keeper
+        score = 1.0 if is_keeper or identical(m) else round(float(similarity.get(m.id, m.similarity)), 6)
+        facts.members.append(_member(m, rows[m.id], group.tier if is_keeper else tiers[m.id],
+                                     action.get(m.id, ("stay", "not in the plan")), score,
+                                     None if is_keeper else _match(checks.get(m.id), identical(m))))
     return facts
+
+
+def _member(m, row: dict, tier: str, action: tuple[str, str], similarity: float, match: dict | None) -> MemberFacts:
+    """One member's facts: the generation's pixels and format, the catalog's file and origin as they are now."""
+    relpath = row["relpath"]
+    return MemberFacts(
+        id=m.id, tier=tier, path=str(Path(row["root"]) / relpath),
+        folder=str(Path(relpath).parent) if "/" in relpath else ".", width=m.meta.width, height=m.meta.height,
+        file_size=row["size"] if row["size"] is not None else m.meta.file_size, format=m.meta.format,
+        captured=row["captured"], camera=row["camera"], icc=bool(row["icc"]), modified=_iso(row["mtime_ns"] / 1e9),
+        action=action[0], why=action[1], similarity=similarity, match=match)

@@ -132,8 +132,8 @@ class KeeperRules:
     def sort_key(self, meta: ImageMeta) -> tuple:
         """Smaller wins: the latest pick, always kept, then folder rank, then format rank, then the default
         policy."""
-        return (-self._picked.get(meta.path, 0.0), not self.always_kept(meta.path), self.folder_rank(meta.path), self.format_rank(meta),
-                *keeper_key(meta))
+        return (-self._picked.get(meta.path, 0.0), not self.always_kept(meta.path), self.folder_rank(meta.path),
+                self.format_rank(meta), *keeper_key(meta))
 
     def reason(self, keeper: ImageMeta, others: Iterable[ImageMeta]) -> str:
         """Why `keeper` was chosen over `others`, in plain words: the rule that decided against the member

@@ -202,8 +202,8 @@ def _group_section(group: Group, facts, pictures: Pictures, thumbnail) -> str:
             is_keeper = m.id == keeper
             badge = ('<span class="badge role">keeper</span>' if is_keeper
                      else f'<span class="badge">{esc(m.tier)}</span>')
-            lines = [] if is_keeper else [f"similarity {m.similarity:.3f}",
-                                          f'<span class="act">{esc(_ACTIONS.get(m.action, m.action))}: {esc(m.why)}</span>']
+            act = f'<span class="act">{esc(_ACTIONS.get(m.action, m.action))}: {esc(m.why)}</span>'
+            lines = [] if is_keeper else [f"similarity {m.similarity:.3f}", act]
             if m.match is not None and not is_keeper:
                 lines.append(f'<span class="note">{esc(m.match["reason"])}</span>')
             box = None if is_keeper or m.match is None else m.match["member_box"]
@@ -332,11 +332,13 @@ def write_check_report(answers: list, out_path: Path, *, read_given: Callable[[s
                 _figure("member", pictures.add(f"given-{a.path}", lambda p=a.path: read_given(p)),
                         os.path.basename(a.path), '<span class="badge">new</span>', [], [], None, a.path)
                 for a in new)
-            yield f'<section id="new"><h2>New <span>&middot; {len(new)} files</span></h2><div class="sheet">{cards}</div></section>'
+            yield (f'<section id="new"><h2>New <span>&middot; {len(new)} files</span></h2>'
+                   f'<div class="sheet">{cards}</div></section>')
         bad = [a for a in answers if a.verdict == "unreadable"]
         if bad:
             items = "".join(f"<li>{esc(a.path)}: {esc((a.error or {}).get('message', ''))}</li>" for a in bad)
-            yield f'<section id="unreadable"><h2>Unreadable <span>&middot; {len(bad)} files</span></h2><ul class="plain">{items}</ul></section>'
+            yield (f'<section id="unreadable"><h2>Unreadable <span>&middot; {len(bad)} files</span></h2>'
+                   f'<ul class="plain">{items}</ul></section>')
 
     _write(out_path, title, {**{f"{v}": n for v, n in counts.items()}, **summary}, sections)
     log.debug("wrote check report of %d files to %s", len(answers), out_path)

@@ -414,7 +414,8 @@ def _judge(
         return Verification(False, **found, reason="the query's footprint falls outside the candidate")
     back = np.linalg.inv(np.vstack([mapping, [0.0, 0.0, 1.0]]))[:2]  # candidate pixels -> query pixels
     return Verification(True, **found, box=box, query_box=footprint(back, candidate.size, query.size),
-                        query_size=tuple(query.size), candidate_size=tuple(candidate.size), reason=f"{inliers} of {n} matches agree on one transform")
+                        query_size=tuple(query.size), candidate_size=tuple(candidate.size),
+                        reason=f"{inliers} of {n} matches agree on one transform")
 
 
 def to_pixels(transform: np.ndarray, query: Features, candidate: Features) -> np.ndarray:

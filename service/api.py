@@ -318,6 +318,7 @@ def review_pairs():
 
 # -- verdicts ---------------------------------------------------------------------------------------
 VERDICT_FIELDS = ("id", "file_a", "file_b", "verdict", "origin", "author", "note", "created_at")
+MAX_UNDO = 1000  # verdicts taken back in one request (a group's bulk verdict)
 
 
 @api.get("/v1/verdicts")
@@ -327,6 +328,15 @@ def list_verdicts():
     latest = state().store().catalog.latest_verdicts()[::-1]
     return jsonify(total=len(latest), offset=offset, limit=limit,
                    verdicts=[{k: v.get(k) for k in VERDICT_FIELDS} for v in latest[offset:offset + limit]])
+
+
+@api.delete("/v1/verdicts")
+def remove_verdicts():
+    """Take back verdicts by id (`ids=1,2,3`): the review page's undo of what it just stored. The verdicts
+    before them on the same pairs count again, at the next read. Needs the API key."""
+    ids = params.id_list(request.args, "ids", MAX_UNDO)
+    removed = state().store().catalog.remove_verdicts(ids)
+    return jsonify(removed=removed, asked=len(ids))
 
 
 @api.post("/v1/verdicts")

@@ -36,7 +36,7 @@ GENERATION_HEADER = "X-Nearsight-Generation"
 # Endpoints anyone may call: liveness and readiness probes, and the review page's own files
 # (they hold no data; every call the page makes for data carries the key when one is needed).
 PUBLIC_ENDPOINTS = {"api.healthz", "api.readyz", "review.page", "static"}
-WRITE_ENDPOINTS = {"api.add_verdicts", "api.pick_keeper", "api.drop_keeper"}
+WRITE_ENDPOINTS = {"api.add_verdicts", "api.remove_verdicts", "api.pick_keeper", "api.drop_keeper"}
 
 
 @dataclass
@@ -145,7 +145,8 @@ def _authorize() -> None:
 def _limit() -> None:
     """Per-client rate limits on uploads and writes (service/guard.py), after the key check so that a
     request refused for its key costs the client nothing."""
-    kind = "uploads" if request.endpoint in UPLOAD_ENDPOINTS else "writes" if request.endpoint in WRITE_ENDPOINTS else None
+    endpoint = request.endpoint
+    kind = "uploads" if endpoint in UPLOAD_ENDPOINTS else "writes" if endpoint in WRITE_ENDPOINTS else None
     if kind and request.method != "OPTIONS":
         state().limiter.take(request.remote_addr or "?", kind)
 

@@ -519,15 +519,30 @@ def _paths() -> dict:
                     "schema": {"oneOf": [_ref("VerdictIn"), _ref("VerdictsIn")]}}}},
                 "responses": {"201": _json(_ref("VerdictsStored"), "Stored"),
                               **_errors("400", "401", "403", "404", "415", "429")}},
+            "delete": {
+                "operationId": "remove_verdicts",
+                "summary": "Take back verdicts by id, e.g. the review page's undo (needs the API key)",
+                "description": "The verdicts before them on the same pairs count again at the next read.",
+                "parameters": [{"name": "ids", "in": "query", "required": True, "style": "form", "explode": False,
+                                "description": "1 to 1,000 verdict ids, separated by commas",
+                                "schema": {"type": "array", "items": {"type": "integer", "minimum": 1},
+                                           "minItems": 1, "maxItems": 1000}}],
+                "responses": {"200": _json({"type": "object", "required": ["removed", "asked"],
+                                            "properties": {"removed": {"type": "integer"},
+                                                           "asked": {"type": "integer"}}},
+                                           "How many of the verdicts asked for were there and are gone"),
+                              **_errors("400", "401", "403", "429")}},
         },
         "/v1/keepers": {"post": {
             "operationId": "pick_keeper",
-            "summary": "Keep this file in its group: a person's choice, before every other keeper rule (needs the API key)",
+            "summary": "Keep this file in its group: a person's choice, before every other keeper rule "
+                       "(needs the API key)",
             "description": "The quarantine plan, the keep list and the review page keep it from now on, whatever "
                            "generation groups it; the latest pick among a group's files wins. Nothing moves.",
             "requestBody": {"required": True, "content": {"application/json": {"schema": {
                 "type": "object", "required": ["file"],
-                "properties": {"file": {"type": "integer", "minimum": 1}, "author": {"type": "string", "maxLength": 200}},
+                "properties": {"file": {"type": "integer", "minimum": 1},
+                               "author": {"type": "string", "maxLength": 200}},
                 "additionalProperties": False}}}},
             "responses": {"201": _json(_ref("KeeperPick"), "Stored"),
                           **_errors("400", "401", "403", "404", "415", "429")}}},

@@ -37,6 +37,18 @@ def int_arg(source: Mapping[str, Any], name: str, default: int | None, lo: int, 
     return value
 
 
+def id_list(source: Mapping[str, Any], name: str, most: int) -> list[int]:
+    """A comma-separated list of 1 to `most` ids (positive whole numbers) from a query string."""
+    raw = str(source.get(name) or "").strip()
+    try:
+        ids = [int(part) for part in raw.split(",") if part.strip()]
+    except ValueError:
+        raise UsageError(f"{name} must be ids separated by commas, not {raw[:40]!r}") from None
+    if not 1 <= len(ids) <= most or any(not 0 < i <= MAX_ID for i in ids):
+        raise UsageError(f"{name} must list 1 to {most} ids, each a positive whole number")
+    return ids
+
+
 def bool_arg(source: Mapping[str, Any], name: str, default: bool = False) -> bool:
     """true / false (also 1 / 0, yes / no), any case; absent or empty is `default`."""
     raw = source.get(name)

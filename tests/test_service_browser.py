@@ -279,3 +279,41 @@ def test_a_group_shows_metadata_side_by_side_and_a_click_changes_the_keeper(brow
         assert region["width"] * region["height"] >= 0.7 * image["width"] * image["height"], (frame, region, image)
     assert "keypoints agree" in driver.find_element("id", "pair-match").text
     _no_overflow(driver, "pair", "review-pair-region")
+
+
+@pytest.fixture
+def bulk_server(service_store):
+    """A server of its own: the verdicts clicked below reach no other test."""
+    process = ServerProcess(service_store.copy("browser-bulk")).start()
+    yield process
+    process.stop()
+
+
+def test_a_whole_group_is_judged_with_one_click_and_taken_back_with_undo(browser, bulk_server):
+    """"This group is wrong" stores "different" for each copy against the keeper (read back from the catalog
+    with sqlite3), the group splits, and Undo takes exactly those verdicts back: the group is whole again."""
+    driver = browser
+    client = bulk_server.client()
+    groups = client.get("/v1/groups?limit=200").json()["groups"]
+    group = next(g for g in groups if any(m["path"].endswith("/astronaut-smaller.jpg") for m in g["members"]))
+    driver.get(bulk_server.base + "/#key=" + API_KEY)
+    _wait(lambda: driver.find_element("id", "view-judge").is_displayed(), what="the first view")
+    driver.get(f"{bulk_server.base}/#/group/{group['gid']}")
+    _wait(lambda: driver.find_elements("css selector", "#pair-list li.keeper"), what="the group")
+    driver.find_element("id", "group-wrong").click()
+    _wait(lambda: driver.find_element("id", "undo-bar").is_displayed(), what="the undo bar")
+
+    def stored():
+        with Catalog(bulk_server.store / "catalog.sqlite") as catalog:
+            return sorted((v["verdict"], v["file_a"], v["file_b"]) for v in catalog.latest_verdicts())
+
+    judged = stored()
+    assert len(judged) == group["size"] - 1 and {v for v, _, _ in judged} == {"different"}
+    assert all(g["gid"] != group["gid"] for g in client.get("/v1/groups?limit=200").json()["groups"])  # split
+
+    driver.find_element("id", "undo-button").click()
+    _wait(lambda: not driver.find_element("id", "undo-bar").is_displayed(), what="the undo to finish")
+    assert stored() == []
+    _wait(lambda: driver.find_elements("css selector", "#pair-list li.keeper"), what="the group again")
+    assert any(g["gid"] == group["gid"] for g in client.get("/v1/groups?limit=200").json()["groups"])
+    client.close()

@@ -155,3 +155,13 @@ def test_the_catalog_expands_the_latest_verdict_to_every_file_of_each_content(tm
         assert catalog.verdicts_version() == 2
         verdicts = PairVerdicts.from_rows(rows)
         assert verdicts.apart_from(3) == {1, 2} and not verdicts.said_same(1, 3)
+        # Taking the later verdict back (a person's undo) brings the earlier one back, and the version moves on
+        # even when SQLite gives the removed id to the next verdict (so no cache can mistake the two).
+        seen = {catalog.verdicts_version()}
+        assert catalog.remove_verdicts([2]) == 1
+        assert [(r["verdict"], r["file_a"], r["file_b"]) for r in catalog.latest_verdict_files()] == [
+            ("same", 1, 3), ("same", 2, 3)]
+        assert catalog.verdicts_version() not in seen
+        seen.add(catalog.verdicts_version())
+        (again,) = catalog.add_verdicts([{"file_a": 3, "file_b": 2, "verdict": "different"}], origin="api")
+        assert again == 2 and catalog.verdicts_version() not in seen

@@ -381,6 +381,60 @@
     await send();
   }
 
+  // A verdict on every pair of the group at once (each copy against the keeper), with an undo that takes
+  // those verdicts back (DELETE /v1/verdicts) while the bar shows.
+  let undoTimer = null;
+  function offerUndo(text, ids, gid) {
+    $("undo-text").textContent = text;
+    $("undo-bar").hidden = false;
+    clearTimeout(undoTimer);
+    undoTimer = setTimeout(() => { $("undo-bar").hidden = true; }, 30000);
+    $("undo-button").onclick = async () => {
+      try {
+        const body = await api("/v1/verdicts?ids=" + ids.join(","), { method: "DELETE" });
+        $("undo-bar").hidden = true;
+        toast(`Taken back: ${body.removed} verdicts.`);
+        state.group = null;
+        const target = "#/group/" + encodeURIComponent(gid);
+        if (location.hash === target) route(); else location.hash = target;
+      } catch (e) {
+        toast("Not taken back: " + e.message, true);
+      }
+    };
+  }
+
+  async function judgeGroup(verdict) {
+    if (!state.group) return;
+    const gid = state.group.gid;
+    // Files with the keeper's bytes are one content: there is nothing to judge between them.
+    const pairs = state.pairs.filter(([, m]) => m.tier !== "same-bytes")
+      .map(([k, m]) => ({ file_a: k.id, file_b: m.id, verdict: verdict }));
+    if (!pairs.length) { toast("Every copy here has the keeper's bytes: there is nothing to judge.", true); return; }
+    const send = async () => {
+      try {
+        const body = await api("/v1/verdicts", {
+          method: "POST", headers: { "Content-Type": "application/json" },
+          body: JSON.stringify({ verdicts: pairs, origin: "review" }),
+        });
+        const ids = body.verdicts.map((v) => v.id);
+        state.group = null;
+        if (verdict === "same") {
+          offerUndo(`Marked all ${ids.length} copies the same picture as the keeper.`, ids, gid);
+          renderGroup(gid);
+        } else {
+          offerUndo(`Marked ${ids.length} copies different from the keeper: the group is split.`, ids, gid);
+          location.hash = "#/groups";
+        }
+      } catch (e) {
+        toast("Not stored: " + e.message, true);
+        if (e.status === 401 || e.status === 403) state.retry = send;
+      }
+    };
+    await send();
+  }
+  $("group-same").addEventListener("click", () => judgeGroup("same"));
+  $("group-wrong").addEventListener("click", () => judgeGroup("different"));
+
   function memberCard(gid, m, index, keeper) {
     const img = el("img");
     showImage(img, thumb(m.id), basename(m.path));
