@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import Sequence
 
 from .errors import UsageError
+from .fsutil import human_bytes
 from .settings import describe as describe_settings
 from .settings import load_settings
 from .store import ENV_STORE, Store, resolve_store_path
@@ -24,15 +25,6 @@ SETTING_FLAGS = ("workers", "train_minutes", "near_threshold", "similar_threshol
 
 def print_json(obj) -> None:
     print(json.dumps(obj, sort_keys=True))
-
-
-def human_bytes(n: int) -> str:
-    size = float(n)
-    for unit in ("B", "KB", "MB", "GB", "TB"):
-        if size < 1024 or unit == "TB":
-            return f"{size:.0f} {unit}" if unit == "B" else f"{size:.1f} {unit}"
-        size /= 1024
-    return f"{n} B"
 
 
 def print_table(rows: Sequence[tuple[str, object]]) -> None:

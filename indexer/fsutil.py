@@ -17,6 +17,17 @@ FILE_MODE = 0o644
 _CHUNK = 1 << 20
 
 
+def human_bytes(n: int) -> str:
+    """1536 -> '1.5 KiB': binary units (IEC 80000-13), the one way the CLI, the reports and the review page
+    write a size."""
+    value = float(n)
+    for unit in ("B", "KiB", "MiB", "GiB", "TiB"):
+        if abs(value) < 1024 or unit == "TiB":
+            return f"{value:.0f} {unit}" if unit == "B" else f"{value:.1f} {unit}"
+        value /= 1024
+    return f"{n} B"
+
+
 def fsync_dir(path: Path) -> None:
     fd = os.open(path, os.O_RDONLY | os.O_DIRECTORY)
     try:

@@ -29,7 +29,7 @@ from typing import Callable, Iterable, Sequence
 from PIL import Image
 
 from .errors import NearsightError
-from .fsutil import atomic_write_text
+from .fsutil import atomic_write_text, human_bytes
 from .groups import Group, reclaimable_bytes, summarize
 
 log = logging.getLogger(__name__)
@@ -49,14 +49,14 @@ h1 { font-size: 1.4rem; margin: 0 0 .75rem; }
 .summary div { background: #fff; border: 1px solid var(--line); border-radius: 6px; padding: .5rem .75rem;
                min-width: 0; }
 .summary dt { color: var(--muted); font-size: .8rem; }
-.summary dd { margin: 0; font-size: 1.1rem; font-weight: 600; overflow-wrap: anywhere; }
+.summary dd { margin: 0; font-size: 1.1rem; font-weight: 600; overflow-wrap: break-word; }
 .summary div.wide { grid-column: 1 / -1; }
 .summary div.wide dd { font-size: .9rem; font-weight: 400; }
 section { background: #fff; border: 1px solid var(--line); border-radius: 8px; padding: .75rem;
           margin: 0 0 1rem; }
-section h2 { font-size: 1rem; margin: 0 0 .3rem; font-weight: 600; overflow-wrap: anywhere; }
+section h2 { font-size: 1rem; margin: 0 0 .3rem; font-weight: 600; overflow-wrap: break-word; }
 section h2 span, section p.why { color: var(--muted); font-weight: 400; }
-section p.why { margin: 0 0 .6rem; font-size: .9rem; overflow-wrap: anywhere; }
+section p.why { margin: 0 0 .6rem; font-size: .9rem; overflow-wrap: break-word; }
 .sheet { display: grid; grid-template-columns: repeat(auto-fill, minmax(min(100%, 13rem), 1fr)); gap: .6rem; }
 figure { margin: 0; border: 1px solid var(--line); border-radius: 6px; overflow: hidden; min-width: 0; }
 figure.keeper, figure.query { border: 2px solid var(--accent); }
@@ -64,32 +64,22 @@ figure.keeper, figure.query { border: 2px solid var(--accent); }
 .frame img, .frame .none { display: block; width: 100%; aspect-ratio: 1; object-fit: contain; background: #eef0f2; }
 .frame .none { display: grid; place-items: center; color: var(--muted); font-size: .8rem; }
 .region { position: absolute; border: 3px solid var(--accent); box-shadow: 0 0 0 1px #fff, inset 0 0 0 1px #fff; }
-figcaption { padding: .4rem .5rem; font-size: .8rem; overflow-wrap: anywhere; }
+figcaption { padding: .4rem .5rem; font-size: .8rem; overflow-wrap: break-word; }
 figcaption .name { font-weight: 600; }
 figcaption .note { color: var(--muted); }
 figcaption .act { margin: .2rem 0; }
 dl.meta { display: grid; grid-template-columns: max-content minmax(0, 1fr); gap: 0 .5rem; margin: .3rem 0 0; }
 dl.meta dt { color: var(--muted); }
-dl.meta dd { margin: 0; min-width: 0; overflow-wrap: anywhere; }
+dl.meta dd { margin: 0; min-width: 0; overflow-wrap: break-word; }
 .badge { display: inline-block; padding: 0 .35rem; border-radius: 4px; border: 1px solid var(--line);
          font-size: .75rem; margin-right: .25rem; }
 .keeper .badge.role, .query .badge.role { background: var(--accent); border-color: var(--accent); color: #fff; }
 .badge.copy { color: #fff; background: var(--warn); border-color: var(--warn); }
-ul.plain { padding-left: 1.2rem; overflow-wrap: anywhere; }
+ul.plain { padding-left: 1.2rem; overflow-wrap: break-word; }
 .more { color: var(--muted); }
 """
 
 _MIME_SUFFIX = ((b"\xff\xd8\xff", ".jpg"), (b"\x89PNG\r\n\x1a\n", ".png"))
-
-
-def human_bytes(n: int) -> str:
-    """1536 -> '1.5 KiB' (binary units, IEC 80000-13, as the CLI prints them)."""
-    value = float(n)
-    for unit in ("B", "KiB", "MiB", "GiB", "TiB"):
-        if abs(value) < 1024 or unit == "TiB":
-            return f"{value:.0f} {unit}" if unit == "B" else f"{value:.1f} {unit}"
-        value /= 1024
-    return f"{n} B"
 
 
 class Pictures:
@@ -141,6 +131,12 @@ def _read(read: Callable[[], bytes | None], key: str) -> bytes | None:
         return None
 
 
+def breakable(text: str) -> str:
+    """Escaped text that may wrap after each '/' of a path (an HTML <wbr>), so a path breaks between
+    folder names, and within a name only when that name alone is wider than its box (CSS break-word)."""
+    return html.escape(text).replace("/", "/<wbr>")
+
+
 def in_square(box: Sequence[float], size: tuple[int, int]) -> tuple[float, float, float, float]:
     """A box in fractions of a picture as fractions of the square tile that shows the picture whole and
     centred (CSS object-fit: contain): the long side fills the tile, the short one is centred."""
@@ -183,7 +179,7 @@ def _figure(css: str, src: str | None, name: str, badge: str, lines: Sequence[st
     notes = "".join(f"<div>{line}</div>" for line in lines)  # lines are built escaped
     return (f'<figure class="{css}">{_frame(src, path, box, size)}<figcaption>{badge}'
             f'<div class="name">{esc(name)}</div>{notes}{_meta_list(rows)}'
-            f'<div class="note">{esc(path)}</div></figcaption></figure>')
+            f'<div class="note">{breakable(path)}</div></figcaption></figure>')
 
 
 # ---------------------------------------------------------------- groups
@@ -229,7 +225,7 @@ def _group_section(group: Group, facts, pictures: Pictures, thumbnail) -> str:
 def _summary(items: dict) -> str:
     # A sentence (a calibrated question's answer) takes a row of its own, in body type.
     cells = "".join(f'<div{" class=wide" if len(str(v)) > 60 else ""}><dt>{html.escape(str(k))}</dt>'
-                    f"<dd>{html.escape(str(v))}</dd></div>" for k, v in items.items())
+                    f"<dd>{breakable(str(v))}</dd></div>" for k, v in items.items())
     return f'<dl class="summary">{cells}</dl>'
 
 

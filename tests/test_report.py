@@ -7,6 +7,7 @@ import re
 from html.parser import HTMLParser
 
 import numpy as np
+import pytest
 from PIL import Image
 
 from nearsight.indexer.groups import ImageMeta, build_groups
@@ -132,3 +133,21 @@ def test_a_region_lands_on_the_picture_inside_its_square_tile():
     assert in_square((0, 0, 1, 1), (200, 100)) == (0.0, 0.25, 1.0, 0.75)
     assert in_square((0.5, 0, 1, 1), (200, 100)) == (0.5, 0.25, 1.0, 0.75)
     assert in_square((0, 0.5, 1, 1), (100, 400)) == (0.375, 0.5, 0.625, 1.0)
+
+
+@pytest.mark.slow
+def test_a_report_of_ten_thousand_groups_is_whole(tmp_path):
+    """A synthetic generation of 10,000 groups of three (benchmarks/bench_report.py, which states the time and
+    memory): one section per group, one picture file per file, each referenced once, nothing left out."""
+    from benchmarks.bench_report import synthetic_groups
+
+    groups = synthetic_groups(10_000)
+    out = tmp_path / "big" / "groups.html"
+    write_html_report(groups, out, thumbnail=lambda ident: jpeg((ident % 256, 90, 120)), title="big", summary={})
+    parser = Collector()
+    parser.feed(out.read_text("utf-8"))
+    sections = [a["id"] for t, a in parser.tags if t == "section"]
+    images = [a["src"] for t, a in parser.tags if t == "img"]
+    assert sections == [f"group-{g.gid}" for g in groups]
+    assert len(images) == len(set(images)) == 30_000
+    assert len(list((tmp_path / "big" / "groups_files").iterdir())) == 30_000

@@ -222,12 +222,12 @@ return Array.from(document.querySelectorAll(arguments[0] + ' *'))
 """
 
 
-def _no_overflow(driver, view: str, shot_name: str) -> None:
+def _no_overflow(driver, view: str, shot_name: str, *, scope: str | None = None) -> None:
     for width in (1280, 390):
         driver.set_window_size(width, 900)
         _wait(lambda: abs(driver.execute_script("return window.innerWidth;") - width) < 20, what=f"{width} px")
         time.sleep(0.3)  # one layout after the resize
-        found = driver.execute_script(_OVERFLOWING, f"#view-{view}")
+        found = driver.execute_script(_OVERFLOWING, scope or f"#view-{view}")
         shot = artifacts_dir() / f"{shot_name}-{width}.png"
         driver.save_screenshot(str(shot))
         print(f"screenshot: {shot}")
@@ -317,3 +317,24 @@ def test_a_whole_group_is_judged_with_one_click_and_taken_back_with_undo(browser
     _wait(lambda: driver.find_elements("css selector", "#pair-list li.keeper"), what="the group again")
     assert any(g["gid"] == group["gid"] for g in client.get("/v1/groups?limit=200").json()["groups"])
     client.close()
+
+
+def test_the_group_list_the_pairs_to_judge_and_the_reports_fit_both_widths(browser, live_server, service_store,
+                                                                            tmp_path, run_cli):
+    """The overflow check (no element's scrollWidth over its clientWidth) at 1280 and 390 px on the review
+    page's group list and pairs to judge, and on the HTML reports of `groups` and `check` opened from disk;
+    screenshots of each are kept in test-artifacts/."""
+    driver = browser
+    for view, ready in (("groups", ".group-card"), ("judge", "#judge-list li button.judge-open")):
+        driver.get(f"{live_server.base}/#/{view}")
+        _wait(lambda: driver.find_elements("css selector", ready), what=f"the {view} view")
+        _no_overflow(driver, view, f"review-{view}")
+    reports = tmp_path / "reports"
+    run_cli("groups", "--store", live_server.store, "--format", "html", "--out", reports / "groups.html", check_exit=0)
+    donated = [transformed(p, tmp_path / f"donated-{p.name}") for p in list(service_store.originals.values())[:3]]
+    run_cli("check", *donated, "--store", live_server.store, "--format", "html", "--out", reports / "check.html",
+            check_exit=0)
+    for name in ("groups", "check"):
+        driver.get((reports / f"{name}.html").as_uri())
+        _wait(lambda: driver.find_elements("css selector", "section figure img"), what=f"the {name} report")
+        _no_overflow(driver, name, f"report-{name}", scope="body")

@@ -97,7 +97,7 @@
   function basename(path) { return (path || "").split(/[\\/]/).pop(); }
   function bytes(n) {
     if (n == null) return "";
-    const units = ["B", "KB", "MB", "GB"];
+    const units = ["B", "KiB", "MiB", "GiB"];  // binary units, as the CLI and the reports write them
     let i = 0;
     while (n >= 1024 && i < units.length - 1) { n /= 1024; i++; }
     return (i ? n.toFixed(1) : n) + " " + units[i];
