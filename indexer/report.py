@@ -169,7 +169,8 @@ def meta_rows(m) -> list[tuple[str, str]]:
     if hasattr(m, "modified"):
         rows += [("Captured", (m.captured or "no capture time").replace("T", " ")),
                  ("Camera", m.camera or "not named"), ("Colour profile", "ICC profile" if m.icc else "none"),
-                 ("Modified", m.modified.replace("T", " ").replace("Z", " UTC")), ("Folder", m.folder)]
+                 ("Modified", m.modified.replace("T", " ").replace("Z", " UTC")),
+                 ("Folder", m.folder if m.folder != "." else "the top of its source")]
     return rows
 
 

@@ -206,11 +206,18 @@ def _jpeg_of(row: dict, side: int) -> Response:
 MEMBER_BRIEF = ("id", "tier", "similarity", "path", "width", "height", "file_size")
 
 
-def _brief(group) -> dict:
+def _brief(group, rows: dict) -> dict:
+    """A group for the list: its members with their file name and folder relative to their source (`rows`:
+    the catalog's file rows)."""
     full = group.to_dict()
+    members = []
+    for m in full["members"]:
+        relpath = (rows.get(m["id"]) or {}).get("relpath") or m["path"]
+        members.append({**{k: m.get(k) for k in MEMBER_BRIEF}, "name": relpath.rsplit("/", 1)[-1],
+                        "folder": relpath.rsplit("/", 1)[0] if "/" in relpath else "."})
     return {"gid": full["gid"], "tier": full["tier"], "size": full["size"], "keeper": full["keeper"],
             "reclaimable_bytes": full["reclaimable_bytes"], "best_similarity": group.best_similarity,
-            "members": [{k: m.get(k) for k in MEMBER_BRIEF} for m in full["members"]]}
+            "members": members}
 
 
 @api.get("/v1/groups")
@@ -221,9 +228,12 @@ def groups():
     max_size = params.int_arg(request.args, "max_size", None, 1, 10**9)
     limit = params.int_arg(request.args, "limit", 20, 1, 200)
     offset = params.int_arg(request.args, "offset", 0, 0, 10**9)
-    found = snap.groups_now(state().store().catalog).find(tier=tier, min_size=min_size, max_size=max_size)
+    catalog = state().store().catalog
+    found = snap.groups_now(catalog).find(tier=tier, min_size=min_size, max_size=max_size)
+    page = found[offset:offset + limit]
+    rows = catalog.file_rows(m.id for g in page for m in g.members)
     return jsonify(generation=snap.name, total=len(found), offset=offset, limit=limit,
-                   groups=[_brief(g) for g in found[offset:offset + limit]])
+                   groups=[_brief(g, rows) for g in page])
 
 
 @api.get("/v1/groups/<gid>")

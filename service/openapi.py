@@ -156,7 +156,10 @@ SCHEMAS = {
         "properties": {"id": {"type": "integer"}, "tier": {"type": "string", "enum": TIER_NAMES},
                        "similarity": {"type": "number", "description": "cosine to the group's keeper"},
                        "path": NULLABLE_STRING, "width": NULLABLE_INT, "height": NULLABLE_INT,
-                       "file_size": NULLABLE_INT},
+                       "file_size": NULLABLE_INT,
+                       "name": {"type": "string", "description": "the file's name"},
+                       "folder": {"type": "string", "description": "its folder relative to its source ('.' at "
+                                                                   "the source's top)"}},
     },
     "GroupBrief": {
         "type": "object", "required": ["gid", "tier", "size", "keeper", "members"],

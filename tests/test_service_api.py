@@ -8,6 +8,7 @@ import http.client
 import io
 import json
 import socket
+from pathlib import Path
 
 import pytest
 from PIL import Image
@@ -222,6 +223,11 @@ def test_groups_page_through_the_generations_groups_and_filter(client, served):
         assert [g["gid"] for g in got["groups"]] == want and got["total"] == len(want)
     small = client.get("/v1/groups?max_size=2&limit=200").json()
     assert [g["gid"] for g in small["groups"]] == [g["gid"] for g in groups if g["size"] <= 2]
+    # Each member by its file name and its folder relative to its source, as the catalog has them.
+    rows = served["store"].catalog.file_rows(m["id"] for g in seen for m in g["members"])
+    for m in (m for g in seen for m in g["members"]):
+        relpath = rows[m["id"]]["relpath"]
+        assert (m["folder"], m["name"]) == (str(Path(relpath).parent), Path(relpath).name)
 
     one = groups[0]
     detail = client.get(f"/v1/groups/{one['gid']}").json()

@@ -276,6 +276,13 @@
         thumbs.append(img);
       }
       if (g.size > 8) thumbs.append(el("span", { class: "more", text: `+${g.size - 8}` }));
+      // Each file by name and folder (relative to its source), the keeper first; a large group lists its first.
+      const names = el("ul", { class: "names" }, g.members.slice(0, 4).map((m) =>
+        el("li", { class: m.id === g.keeper ? "keeper" : "" }, [
+          el("span", { class: "name", text: m.name || basename(m.path) }),
+          el("span", { class: "muted", text: m.folder && m.folder !== "." ? ` in ${m.folder}` : "" }),
+        ])));
+      if (g.size > 4) names.append(el("li", { class: "muted", text: `and ${g.size - 4} more` }));
       const card = el("a", { class: "group-card", href: "#/group/" + encodeURIComponent(g.gid),
                              "aria-label": `${tierName(g.tier)} group of ${g.size} files, keeper ${basename(g.members[0].path)}` }, [
         el("div", { class: "head" }, [
@@ -283,6 +290,7 @@
           el("span", { class: "muted", text: `${g.size} files · ${bytes(g.reclaimable_bytes)} reclaimable` }),
         ]),
         thumbs,
+        names,
         el("span", { class: "open", "aria-hidden": "true", text: "Open the group →" }),
       ]);
       list.append(el("li", {}, [card]));
@@ -329,7 +337,7 @@
       rows.push(["Captured", m.captured ? m.captured.replace("T", " ") : "no capture time"],
                 ["Camera", m.camera || "not named"], ["Colour profile", m.icc ? "ICC profile" : "none"],
                 ["Modified", (m.modified || "").replace("T", " ").replace("Z", " UTC")],
-                ["Folder", m.folder || "."]);
+                ["Folder", m.folder && m.folder !== "." ? m.folder : "the top of its source"]);
     }
     return el("dl", { class: "meta" }, rows.flatMap(([k, v]) => [el("dt", { text: k }), el("dd", { text: v })]));
   }
