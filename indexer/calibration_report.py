@@ -107,9 +107,11 @@ def summary_text(result: dict) -> dict:
     if query:
         lines.append(f"Queries: {query_line(query)}.")
         likely = query["likely_duplicates"]
+        unlike = likely.get("verified_unlike_copies", 0)
         lines.append(f"Geometric verification put {likely['verified']:,} of the sampled images' closest other "
                      f"images down as likely duplicates (left out of the negatives) and {likely['not_verified']:,} "
-                     "as look-alikes.")
+                     "as look-alikes" + (f"; {unlike:,} more verified but scored unlike the synthetic copies, and "
+                                         "count as look-alikes" if unlike else "") + ".")
     if result.get("groups"):
         lines.append(f"Groups: {groups_line(result)}")
     lines += [f"{TIER_WORDS[name]}: {tier_line(tier)}" for name, tier in tiers.items()]

@@ -87,6 +87,20 @@ def test_the_copy_threshold_is_where_sklearns_isotonic_fit_reaches_even_odds():
     assert even_odds_score({"scores": [0.1, 0.9], "probabilities": [0.6, 1.0]}) is None  # even odds everywhere
 
 
+def test_a_verified_negative_is_a_likely_duplicate_only_when_it_scores_like_the_copies():
+    """The floor is numpy's linear quantile of the synthetic copies' descriptor scores (worked by hand for
+    0.1 of [0.5, 0.6, ..., 1.4]: 0.59); a verified best result under it stays a negative (a look-alike that
+    shares a drawn element or a logo), one at or above it is left out as an unknown duplicate."""
+    from nearsight.indexer.query_verdict import DESCRIPTOR_KEY, copy_like
+
+    positives = [{DESCRIPTOR_KEY: 0.5 + 0.1 * i} for i in range(10)]
+    assert np.quantile([p[DESCRIPTOR_KEY] for p in positives], 0.1) == pytest.approx(0.59)
+    verified = [{DESCRIPTOR_KEY: s, "id": i} for i, s in enumerate((0.35, 0.58, 0.6, 0.97))]
+    likely, unlike = copy_like(verified, positives)
+    assert [r["id"] for r in likely] == [2, 3] and [r["id"] for r in unlike] == [0, 1]
+    assert copy_like(verified, []) == (verified, [])
+
+
 def test_groups_stay_at_the_query_threshold_without_evidence_from_the_collection():
     near = {"threshold": 0.995, "target_met": False, "target_precision": 0.99, "duplicate_pairs": 0.4}
     query = {"descriptor_threshold": 0.93}
