@@ -5,6 +5,7 @@ with Pillow. The CSV output is read back with the standard library's csv module,
 """
 
 import csv
+import hashlib
 import io
 import json
 import shutil
@@ -56,9 +57,12 @@ def archive(tmp_path_factory):
 
 
 def _state(store_dir):
-    """What a check must leave as it was: the catalog's rows and the published generation."""
+    """What a check must leave as it was: the SHA-256 (hashlib, FIPS 180-4) of catalog.sqlite and of every
+    CURRENT pointer, the catalog's rows and the published generations."""
+    hashes = {p.relative_to(store_dir).as_posix(): hashlib.sha256(p.read_bytes()).hexdigest()
+              for p in [store_dir / "catalog.sqlite", *store_dir.rglob("CURRENT")]}
     with Store.open(store_dir, settings=load_settings(environ={})) as store:
-        return (store.catalog.counts(), len(store.catalog.files_with_hashes()),
+        return (hashes, store.catalog.counts(), len(store.catalog.files_with_hashes()),
                 generations.current(store).name, sorted(p.name for p in (store_dir / "generations").iterdir()))
 
 
