@@ -11,9 +11,11 @@ TEST_WORKERS ?= 2
 
 .PHONY: demo test install clean-venv
 
+# -qq: pip's errors only; a machine whose pip configuration names an index folder that is not there
+# otherwise prints a warning a line per package, which buries the demo's own report.
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
-	$(BIN)/python -m pip install --quiet -e ".[test]"
+	$(BIN)/python -m pip install -qq -e ".[test]"
 	touch $(STAMP)
 
 install: $(STAMP)
