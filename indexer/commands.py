@@ -344,6 +344,7 @@ def cmd_groups(args) -> int:
         elif args.format == "csv":
             groups_to_csv(groups, buf)
         elif args.format == "html":
+            from .explain import group_explainer
             from .report import write_html_report
 
             from .calibration_report import questions
@@ -356,24 +357,14 @@ def cmd_groups(args) -> int:
             for name, answer in (questions(gen.load_calibration()) or {}).items():
                 summary[f"{name}: {answer['question']}"] = answer["text"]
             write_html_report(groups, out, thumbnail=_thumbnail_reader(store), title="nearsight: duplicate groups",
-                              summary=summary, explain=_explainer(store, now))
+                              summary=summary, explain=group_explainer(store, gen.meta["model"],
+                                                                       gen.load_whitening(), now.verdicts))
             print(f"wrote {out} ({len(groups)} groups)")
             return 0
         else:
             _groups_table(groups, summarize(groups), buf)
     _emit(buf.getvalue(), args.out)
     return 0
-
-
-def _explainer(store: Store, now):
-    """explain_group over the groups of `now` (verdict_groups.CurrentGroups), for the report."""
-    from .explain import explain_group
-    from .keepers import KeeperRules
-    from .verdict_groups import store_lookups
-
-    vectors, _ = store_lookups(store.catalog, now.generation.meta["model"], now.generation.load_whitening())
-    rules = KeeperRules.from_settings(store.settings)
-    return lambda group: explain_group(store, group, now.verdicts, rules=rules, vectors=vectors)
 
 
 def given_thumbnail(path: str) -> bytes | None:

@@ -44,6 +44,28 @@ class StoreError(NearsightError):
     code = "store_error"
 
 
+class ComeBackLater(NearsightError):
+    """A refusal that says when to try again: the service sends `retry_after` as Retry-After."""
+
+    def __init__(self, message: str, retry_after: int):
+        super().__init__(message)
+        self.retry_after = retry_after
+
+
+class TooManyRequestsError(ComeBackLater):
+    """A client sent more uploads or writes in a minute than allowed (service/guard.py)."""
+
+    http_status = 429
+    code = "too_many_requests"
+
+
+class BusyError(ComeBackLater):
+    """The service decodes as many uploads as it may at once (service/guard.py)."""
+
+    http_status = 503
+    code = "busy"
+
+
 class DiskFullError(StoreError):
     """The disk (or the user's quota) ran out of space while writing. Nothing published is lost: the run
     stops before its new generation is published, and a rerun after space is freed picks up its work."""

@@ -84,15 +84,29 @@ def _match(check, identical: bool) -> dict:
             "keeper_box": keeper_box, "member_box": member_box}
 
 
+def group_explainer(store, model: str, whitening, verdicts=None) -> Callable[[Group], GroupFacts | None]:
+    """`explain_group` for the groups of one generation (its `model` and `whitening`), what the review page
+    and the report call: the catalog's latest verdicts (unless `verdicts` is given), the store's keeper
+    rules with a person's picks, and the generation's vectors, each read once."""
+    from .verdict_groups import PairVerdicts, store_lookups
+
+    verdicts = verdicts if verdicts is not None else PairVerdicts.from_rows(store.catalog.latest_verdict_files())
+    vectors, _ = store_lookups(store.catalog, model, whitening)
+    rules = KeeperRules.from_settings(store.settings).with_picks(picks_by_path(store.catalog))
+    return lambda group: explain_group(store, group, verdicts, rules=rules, vectors=vectors)
+
+
 def explain_group(store, group: Group, verdicts, *, rules: KeeperRules | None = None,
                   vectors: Callable[[Sequence[int]], dict] | None = None) -> GroupFacts | None:
     """The facts of `group` (its members as the generation has them, `verdicts` a PairVerdicts applied to
     it) as a quarantine would see them now; None when fewer than two of its files are still present.
+    `rules`: the keeper rules with a person's picks in them (default: the store's, with its picks).
     `vectors(ids)` gives the generation's (whitened) vectors, for the similarity to a keeper the grouping
     did not choose; without it those similarities are the grouping's."""
     from .plan import plan_group
 
-    rules = (rules or KeeperRules.from_settings(store.settings)).with_picks(picks_by_path(store.catalog))
+    if rules is None:
+        rules = KeeperRules.from_settings(store.settings).with_picks(picks_by_path(store.catalog))
     planned = plan_group(store, group, verdicts, rules)
     if planned is None:
         return None

@@ -51,19 +51,13 @@ def write_parquet(rows: list[dict], columns: tuple[str, ...], out: Path) -> None
         import pyarrow.parquet as pq
     except ImportError:
         raise UsageError("writing Parquet needs pyarrow: pip install 'nearsight[parquet]'") from None
+    whole_numbers = {"id", "duplicate_of_id", "bytes"}
     table = pa.table({c: [r[c] for r in rows] for c in columns},
-                     schema=pa.schema([(c, _ARROW_TYPES.get(c, pa.string)()) for c in columns]))
+                     schema=pa.schema([(c, pa.int64() if c in whole_numbers else pa.string()) for c in columns]))
     out = Path(out)
     tmp = out.with_name(f".{out.name}.partial")
     pq.write_table(table, tmp)
     tmp.replace(out)
 
 
-def _int64():
-    import pyarrow as pa
-
-    return pa.int64()
-
-
-_ARROW_TYPES = {"id": _int64, "duplicate_of_id": _int64, "bytes": _int64}
 KEEP_COLUMNS = ("path",)

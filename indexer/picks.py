@@ -41,13 +41,3 @@ def picks_by_path(catalog) -> dict[str, float]:
         "JOIN sources s ON s.id = f.source_id WHERE f.state = 'ok' GROUP BY p.file_id")
     return {str(Path(r["root"]) / r["relpath"]): float(r["at"]) for r in rows}
 
-
-def picked_files(catalog, file_ids) -> dict[int, float]:
-    """Of the given files, those a person picked -> the time of the latest pick."""
-    ids = sorted({int(i) for i in file_ids})
-    if not ids:
-        return {}
-    rows = catalog.conn.execute(
-        f"SELECT file_id, MAX(created_at) AS at FROM keeper_picks WHERE file_id IN ({','.join('?' * len(ids))}) "
-        "GROUP BY file_id", ids)
-    return {int(r["file_id"]): float(r["at"]) for r in rows}

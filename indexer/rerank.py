@@ -109,11 +109,10 @@ def _fine_features_at(path: str, _mtime_ns: int, _size: int):
     return features_or_reason(read_image(path, max_side=VERIFY_SIDE)[0], fine_config())
 
 
-def _evidence(v, size: tuple[int, int]) -> dict:
-    from .verify import fractions
-
+def _evidence(v) -> dict:
+    query_box, box = v.boxes()
     return {"verified": bool(v.verified), "inliers": int(v.inliers), "matches": int(v.matches),
-            "box": fractions(v.box, size), "query_box": fractions(v.query_box, v.query_size),
+            "box": box, "query_box": query_box,
             "scale": None if v.scale is None else round(float(v.scale), 4),
             "mirrored": bool(v.mirrored), "reason": v.reason}
 
@@ -137,15 +136,15 @@ def rerank(query, results: list[dict], candidates: dict[int, str], top: int,
     if not checked:
         return results
     # verify_candidates brings the query to VERIFY_SIDE itself.
-    for r, f, v in zip(checked, features, verify_candidates(query, features, config=verify_config(mirrored))):
-        _record(r, v, f.size, threshold)
+    for r, v in zip(checked, verify_candidates(query, features, config=verify_config(mirrored))):
+        _record(r, v, threshold)
     return sorted(results, key=lambda r: -r["similarity"])
 
 
-def _record(r: dict, v, size: tuple[int, int], threshold: float | None) -> None:
+def _record(r: dict, v, threshold: float | None) -> None:
     """A result's verification: its evidence, and when verified the boosted score and verdict."""
     r.setdefault("descriptor_similarity", r["similarity"])
-    r["evidence"] = _evidence(v, size)
+    r["evidence"] = _evidence(v)
     if v.verified:
         r["similarity"] = round(boosted(r["similarity"]), 6)
         if threshold is not None:
@@ -169,9 +168,9 @@ def rerank_fine(query, results: list[dict], candidates: dict[int, str], count: i
     if not checked:
         return results
     features = [known[r["id"]] for r in checked]
-    for r, f, v in zip(checked, features, verify_candidates(query, features, config=verify_config(mirrored))):
+    for r, v in zip(checked, verify_candidates(query, features, config=verify_config(mirrored))):
         if v.verified:
-            _record(r, v, f.size, threshold)
+            _record(r, v, threshold)
     return sorted(results, key=lambda r: -r["similarity"])
 
 

@@ -258,12 +258,10 @@ def group(gid: str):
 def _explained(snap, catalog, gid: str) -> dict | None:
     """The group as a quarantine would see it now (indexer/explain.py): the file to keep and why, each
     member's metadata, what would happen to it, and where it matches the keeper."""
-    from nearsight.indexer.explain import explain_group
-    from nearsight.indexer.verdict_groups import PairVerdicts, store_lookups
+    from nearsight.indexer.explain import group_explainer
 
-    verdicts = PairVerdicts.from_rows(catalog.latest_verdict_files())
-    vectors, _ = store_lookups(catalog, snap.model, snap.searcher.whitening)
-    facts = explain_group(state().store(), snap.groups_now(catalog).group(gid), verdicts, vectors=vectors)
+    explain = group_explainer(state().store(), snap.model, snap.searcher.whitening)
+    facts = explain(snap.groups_now(catalog).group(gid))
     return None if facts is None else facts.to_dict()
 
 

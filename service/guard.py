@@ -22,28 +22,10 @@ import time
 from contextlib import contextmanager
 from typing import Iterator
 
-from nearsight.indexer.errors import NearsightError
+from nearsight.indexer.errors import BusyError, TooManyRequestsError
 
 UPLOAD_ENDPOINTS = frozenset({"api.search", "api.check"})  # the writes are app.WRITE_ENDPOINTS
 MAX_CLIENTS = 10_000  # buckets kept; the least recently seen are dropped past it
-
-
-class ComeBackLater(NearsightError):
-    """A refusal that says when to try again: the error handler sends `retry_after` as Retry-After."""
-
-    def __init__(self, message: str, retry_after: int):
-        super().__init__(message)
-        self.retry_after = retry_after
-
-
-class TooManyRequestsError(ComeBackLater):
-    http_status = 429
-    code = "too_many_requests"
-
-
-class BusyError(ComeBackLater):
-    http_status = 503
-    code = "busy"
 
 
 class RateLimiter:
