@@ -3,9 +3,11 @@
 Reads the queries of a quality-benchmark work folder (benchmarks/bench_quality.py --work WORK
 writes them) and answers them against its trained store exactly as `nearsight similar` does
 (`Searcher.neighbours` with the query images), in batches of `--batch` like the command. Reported:
-ms per query overall and per stage, with the verification step timed twice in one run: with the
-candidates' keypoints not yet known (the first time a candidate is met), and again with them kept
-in memory (rerank.small_features, what a long-running service or a folder of queries meets).
+ms per query overall and per stage, four times in one run: with the candidates' keypoints found at
+query time (a store indexed with keep_keypoints = false), read from the files kept beside the small
+copies (indexer/keypoints.py, what a fresh `nearsight similar` meets), and kept in memory
+(rerank.small_features, what a folder of queries or a long-running service meets); and what keeping
+them costs at index time and on disk.
 
 Nothing is asserted; the figures are for benchmarks/results/query.md.
 
@@ -15,6 +17,7 @@ Nothing is asserted; the figures are for benchmarks/results/query.md.
 from __future__ import annotations
 
 import argparse
+import os
 import statistics
 import sys
 import time
@@ -65,7 +68,8 @@ def main() -> int:
                         help="a setting other than its default (e.g. mirror_view=off); repeatable")
     args = parser.parse_args()
 
-    from nearsight.indexer import rerank
+    from nearsight.indexer import keypoints, rerank
+    from nearsight.indexer.cores import each_on_cores
     from nearsight.indexer.query import Searcher
     from nearsight.indexer.settings import load_settings
     from nearsight.indexer.store import Store
@@ -75,18 +79,36 @@ def main() -> int:
     rng = np.random.default_rng(0)
     paths = [files[i] for i in sorted(rng.choice(len(files), min(args.queries, len(files)), replace=False).tolist())]
     before = machine(LIBRARIES)
+
+    def forget():
+        rerank._features_at.cache_clear()
+        rerank._fine_features_at.cache_clear()
+
     with Store.open(args.work / "stores" / args.store, settings=load_settings(environ={}, overrides=overrides)) as store:
         searcher = Searcher(store)
         _answer(searcher, paths[: args.batch], args.batch)  # load the model and index pages once
-        forget = rerank._features_at.cache_clear
+        # As a store indexed with keep_keypoints = false: every candidate's keypoints found at query time.
+        real_load, keypoints.load = keypoints.load, lambda path, which: None
+        try:
+            found = _answer(searcher, paths, args.batch, forget=forget)
+        finally:
+            keypoints.load = real_load
+        # What keeping them costs at index time: both sets of every small copy, on every core.
+        small = [store.thumb_path(r["hash"]) for r in store.catalog.readable_contents() if r["thumb"]]
+        t0 = time.perf_counter()
+        sizes = each_on_cores(lambda p: len(keypoints.find(p)), small)
+        find_s = time.perf_counter() - t0
+        keypoints.keep_missing(store)
+        forget()
         each_batch_new = _answer(searcher, paths, args.batch, forget=forget)
         forget()
         one_pass = _answer(searcher, paths, args.batch)
         kept = _answer(searcher, paths, args.batch)
+    runs = (found, each_batch_new, one_pass, kept)
     rows = []
     for stage in kept:
         rows.append("| " + stage + " | " + " | ".join(f"{1000 * statistics.median(run[stage]):.1f}"
-                                                      for run in (each_batch_new, one_pass, kept)) + " |")
+                                                      for run in runs) + " |")
     text = "\n".join([
         "# One query with every step on",
         "",
@@ -99,18 +121,26 @@ def main() -> int:
         "mirrored keypoints tried and 12 more candidates verified"
         + (f"; settings changed: {', '.join(args.set)}" if args.set else "") + ").",
         "",
-        "| stage | ms per query: keypoints forgotten before every batch | ... kept from the pass's start | "
-        "... kept from an earlier pass |",
-        "|---|---:|---:|---:|",
+        "| stage | ms per query: candidates' keypoints found at query time, none in memory | kept at index "
+        "time, none in memory | ... in memory from the pass's start | ... in memory from an earlier pass |",
+        "|---|---:|---:|---:|---:|",
         *rows,
         "",
-        "Medians over batches. First column: every batch starts with no candidate's keypoints known, as a "
-        "fresh `nearsight similar` of 32 images does. Second: one pass over all the queries with the cache "
-        "emptied at its start (candidates recur between batches, as in a folder of queries). Third: the same "
-        "queries again, every candidate known (a long-running service). All three ran in this one process, "
-        "one after the other. The benchmark's query files are small (longest side 236 / 256 / 360 px at the "
-        "10th / 50th / 90th percentile), so decoding is cheap here; a 12-megapixel JPEG costs about 34 ms more "
-        "to decode in draft mode (benchmarks/results/embed.md: 29.6 images/s).",
+        "Medians over batches. First column: as a store indexed with `keep_keypoints = false`, every batch "
+        "starting with no candidate's keypoints in memory, so each is found from its small copy (as every query "
+        "did before keypoints were kept, indexer/keypoints.py). Second: the keypoints kept beside the small "
+        "copies are read, every batch starting with none in memory, as a fresh `nearsight similar` of 32 images "
+        "does. Third: one pass over all the queries with the memory emptied at its start (candidates recur "
+        "between batches, as in a folder of queries). Fourth: the same queries again, every candidate in "
+        "memory (a long-running service). All four ran in this one process, one after the other; the answers "
+        "are the same in every column. The benchmark's query files are small (longest side 236 / 256 / 360 px "
+        "at the 10th / 50th / 90th percentile), so decoding is cheap here; a 12-megapixel JPEG costs about "
+        "34 ms more to decode in draft mode (benchmarks/results/embed.md: 29.6 images/s).",
+        "",
+        f"Keeping the keypoints at index time: {1000 * find_s / max(1, len(small)):.1f} ms an image on "
+        f"{len(os.sched_getaffinity(0))} cores ({len(small)} small copies in {find_s:.1f} s), "
+        f"{statistics.mean(sizes) / 1024:.0f} KiB an image on disk (mean; the small copies themselves: "
+        f"{statistics.mean(p.stat().st_size for p in small) / 1024:.0f} KiB).",
         "",
     ])
     if args.out:

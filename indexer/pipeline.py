@@ -137,6 +137,12 @@ def _build(store: Store, stages: dict, progress, train_config, index_spec, calib
         started = time.monotonic()
         embed_missing_regions(store, model_dir, settings.region_grid, progress=progress)
         stages["regions"] = time.monotonic() - started
+    if settings.keep_keypoints and settings.thumb_side:
+        from .keypoints import keep_missing
+
+        started = time.monotonic()
+        keep_missing(store)
+        stages["keypoints"] = time.monotonic() - started
     out.update(model=embedded["model"], embedded=embedded["embedded"], embed_failed=len(embedded["embed_failed"]))
     prev = generations.current(store)
     before = prev.load_groups()["groups"] if prev is not None else []

@@ -96,15 +96,23 @@ def small_features(paths: Mapping[int, str], *, fine: bool = False) -> dict:
 
 @functools.lru_cache(maxsize=FEATURE_CACHE)
 def _features_at(path: str, _mtime_ns: int, _size: int):
+    from .keypoints import load
     from .verify import features_or_reason
 
+    kept = load(path, 0)  # found at index time (indexer/keypoints.py)
+    if kept is not None:
+        return kept
     return features_or_reason(read_image(path, max_side=VERIFY_SIDE)[0], verify_config())
 
 
 @functools.lru_cache(maxsize=FINE_CACHE)
 def _fine_features_at(path: str, _mtime_ns: int, _size: int):
+    from .keypoints import load
     from .verify import features_or_reason
 
+    kept = load(path, 1)  # found at index time (indexer/keypoints.py)
+    if kept is not None:
+        return kept
     # Read at VERIFY_SIDE like the other check (the small copies' size), then enlarged to the fine side.
     return features_or_reason(read_image(path, max_side=VERIFY_SIDE)[0], fine_config())
 

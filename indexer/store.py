@@ -7,6 +7,7 @@ Layout (later stages add their folders here and nowhere else)::
       settings.toml       optional settings file (see settings.py)
       lock                held (flock) by the one run allowed to write
       thumbs/ab/<hash>.jpg small cached copy of every readable content
+      thumbs/ab/<hash>.kp  its ORB keypoints, found at index time (indexer/keypoints.py)
       models/             trained encoders
       generations/        published index generations
       reports/            HTML reports, plots
