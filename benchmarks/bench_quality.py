@@ -144,7 +144,7 @@ def index_untrained(store_dir: Path, folder: Path) -> dict:
         encoder = create_encoder(DEFAULT_ARCH, config.dim, config.pooling)
         store.models_dir.mkdir(parents=True, exist_ok=True)
         work = store.models_dir / ".untrained"
-        version = save_model(work, encoder, {"arch": DEFAULT_ARCH, "image_size": config.size,
+        version = save_model(work, encoder, {"arch": DEFAULT_ARCH, "image_size": config.input_size,
                                               "train_config": config.to_dict(), "steps": 0,
                                               "data": {"images_given": n}})
         os.rename(work, store.models_dir / version)

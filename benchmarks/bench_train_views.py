@@ -59,6 +59,8 @@ SETTINGS = {
     "batched-128-intra-op": replace(BASE, views="batched", channels_last=True, parallel="intra_op"),
     "batched-128-contiguous": replace(BASE, views="batched", channels_last=False, parallel="split_batch"),
     "batched-112": replace(BASE, views="batched", size=112, channels_last=True, parallel="split_batch"),
+    "batched-96": replace(BASE, views="batched", size=96, channels_last=True, parallel="split_batch"),
+    "batched-80": replace(BASE, views="batched", size=80, channels_last=True, parallel="split_batch"),
     "batched-128-no-hard-negatives": replace(BASE, views="batched", channels_last=True, parallel="split_batch",
                                              hard_negative_share=0.0),
 }

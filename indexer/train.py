@@ -63,7 +63,12 @@ class TrainConfig:
     arch: str = DEFAULT_ARCH
     dim: int = 128
     pooling: str = "gem"
-    size: int = 128  # input side in pixels
+    size: int = 128  # side of the training views in pixels
+    # Side the trained model embeds at (the card's image_size); None = `size`. Training on smaller views
+    # than the model later sees is cheaper per step, and a network trained on random crops tends to do
+    # better tested at a somewhat larger side than it was trained at (Touvron et al. 2019, "Fixing the
+    # train-test resolution discrepancy").
+    embed_size: int | None = None
     # Measured (benchmarks/results/train.md): at an equal number of images, batch 32 with
     # twice the steps beat 64 and 128; temperature 0.05 matched or beat 0.1 and 0.2;
     # a queue without a momentum encoder hurt (its embeddings are stale), so it is off.
@@ -130,9 +135,15 @@ class TrainConfig:
             values["minutes"] = None
         return cls(**values)
 
+    @property
+    def input_size(self) -> int:
+        """The side the model embeds at once trained (and the held-out check uses)."""
+        return self.embed_size or self.size
+
     def validate(self) -> None:
         checks = [
             (self.size >= 32, f"size must be >= 32 pixels, got {self.size}"),
+            (self.embed_size is None or self.embed_size >= 32, f"embed_size must be >= 32 pixels, got {self.embed_size}"),
             (self.batch_size >= 2, f"batch_size must be >= 2, got {self.batch_size}"),
             (self.temperature > 0, f"temperature must be > 0, got {self.temperature}"),
             (self.queue_len >= 0, f"queue_len must be >= 0, got {self.queue_len}"),
@@ -316,7 +327,7 @@ def _model_card(config: TrainConfig, run: dict, *, images_given: int, trained_on
     """What `save_model` stores about a training run beside the weights."""
     return {
         "arch": config.arch,
-        "image_size": config.size,
+        "image_size": config.input_size,
         "train_config": config.to_dict(),
         "recipe": config.recipe.to_dict(),
         "loss": {"name": "nt_xent", "temperature": config.temperature, "queue_len": config.queue_len,
@@ -345,7 +356,7 @@ HELDOUT_DECODE_FACTOR = 4
 
 def _decode_heldout(paths: list[Path], config: TrainConfig) -> tuple[list[Image.Image], dict[str, str]]:
     images, skipped = [], {}
-    for index, pixels, error in decode_files(paths, HELDOUT_DECODE_FACTOR * config.size, os.cpu_count() or 1):
+    for index, pixels, error in decode_files(paths, HELDOUT_DECODE_FACTOR * config.input_size, os.cpu_count() or 1):
         if error is None:
             images.append(Image.fromarray(pixels))
         else:
@@ -357,9 +368,9 @@ def _compare_with_random_init(encoder: Encoder, held_images: list[Image.Image], 
     if len(held_images) < 2:
         log.warning("too few images to hold out any for the held-out check")
         return {}, {}
-    trained = heldout_check(encoder, held_images, config.seed, config.size)
+    trained = heldout_check(encoder, held_images, config.seed, config.input_size)
     random_init, _ = _init_modules(config)
-    baseline = heldout_check(random_init, held_images, config.seed, config.size)
+    baseline = heldout_check(random_init, held_images, config.seed, config.input_size)
     log.info(
         "held-out check on %d originals: recall@1 %.3f (random init %.3f), mean rank %.2f (random init %.2f)",
         trained["n"], trained["recall_at_1"], baseline["recall_at_1"], trained["mean_rank"], baseline["mean_rank"],

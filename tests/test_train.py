@@ -225,9 +225,21 @@ def test_a_short_run_with_batched_views_lowers_the_loss(collection, tmp_path):
     assert result.images_per_s > 0 and card["epochs"] > 0
 
 
+def test_views_at_one_side_and_the_model_at_another(collection, tmp_path):
+    """`embed_size`: training views at 48 px, the saved model embeds (and is checked) at 64 px."""
+    from nearsight.indexer.model import load_model
+
+    result = train(collection, tmp_path, tiny_config(steps=5, size=48, embed_size=64), progress=False)
+    card = json.loads((tmp_path / "card.json").read_text())
+    assert card["image_size"] == 64 and card["train_config"]["size"] == 48
+    assert card["train_config"]["embed_size"] == 64 and result.heldout["n"] > 0
+    _, loaded = load_model(tmp_path)
+    assert loaded["image_size"] == 64
+
+
 def test_bad_training_settings_are_refused(collection, tmp_path):
     for bad, match in ((dict(views="gpu"), "views"), (dict(hard_negative_share=1.5), "hard_negative_share"),
-                       (dict(threads=0), "threads"), (dict(recipe=ViewRecipe(jitter_p=-0.1)), "jitter_p")):
+                       (dict(threads=0), "threads"), (dict(embed_size=16), "embed_size"), (dict(recipe=ViewRecipe(jitter_p=-0.1)), "jitter_p")):
         with pytest.raises(UsageError, match=match):
             train(collection, tmp_path, tiny_config(**bad), progress=False)
     assert not any(tmp_path.iterdir())  # refused before anything was written
