@@ -301,7 +301,7 @@ def calibrate(store: Store, *, model_dir: Path, index, ids: np.ndarray, xb: np.n
               config: CalibrationConfig | None = None, progress=None, regions=(None, 0)) -> dict:
     """Calibrate every tier for the index over (ids, xb) (whitened vectors); returns calibration.json's content.
     `regions`: the generation's region index and grid (indexer/regions.py), searched as users' queries will."""
-    from .model import load_model
+    from .runtime import load_encoder
     from .verdicts import verdict_report
 
     config = config or CalibrationConfig()
@@ -311,7 +311,7 @@ def calibrate(store: Store, *, model_dir: Path, index, ids: np.ndarray, xb: np.n
         raise NotReadyError(f"calibration needs at least {MIN_IMAGES} indexed images, the store has {n}")
     started = time.monotonic()
     rng = np.random.default_rng(config.seed)
-    encoder, card = load_model(model_dir)
+    encoder, card = load_encoder(model_dir, store.settings.runtime)
     size = int(card["image_size"])
 
     meta = store.catalog.image_meta(ids.tolist())

@@ -18,11 +18,15 @@ from __future__ import annotations
 import math
 import re
 
-import torch
-import torch.nn.functional as F
+from typing import TYPE_CHECKING
 
 from .errors import UsageError
 
+if TYPE_CHECKING:
+    import torch
+
+# PyTorch is imported inside the functions that compute: the names and sizes (`classic_dim`) are read by
+# code that must not import it (a query on ONNX Runtime, indexer/runtime.py).
 DEFAULT_CLASSIC = "dct8"
 # The classical cosine's share of a score (benchmarks/results/ablation.md).
 DEFAULT_CLASSIC_WEIGHT = 0.5
@@ -53,8 +57,12 @@ def classic_dim(name: str | None) -> int:
     return k * k - 1 if kind == "dct" else k * k
 
 
-def dct_matrix(n: int, dtype=torch.float32) -> torch.Tensor:
-    """Orthonormal DCT-II matrix C (n x n): C @ y is the DCT of a column y (scipy.fft.dct's norm="ortho")."""
+def dct_matrix(n: int, dtype=None) -> torch.Tensor:
+    """Orthonormal DCT-II matrix C (n x n): C @ y is the DCT of a column y (scipy.fft.dct's norm="ortho");
+    float32 unless `dtype` says otherwise."""
+    import torch
+
+    dtype = dtype or torch.float32
     k = torch.arange(n, dtype=torch.float64)[:, None]
     i = torch.arange(n, dtype=torch.float64)[None, :]
     c = torch.cos(math.pi * (2 * i + 1) * k / (2 * n)) * math.sqrt(2.0 / n)
@@ -68,12 +76,16 @@ LUMA_WEIGHTS = (0.299, 0.587, 0.114)
 
 def luma(p: torch.Tensor) -> torch.Tensor:
     """(B, 3, H, W) pixels in [0, 1] -> (B, 1, H, W) BT.601 luma."""
+    import torch
+
     w = torch.tensor(LUMA_WEIGHTS, dtype=p.dtype, device=p.device).view(1, 3, 1, 1)
     return (p * w).sum(dim=1, keepdim=True)
 
 
 def classic_descriptor(p: torch.Tensor, name: str) -> torch.Tensor:
     """(B, 3, H, W) pixels in [0, 1] -> (B, classic_dim(name)) unit rows."""
+    import torch.nn.functional as F
+
     kind, k = _parse(name)
     y = luma(p)
     if kind == "thumb":

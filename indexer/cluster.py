@@ -35,6 +35,7 @@ RETRIES = 3
 
 _models: dict[str, tuple] = {}
 _models_lock = threading.Lock()
+_worker_threads: int | None = None  # threads of a worker's encoder; None = every core (set by _single_thread_worker)
 
 
 @dataclass(frozen=True)
@@ -51,9 +52,9 @@ def _model(model_dir: str):
     """The worker's copy of the model, loaded once per process (tasks may run in threads)."""
     with _models_lock:
         if model_dir not in _models:
-            from .model import load_model
+            from .runtime import load_encoder
 
-            _models[model_dir] = load_model(Path(model_dir))
+            _models[model_dir] = load_encoder(Path(model_dir), threads=_worker_threads)
         return _models[model_dir]
 
 
@@ -134,10 +135,13 @@ def iter_on_client(client, paths: Sequence[str], model_dir: Path, *, batch_files
 
 
 def _single_thread_worker() -> None:
-    """Each worker process uses one torch thread: the processes, not threads, share the cores."""
+    """Each worker process uses one thread (torch's, or ONNX Runtime's): the processes, not threads, share
+    the cores."""
+    global _worker_threads
     import torch
 
     torch.set_num_threads(1)
+    _worker_threads = 1
 
 
 def iter_local(paths: Sequence[str], model_dir: Path, *, workers: int, batch_files: int = BATCH_FILES

@@ -15,13 +15,10 @@ from pathlib import Path
 from typing import Iterator, Sequence
 
 import numpy as np
-import torch
 from PIL import Image
 
-from .encoder import preprocess
 from .errors import ImageReadError, UsageError
 from .images import read_image
-from .model import load_model
 
 log = logging.getLogger(__name__)
 
@@ -40,10 +37,31 @@ class EmbedResult:
     errors: dict[int, str] = field(default_factory=dict)
 
 
-def embed_images(encoder: torch.nn.Module, images: Sequence[Image.Image], size: int, batch_size: int = 64) -> np.ndarray:
-    """Embed PIL images with `preprocess` + `encoder` in eval mode; returns (n, dim) float32, unit rows."""
+def embed_images(encoder, images: Sequence[Image.Image], size: int, batch_size: int = 64) -> np.ndarray:
+    """Embed PIL images with the encoder (a PyTorch `Encoder`, run in eval mode, or a runtime.OnnxEncoder);
+    returns (n, dim) float32, unit rows. Both see the same pixels (indexer/inputs.py)."""
     if batch_size < 1:
         raise UsageError(f"batch size must be >= 1, got {batch_size}")
+    from .runtime import OnnxEncoder
+
+    if isinstance(encoder, OnnxEncoder):
+        from .inputs import square_batch, standardised
+
+        blocks = [encoder(standardised(square_batch(images[start : start + batch_size], size)))
+                  for start in range(0, len(images), batch_size)]
+        blocks = [b / np.maximum(np.linalg.norm(b, axis=1, keepdims=True), 1e-12) for b in blocks]
+    else:
+        blocks = _embed_torch(encoder, images, size, batch_size)
+    if not blocks:
+        return np.zeros((0, _output_dim(encoder)), dtype=np.float32)
+    return np.ascontiguousarray(np.concatenate(blocks), dtype=np.float32)
+
+
+def _embed_torch(encoder, images: Sequence[Image.Image], size: int, batch_size: int) -> list[np.ndarray]:
+    import torch
+
+    from .encoder import preprocess
+
     was_training = encoder.training
     encoder.eval()
     blocks = []
@@ -54,12 +72,10 @@ def embed_images(encoder: torch.nn.Module, images: Sequence[Image.Image], size: 
                 blocks.append(torch.nn.functional.normalize(encoder(x), dim=1).numpy())
     finally:
         encoder.train(was_training)
-    if not blocks:
-        return np.zeros((0, _output_dim(encoder)), dtype=np.float32)
-    return np.ascontiguousarray(np.concatenate(blocks), dtype=np.float32)
+    return blocks
 
 
-def _output_dim(encoder: torch.nn.Module) -> int:
+def _output_dim(encoder) -> int:
     return int(getattr(encoder, "out_dim", getattr(encoder, "dim", 0)))
 
 
@@ -93,7 +109,7 @@ def decode_files(
 
 def iter_embed_files(
     paths: Sequence[Path | str],
-    encoder: torch.nn.Module,
+    encoder,
     size: int,
     *,
     batch_size: int = 64,
@@ -120,10 +136,14 @@ def iter_embed_files(
 
 
 def embed_files(
-    paths: Sequence[Path | str], model_dir: Path, *, batch_size: int = 64, max_side: int | None = None, workers: int = 0
+    paths: Sequence[Path | str], model_dir: Path, *, batch_size: int = 64, max_side: int | None = None, workers: int = 0,
+    runtime: str = "auto",
 ) -> EmbedResult:
-    """Embed files with the model in `model_dir`; unreadable files land in `errors`, never abort."""
-    encoder, card = load_model(model_dir)
+    """Embed files with the model in `model_dir` (run as `runtime.load_encoder` chooses); unreadable files land
+    in `errors`, never abort."""
+    from .runtime import load_encoder
+
+    encoder, card = load_encoder(model_dir, runtime)
     size = int(card["image_size"])
     started = time.monotonic()
     blocks, ok, errors = [], [], {}

@@ -13,7 +13,6 @@ from __future__ import annotations
 
 from typing import Callable, Sequence
 
-import numpy as np
 import torch
 import torch.nn.functional as F
 from PIL import Image
@@ -21,12 +20,8 @@ from torch import nn
 
 from .classic import DEFAULT_CLASSIC, check_classic, classic_descriptor, classic_dim, luma
 from .errors import UsageError
+from .inputs import IMAGENET_MEAN, IMAGENET_STD, square_batch
 
-# ImageNet channel statistics (common practice). They are kept even though we never
-# use ImageNet weights: any fixed standardisation works, and one set in one place
-# keeps training views, the held-out check and embedding consistent.
-IMAGENET_MEAN = (0.485, 0.456, 0.406)
-IMAGENET_STD = (0.229, 0.224, 0.225)
 
 DEFAULT_ARCH = "resnet_narrow"
 POOLINGS = ("gem", "avg")
@@ -271,31 +266,11 @@ def normalize_tensor(x: torch.Tensor) -> torch.Tensor:
     return (x - mean) / std
 
 
-def _rgb(im: Image.Image) -> Image.Image:
-    return im if im.mode == "RGB" else im.convert("RGB")
-
-
-def _resize_center_crop(im: Image.Image, size: int) -> Image.Image:
-    """Scale the shorter side to `size` (bilinear, antialiased by Pillow) and cut the central square."""
-    w, h = im.size
-    scale = size / min(w, h)
-    new_w, new_h = max(size, round(w * scale)), max(size, round(h * scale))
-    if (new_w, new_h) != (w, h):
-        im = im.resize((new_w, new_h), Image.BILINEAR, reducing_gap=3.0)
-    left, top = (new_w - size) // 2, (new_h - size) // 2
-    return im.crop((left, top, left + size, top + size))
-
-
 def preprocess(images: Sequence[Image.Image], size: int) -> torch.Tensor:
-    """Turn PIL images into one normalised (n, 3, size, size) float batch.
-
-    Choice: resize the shorter side to `size`, then centre-crop a square (common
-    practice for CNN evaluation). Unlike letterboxing, no pixels are spent on
-    padding; the cost is that the outer ends of very wide or tall images are not
-    seen. Training views are random square crops, so the encoder is used to it.
-    """
+    """Turn PIL images into one normalised (n, 3, size, size) float batch: `inputs.square_batch` (the
+    shorter side to `size`, the central square; common practice for CNN evaluation), then
+    `normalize_tensor`."""
     if not images:
         return torch.empty(0, 3, size, size)
-    batch = np.stack([np.asarray(_resize_center_crop(_rgb(im), size), dtype=np.uint8) for im in images])
-    x = torch.from_numpy(batch).permute(0, 3, 1, 2).float().div_(255.0)
+    x = torch.from_numpy(square_batch(images, size)).permute(0, 3, 1, 2).float().div_(255.0)
     return normalize_tensor(x)

@@ -84,10 +84,10 @@ def fit_classic_weight(store, model_dir, ids: np.ndarray, xb: np.ndarray, *, see
     from .embed import embed_images
     from .errors import ImageReadError
     from .images import read_image
-    from .model import load_model
+    from .runtime import load_encoder
 
     started = time.monotonic()
-    encoder, card = load_model(model_dir)
+    encoder, card = load_encoder(model_dir, store.settings.runtime)
     d, size = int(card["dim"]), int(card["image_size"])
     if xb.shape[1] <= d:
         return WeightFit(0.0, reason="the model stores no classical descriptor")

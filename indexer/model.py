@@ -4,6 +4,7 @@ Layout of a model folder::
 
     model.pt    torch.save(state_dict) of the Encoder, loaded with weights_only=True
     card.json   how it was built and how well it did (see `save_model`)
+    model.onnx  the same encoder exported for ONNX Runtime, with model.onnx.json (indexer/runtime.py)
 
 The version id, ``m-YYYYMMDD-HHMMSS-<8 hex of the weights' BLAKE2b>``, names a
 model everywhere (catalog, index, HTTP). The weights hash is also stored in the
@@ -21,15 +22,20 @@ from importlib import metadata
 from datetime import datetime, timezone
 from pathlib import Path
 
+from typing import TYPE_CHECKING
+
 import numpy as np
 import PIL
-import torch
 
-from .encoder import Encoder, create_encoder
 from .errors import NearsightError, NotReadyError
 from .fsutil import atomic_write_bytes, atomic_write_text
 
+if TYPE_CHECKING:
+    from .encoder import Encoder
+
 log = logging.getLogger(__name__)
+# PyTorch is imported only by the functions that need it: reading a card (`read_card`) must stay cheap,
+# because a query that runs on ONNX Runtime (indexer/runtime.py) never imports PyTorch at all.
 
 WEIGHTS_FILE = "model.pt"
 CARD_FILE = "card.json"
@@ -37,6 +43,8 @@ CARD_FORMAT = 1
 
 
 def library_versions() -> dict[str, str]:
+    import torch
+
     return {
         "python": platform.python_version(),
         "torch": torch.__version__,
@@ -46,13 +54,15 @@ def library_versions() -> dict[str, str]:
     }
 
 
-def _weights_bytes(encoder: Encoder) -> bytes:
+def _weights_bytes(encoder: "Encoder") -> bytes:
+    import torch
+
     buf = io.BytesIO()
     torch.save(encoder.state_dict(), buf)
     return buf.getvalue()
 
 
-def save_model(model_dir: Path, encoder: Encoder, card: dict) -> str:
+def save_model(model_dir: Path, encoder: "Encoder", card: dict) -> str:
     """Write weights and card atomically; returns the new version id.
 
     The card gets, on top of what the caller gives (training config, recipe,
@@ -81,6 +91,9 @@ def save_model(model_dir: Path, encoder: Encoder, card: dict) -> str:
         raise NearsightError("the model card must name the encoder architecture ('arch')")
     atomic_write_bytes(model_dir / WEIGHTS_FILE, data)
     atomic_write_text(model_dir / CARD_FILE, json.dumps(full_card, indent=2, sort_keys=True) + "\n")
+    from .runtime import write_onnx  # the same encoder for ONNX Runtime (indexer/runtime.py)
+
+    write_onnx(model_dir, encoder, full_card)
     log.info("saved model %s to %s", version, model_dir)
     return version
 
@@ -95,8 +108,12 @@ def read_card(model_dir: Path) -> dict:
         raise NearsightError(f"cannot read model card {path}: {exc}") from exc
 
 
-def load_model(model_dir: Path) -> tuple[Encoder, dict]:
+def load_model(model_dir: Path) -> tuple["Encoder", dict]:
     """Rebuild the encoder from the card and load its weights (no arbitrary unpickling); eval mode."""
+    import torch
+
+    from .encoder import create_encoder
+
     model_dir = Path(model_dir)
     card = read_card(model_dir)
     path = model_dir / WEIGHTS_FILE

@@ -130,6 +130,10 @@ def _build(store: Store, stages: dict, progress, train_config, index_spec, calib
         out["trained"] = trained
     if model_dir is None:
         return out
+    if settings.runtime != "torch":
+        from .runtime import ensure_onnx
+
+        ensure_onnx(model_dir)  # a model saved before the export existed gets its ONNX file once
     started = time.monotonic()
     embedded = embed_missing(store, model_dir, progress=progress, cluster=cluster)
     stages["embed"] = time.monotonic() - started

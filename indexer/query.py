@@ -19,7 +19,6 @@ from .embed import embed_images
 from .errors import ImageReadError, NotFoundError, NotReadyError
 from .generations import require_current
 from .images import ImageInfo, read_image
-from .model import load_model
 from .store import Store
 
 log = logging.getLogger(__name__)
@@ -147,7 +146,9 @@ class Searcher:
     def __init__(self, store: Store):
         generation = require_current(store)
         # Memory-mapped where FAISS allows: several service processes then share one copy in the page cache.
-        encoder, card = load_model(store.models_dir / generation.meta["model"])
+        from .runtime import load_encoder
+
+        encoder, card = load_encoder(store.models_dir / generation.meta["model"], store.settings.runtime)
         calibration = generation.load_calibration() or {}
         regions = generation.load_regions(mmap=True) if store.settings.region_grid else (None, 0)
         self._setup(store, generation.load_index(mmap=True), generation.load_whitening(), encoder, card,

@@ -71,9 +71,9 @@ def embed_missing_regions(store: Store, model_dir: Path, grid: int, *, progress:
     its small copy, committed a block at a time (a killed run keeps whole blocks)."""
     from .embed import embed_images
     from .images import read_image
-    from .model import load_model
+    from .runtime import load_encoder
 
-    encoder, card = load_model(model_dir)
+    encoder, card = load_encoder(model_dir, store.settings.runtime)
     version, size = card["version"], int(card["image_size"])
     key = region_key(version, grid)
     rows = store.catalog.contents_missing_vectors(key)

@@ -89,12 +89,20 @@ def _origins(value: Any) -> tuple[str, ...]:
 
 
 MIRROR_MODES = ("off", "verified", "max")
+RUNTIMES = ("auto", "onnx", "torch")  # what runs the encoder (indexer/runtime.py)
 
 
 def _mirror_mode(value: Any) -> str:
     text = str(value).strip().lower()
     if text not in MIRROR_MODES:
         raise ValueError(f"expected one of {', '.join(MIRROR_MODES)}, got {value!r}")
+    return text
+
+
+def _runtime(value: Any) -> str:
+    text = str(value).strip().lower()
+    if text not in RUNTIMES:
+        raise ValueError(f"expected one of {', '.join(RUNTIMES)}, got {value!r}")
     return text
 
 
@@ -223,6 +231,15 @@ SETTINGS: tuple[Setting, ...] = (
         "candidate is not verified also searches them, so that a crop keeping a fifth of a photo still "
         "finds it. Costs grid x grid more encoder passes per image and vectors in the generation; "
         "0 turns it off. Measured: crops' recall@1 0.833 -> 0.914 with 3.",
+    ),
+    Setting(
+        "runtime",
+        "auto",
+        _runtime,
+        "What runs the trained encoder for queries, the service and embedding: auto (ONNX Runtime on the "
+        "model's exported model.onnx when both are there, else PyTorch), onnx (refuse to go on without it) "
+        "or torch. ONNX Runtime answers without importing PyTorch, which is most of a one-image `similar`'s "
+        "start-up; the vectors are the same to about 1e-6.",
     ),
     Setting(
         "keep_keypoints",

@@ -12,7 +12,6 @@ import time
 from pathlib import Path
 
 from .embed import iter_embed_files
-from .model import load_model
 from .pause import pause_at
 from .progress import Progress
 from .store import Store
@@ -37,7 +36,9 @@ def embed_missing(store: Store, model_dir: Path, *, batch_size: int = 64, worker
                   progress: bool | None = None, cluster: str | None = None) -> dict:
     """Embed what the current model has not seen; returns counts and timing. With `cluster` (a Dask
     scheduler address) the workers embed and this process alone writes the catalog."""
-    encoder, card = load_model(model_dir)
+    from .runtime import load_encoder
+
+    encoder, card = load_encoder(model_dir, store.settings.runtime)
     version, size = card["version"], int(card["image_size"])
     rows = store.catalog.contents_missing_vectors(version)
     started = time.monotonic()
