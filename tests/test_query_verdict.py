@@ -213,18 +213,9 @@ def test_status_and_the_report_show_both_questions(distinct_store, run_cli, tmp_
 def test_listing_commands_start_without_torch_or_faiss(distinct_store, tmp_path, command):
     """Commands that read what a generation published import neither PyTorch nor FAISS (each costs a
     second or more to import); the check reads the subprocess's own sys.modules."""
-    import subprocess
-    import sys
+    from tests.subprocess_cli import run_fresh
 
     store_dir, _, _ = distinct_store
     args = [str(tmp_path / "q") if a == "QDIR" else a for a in command] + ["--store", str(store_dir)]
-    code = ("import contextlib, io, json, sys\n"
-            "from nearsight.indexer.cli import main\n"
-            f"sys.argv = ['nearsight'] + {args!r}\n"
-            "with contextlib.redirect_stdout(io.StringIO()):\n"
-            "    code = main()\n"
-            "print(json.dumps({'code': code, 'loaded': [m for m in ('torch', 'faiss') if m in sys.modules]}))\n")
-    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120,
-                          cwd=Path(__file__).resolve().parent.parent)
-    out = json.loads(proc.stdout.strip().splitlines()[-1])
-    assert out == {"code": 0, "loaded": []}, proc.stderr
+    out = run_fresh(args)
+    assert (out["code"], out["loaded"]) == (0, [])

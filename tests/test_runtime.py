@@ -2,9 +2,6 @@
 never a file that does not belong to the weights, and a query answered without importing PyTorch."""
 
 import json
-import subprocess
-import sys
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -15,6 +12,7 @@ from nearsight.indexer.embed import embed_images
 from nearsight.indexer.encoder import create_encoder
 from nearsight.indexer.errors import NotReadyError, UsageError
 from nearsight.indexer.model import load_model, save_model
+from tests.subprocess_cli import run_fresh
 
 pytest.importorskip("onnxruntime")
 
@@ -107,17 +105,6 @@ def test_a_one_image_query_runs_without_importing_pytorch(tmp_path):
         _scene(photos / f"{i:02d}.jpg", i)
     with Store.open(tmp_path / "store", create=True, settings=load_settings(environ={})) as store:
         run_index(store, [photos], progress=False, train_config=TINY)
-    code = ("import contextlib, io, json, sys\n"
-            "from nearsight.indexer.cli import main\n"
-            f"sys.argv = ['nearsight', 'similar', '--json', '--store', {str(tmp_path / 'store')!r}, "
-            f"{str(photos / '03.jpg')!r}]\n"
-            "out = io.StringIO()\n"
-            "with contextlib.redirect_stdout(out):\n"
-            "    code = main()\n"
-            "print(json.dumps({'code': code, 'answer': out.getvalue(), "
-            "'loaded': [m for m in ('torch', 'onnxruntime') if m in sys.modules]}))\n")
-    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120,
-                          cwd=Path(__file__).resolve().parent.parent)
-    out = json.loads(proc.stdout.strip().splitlines()[-1])
-    assert out["code"] == 0 and out["loaded"] == ["onnxruntime"], proc.stderr
-    assert "03.jpg" in out["answer"]
+    out = run_fresh(["similar", "--json", "--store", tmp_path / "store", photos / "03.jpg"], ("torch", "onnxruntime"))
+    assert out["code"] == 0 and out["loaded"] == ["onnxruntime"]
+    assert "03.jpg" in out["stdout"]
