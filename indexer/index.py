@@ -43,6 +43,13 @@ SEARCH_PARAMS = ("nprobe", "efSearch")
 COPY_EPS = 1e-5
 COPY_SLACK = 4
 EF_SEARCH_STEPS = (16, 32, 64, 128, 256, 512, 1024, 2048)
+# The self-join that grouping runs on an IVF index is tuned to find this share of the exact pairs above
+# its threshold (0.99: room above the 0.98 that tests and benchmarks/results/index.md hold it to), measured
+# on PAIR_SAMPLE random rows against brute force; with fewer than MIN_SAMPLE_PAIRS pairs in the sample the
+# measurement means too little and the query's nprobe is kept.
+PAIR_RECALL = 0.99
+PAIR_SAMPLE = 2000
+MIN_SAMPLE_PAIRS = 30
 
 # Indexes loaded with mmap share read-only pages with the file: FAISS aborts the
 # whole process (not an exception) if one is modified, so we remember them.
@@ -320,6 +327,19 @@ def apply_search_params(index: faiss.Index, params: dict) -> None:
             raise UsageError(f"a {index_kind(index)} index has no parameter {name!r}") from None
 
 
+def _current_params(index: faiss.Index, params: dict | None) -> dict:
+    """The index's present values of the parameters in `params` (to put back after a call)."""
+    if not params:
+        return {}
+    ivf, hnsw = _ivf(index), _hnsw(index)
+    out = {}
+    if "nprobe" in params and ivf is not None:
+        out["nprobe"] = int(ivf.nprobe)
+    if "efSearch" in params and hnsw is not None:
+        out["efSearch"] = int(hnsw.hnsw.efSearch)
+    return out
+
+
 def _reference_knn(index, xq, k, xb, ids) -> tuple[np.ndarray, np.ndarray]:
     """Exact top-k (D, I): brute force on `xb` when given, else exhaustive over the index's own data."""
     if xb is not None:
@@ -405,6 +425,53 @@ def tune_search(index: faiss.Index, xb_sample: np.ndarray, target_recall: float 
     return result
 
 
+def exact_pairs_of(xb: np.ndarray, ids: np.ndarray, rows: np.ndarray, threshold: float,
+                   block: int = 262_144) -> set[tuple[int, int]]:
+    """Brute force (the oracle of `tune_pair_search`): every unordered id pair (a < b) with cosine
+    >= `threshold` that has one end among `rows` of `xb`, the database walked `block` rows at a time."""
+    xq = np.ascontiguousarray(xb[rows])
+    found: set[tuple[int, int]] = set()
+    for start in range(0, xb.shape[0], block):
+        sims = xq @ xb[start:start + block].T
+        r, c = np.nonzero(sims >= threshold)
+        a, b = ids[rows[r]], ids[start + c]
+        found.update((int(min(x, y)), int(max(x, y))) for x, y in zip(a.tolist(), b.tolist()) if x != y)
+    return found
+
+
+def tune_pair_search(index: faiss.Index, xb: np.ndarray, ids: np.ndarray, threshold: float, *,
+                     target: float = PAIR_RECALL, sample: int = PAIR_SAMPLE, seed: int = 0) -> dict:
+    """The smallest nprobe at which the self-join (`range_pairs` of the collection against its own IVF
+    index) finds `target` of the exact pairs at or above `threshold`, measured on `sample` random rows
+    against brute force (`exact_pairs_of`).
+
+    Why: a query's nprobe is tuned for recall@10 of arbitrary neighbours (`tune_search`); the pairs that
+    grouping needs are near copies, which sit in the same or an adjacent list, so a much smaller nprobe
+    finds them, and the self-join's time is proportional to it. Returns ``{"params", "pair_recall",
+    "sample_pairs", "reached"}``; with fewer than `MIN_SAMPLE_PAIRS` pairs in the sample there is nothing
+    to measure, and the query's own nprobe is kept (``reached`` None). Other index kinds need no tuning.
+    """
+    ivf = _ivf(index)
+    if ivf is None:
+        return {"params": {}, "pair_recall": 1.0, "sample_pairs": 0, "reached": True}
+    current = int(ivf.nprobe)
+    rng = np.random.default_rng(seed)
+    rows = np.sort(rng.choice(xb.shape[0], min(sample, xb.shape[0]), replace=False))
+    truth = exact_pairs_of(xb, ids, rows, threshold)
+    if len(truth) < MIN_SAMPLE_PAIRS:
+        return {"params": {"nprobe": current}, "pair_recall": None, "sample_pairs": len(truth), "reached": None}
+    recall, value = 0.0, current
+    for value in sorted({min(2 ** i, current) for i in range(current.bit_length() + 1)}):
+        a, b, _ = range_pairs(index, xb, ids, threshold, rows=rows, params={"nprobe": value})
+        recall = len(truth & set(zip(a.tolist(), b.tolist()))) / len(truth)
+        if recall >= target:
+            break
+    log.info("pair search: nprobe %d finds %.3f of %d exact pairs on a sample of %d rows (query nprobe %d)",
+             value, recall, len(truth), len(rows), current)
+    return {"params": {"nprobe": value}, "pair_recall": round(recall, 4), "sample_pairs": len(truth),
+            "reached": recall >= target}
+
+
 # ---------------------------------------------------------------- queries
 
 def search(index: faiss.Index, xq: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
@@ -440,8 +507,8 @@ def _exact_sims(xb, rows_a, ids_b, sorted_ids, order, sims) -> np.ndarray:
 
 def range_pairs(index: faiss.Index, xb: np.ndarray, ids: np.ndarray, threshold: float, *,
                 k_fallback: int = 50, block: int = 16_384, method: str = "auto",
-                refine: bool = True, margin: float | None = None
-                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                refine: bool = True, margin: float | None = None, rows: np.ndarray | None = None,
+                params: dict | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Every unordered pair (a < b) of catalog ids with cosine >= `threshold`.
 
     `xb`/`ids` are the queries (usually the whole database), walked `block` rows at
@@ -451,6 +518,8 @@ def range_pairs(index: faiss.Index, xb: np.ndarray, ids: np.ndarray, threshold: 
     candidates anyway. With `refine`, similarities are recomputed exactly from `xb`
     and candidates from compressed codes are gathered `margin` below the threshold
     (default 0.02, a guess checked by tests/benchmarks) so code error loses fewer pairs.
+    `rows`: only these rows of `xb` are queries (their partners' similarities still come from `xb`).
+    `params`: search parameters for this call only (`tune_pair_search`'s).
     Returns ``(a_ids, b_ids, sims)`` sorted by (a, b).
     """
     _check_vectors(xb, "xb", index.d)
@@ -471,24 +540,33 @@ def range_pairs(index: faiss.Index, xb: np.ndarray, ids: np.ndarray, threshold: 
     radius = float(np.nextafter(np.float32(threshold - margin), np.float32(-2)))
     order = np.argsort(ids, kind="stable")
     sorted_ids = ids[order]
-    parts_a, parts_b, parts_s = [], [], []
+    queries = np.arange(xb.shape[0]) if rows is None else np.asarray(rows, np.int64)
+    saved = _current_params(index, params)
+    parts_a, parts_b, parts_s = [np.zeros(0, np.int64)], [np.zeros(0, np.int64)], [np.zeros(0, np.float32)]
     start_time = time.perf_counter()
-    for start in range(0, xb.shape[0], block):
-        xq = xb[start:start + block]
-        if method == "range":
-            lims, D, I = index.range_search(xq, radius)
-            rows = np.repeat(np.arange(xq.shape[0]), np.diff(lims.astype(np.int64)))
-        else:
-            D, I = index.search(xq, min(k_fallback, index.ntotal))
-            hit = (I >= 0) & (D > radius)
-            rows, D, I = np.nonzero(hit)[0], D[hit], I[hit]
-        rows_a = start + rows
-        sims = _exact_sims(xb, rows_a, I, sorted_ids, order, D) if refine else D
-        keep = sims >= threshold
-        parts_a.append(ids[rows_a[keep]])
-        parts_b.append(I[keep])
-        parts_s.append(sims[keep].astype(np.float32))
-    a, b, sims = canonical_pairs(np.concatenate(parts_a), np.concatenate(parts_b),
+    try:
+        if params:
+            apply_search_params(index, params)
+        for start in range(0, queries.shape[0], block):
+            q = queries[start:start + block]
+            xq = xb[start:start + block] if rows is None else np.ascontiguousarray(xb[q])
+            if method == "range":
+                lims, D, I = index.range_search(xq, radius)
+                hits = np.repeat(np.arange(xq.shape[0]), np.diff(lims.astype(np.int64)))
+            else:
+                D, I = index.search(xq, min(k_fallback, index.ntotal))
+                hit = (I >= 0) & (D > radius)
+                hits, D, I = np.nonzero(hit)[0], D[hit], I[hit]
+            rows_a = q[hits]
+            sims = _exact_sims(xb, rows_a, I, sorted_ids, order, D) if refine else D
+            keep = sims >= threshold
+            parts_a.append(ids[rows_a[keep]])
+            parts_b.append(I[keep])
+            parts_s.append(sims[keep].astype(np.float32))
+    finally:
+        if saved:
+            apply_search_params(index, saved)
+    a, b, sims = canonical_pairs(np.concatenate(parts_a), np.concatenate(parts_b).astype(np.int64),
                                   np.concatenate(parts_s))
     log.debug("range_pairs(%s, t=%.3f): %d pairs from %d queries in %.1f s", method, threshold,
              a.shape[0], xb.shape[0], time.perf_counter() - start_time)

@@ -193,6 +193,55 @@ def test_range_pairs_approximate_recall(duplicate_set, spec, method):
     assert (sims >= t).all()
 
 
+@pytest.fixture(scope="module")
+def copies_set():
+    """8k clustered vectors (dim 48, 100 clusters) plus 400 near copies, the pairs above 0.9."""
+    rng = np.random.default_rng(23)
+    base = clustered(rng, 8_000, 48, 100, 0.2)
+    sources = rng.choice(8_000, 400, replace=False)
+    copies = unit(base[sources] + 0.025 * rng.standard_normal((400, 48)))
+    xb = np.ascontiguousarray(np.vstack([base, copies]))
+    return xb, random_ids(rng, xb.shape[0])
+
+
+def test_the_tuned_self_join_finds_the_exact_pairs_with_a_smaller_nprobe(copies_set):
+    """`tune_pair_search` + `range_pairs`, as grouping runs them on an IVF index, against NumPy brute force
+    over every pair: at least 0.98 of the pairs >= 0.9 found, none below it, at a smaller nprobe than the
+    query's."""
+    xb, ids = copies_set
+    t, pairs = 0.9, {}
+    for start in range(0, len(xb), 1000):  # NumPy brute force over every pair, a block of rows at a time
+        S = xb[start:start + 1000] @ xb.T
+        i, j = np.nonzero(S >= t - 1e-5)
+        keep = start + i < j
+        a, b = ids[start + i[keep]], ids[j[keep]]
+        pairs.update(zip(zip(np.minimum(a, b).tolist(), np.maximum(a, b).tolist()), S[i[keep], j[keep]].tolist()))
+    # Pairs within 1e-5 of t may fall either way (BLAS and einsum round differently): counted on neither side.
+    truth = {p for p, sim in pairs.items() if sim >= t + 1e-5}
+    index = ix.build_index(xb, ids, "IVF128,SQ8")
+    ix.tune_search(index, xb[:500], 0.95, 10, xb=xb, ids=ids)
+    query_nprobe = faiss.extract_index_ivf(index).nprobe
+    tuned = ix.tune_pair_search(index, xb, ids, t, sample=2000)
+    assert tuned["reached"] and tuned["sample_pairs"] >= ix.MIN_SAMPLE_PAIRS
+    assert tuned["params"]["nprobe"] < query_nprobe
+    assert faiss.extract_index_ivf(index).nprobe == query_nprobe  # the index's own setting is left alone
+    a, b, sims = ix.range_pairs(index, xb, ids, t, params=tuned["params"])
+    found = set(zip(a.tolist(), b.tolist()))
+    assert len(truth) >= 400 and len(found & truth) / len(truth) >= 0.98  # the planted copies at least
+    assert found <= pairs.keys() and (sims >= t).all()
+    # The tuner's own oracle on a sample of rows agrees with this one.
+    rows = np.arange(0, len(xb), 97)
+    assert ix.exact_pairs_of(xb, ids, rows, t) <= pairs.keys()
+
+
+def test_pair_search_keeps_the_query_nprobe_when_the_sample_has_too_few_pairs(clustered_set):
+    xb, ids = clustered_set
+    index = ix.build_index(xb, ids, "IVF64,SQ8")
+    ix.apply_search_params(index, {"nprobe": 16})
+    tuned = ix.tune_pair_search(index, xb, ids, 0.999, sample=200)
+    assert tuned["reached"] is None and tuned["params"] == {"nprobe": 16}
+
+
 # ------------------------------------------------------------------ updates
 
 def test_remove_and_add_equal_a_rebuild_flat(duplicate_set):
