@@ -45,6 +45,13 @@ def load_vectors(store: Store, model: str) -> tuple[np.ndarray, np.ndarray]:
     return np.concatenate(ids_blocks), np.ascontiguousarray(np.concatenate(xb_blocks))
 
 
+def whitened_vectors(store: Store, model: str, whitening) -> tuple[np.ndarray, np.ndarray]:
+    """(ids, xb) of `load_vectors` in a generation's descriptor space (`whitening`, whiten.Whitening): the one
+    way every stage that searches or groups gets a generation's vectors."""
+    ids, xb = load_vectors(store, model)
+    return ids, (whitening.apply(xb) if len(ids) else xb)
+
+
 def pixel_hash(path: str) -> str:
     """Hash of the decoded, upright RGB pixels at full size: equal for the same picture saved twice."""
     im, _info = read_image(path)
@@ -248,10 +255,10 @@ def recalibrate(store: Store, config, *, keep: int = 3) -> dict:
     gen = generations.require_current(store)
     model_dir = store.models_dir / gen.meta["model"]
     index = gen.load_index()
-    ids, xb = load_vectors(store, gen.meta["model"])
-    indexed = np.isin(ids, faiss_index.stored_ids(index))
     whitening = gen.load_whitening()
-    ids, xb = ids[indexed], whitening.apply(xb[indexed])
+    ids, xb = whitened_vectors(store, gen.meta["model"], whitening)
+    indexed = np.isin(ids, faiss_index.stored_ids(index))
+    ids, xb = ids[indexed], xb[indexed]
     meta = {k: v for k, v in gen.meta.items()
             if k not in ("thresholds", "groups", "calibration", "generation", "published_at")}
     meta["indexed"] = int(len(ids))

@@ -33,7 +33,7 @@ from .errors import ImageReadError, NotReadyError, UsageError
 from .generations import threshold_for_precision
 from .images import read_image
 from .query_verdict import QueryVerdictConfig, calibrate_query
-from .rates import counts_at_or_above, fit_mixture, survival, wilson_interval
+from .rates import counts_at_or_above, fit_mixture, wilson_interval
 from .store import Store
 
 log = logging.getLogger(__name__)

@@ -180,9 +180,10 @@ def cmd_train(args) -> int:
             run_index(store, args.folders, progress=_progress(args), build=False)
         with store.lock():
             if args.from_verdicts:
-                from .train import read_verdicts_csv
+                from .verdicts import verdict_file_pairs
 
-                result = fine_tune_into_store(store, read_verdicts_csv(Path(args.from_verdicts)), progress=_progress(args))
+                result = fine_tune_into_store(store, verdict_file_pairs(store, Path(args.from_verdicts)),
+                                              progress=_progress(args))
                 out = {"model": result.version, "fine_tuned_from": result.fine_tuned_from, "steps": result.steps,
                        "pairs_used": result.pairs_used, "pairs_skipped": result.pairs_skipped,
                        "before": result.before, "after": result.after}

@@ -77,12 +77,11 @@ def demo_pairs(store: Store, truth: dict):
     planted truth per pair), in the current generation's whitened space."""
     import numpy as np
 
-    from .build import load_vectors
+    from .build import whitened_vectors
     from .generations import require_current
 
     gen = require_current(store)
-    ids, xb = load_vectors(store, gen.meta["model"])
-    xb = gen.load_whitening().apply(xb)
+    ids, xb = whitened_vectors(store, gen.meta["model"], gen.load_whitening())
     meta = store.catalog.image_meta(ids.tolist())
     base = Path(store.catalog.sources()[0]["root"]).parent  # the demo folder holding the archive
     rel = [Path(meta[int(i)]["path"]).relative_to(base).as_posix() for i in ids]

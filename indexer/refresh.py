@@ -37,8 +37,8 @@ from scipy.sparse.csgraph import connected_components
 
 from . import generations
 from . import index as faiss_index
-from .build import build_generation, calibrate_thresholds, compute_pairs, groups_from_pairs, load_vectors, \
-    publish_generation, verify_floor_of, with_verified_pairs
+from .build import build_generation, calibrate_thresholds, compute_pairs, groups_from_pairs, \
+    publish_generation, verify_floor_of, whitened_vectors, with_verified_pairs
 from .groups import Group
 from .model import read_card
 from .pause import pause_at
@@ -243,8 +243,7 @@ def _update(store: Store, prev, model_dir, change: Change, reason: str, *, setti
     else:
         ids = xb = None
         if plan == "calibrate":
-            ids, xb = load_vectors(store, model)
-            xb = whitening.apply(xb)
+            ids, xb = whitened_vectors(store, model, whitening)
         thresholds, extra = calibrate_thresholds(
             store, model_dir, index, ids, xb, whitening, meta, stages, t_near=settings.near_threshold,
             t_similar=settings.similar_threshold, threshold_source="default",
@@ -256,8 +255,7 @@ def _update(store: Store, prev, model_dir, change: Change, reason: str, *, setti
     if same:
         pairs, groups, regrouped = regroup_touched(store, prev, index, whitening, model, change, thresholds)
     else:  # other thresholds: every pair and group anew, in the same space
-        ids, xb = load_vectors(store, model)
-        xb = whitening.apply(xb)
+        ids, xb = whitened_vectors(store, model, whitening)
         pairs = with_verified_pairs(store, index, ids, xb, compute_pairs(index, ids, xb, thresholds["similar"]),
                                     thresholds)
         groups = groups_from_pairs(store, ids, xb, *pairs, t_near=thresholds["near"], t_similar=thresholds["similar"],

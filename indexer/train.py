@@ -14,7 +14,6 @@ are negatives of each other (`train_batches`, `batch_views`).
 
 from __future__ import annotations
 
-import csv
 import hashlib
 import io
 import logging
@@ -505,7 +504,6 @@ def _run_loop(cache, encoder: Encoder, head: ProjectionHead, config: TrainConfig
 
 # --- fine-tuning from human verdicts ------------------------------------------
 
-VERDICTS = {"same": True, "different": False}
 
 # Mild views for fine-tuning: the pairs carry the signal, the views only keep the
 # encoder from memorising exact pixels.
@@ -536,31 +534,6 @@ class FineTuneResult:
     pairs_skipped: int
     before: dict  # mean distance of same / different pairs before fine-tuning
     after: dict
-
-
-def read_verdicts_csv(path: Path) -> list[tuple[Path, Path, bool]]:
-    """Read a CSV with columns path_a, path_b, verdict (same | different) into (a, b, same) triples."""
-    path = Path(path)
-    try:
-        with open(path, newline="", encoding="utf-8-sig") as fh:
-            reader = csv.DictReader(fh)
-            missing = {"path_a", "path_b", "verdict"} - set(reader.fieldnames or ())
-            if missing:
-                raise UsageError(f"{path}: missing column(s) {', '.join(sorted(missing))}; need path_a,path_b,verdict")
-            pairs = []
-            for line, row in enumerate(reader, start=2):
-                verdict = (row["verdict"] or "").strip().lower()
-                if verdict not in VERDICTS:
-                    raise UsageError(f"{path}, line {line}: verdict must be 'same' or 'different', got {row['verdict']!r}")
-                a, b = (row["path_a"] or "").strip(), (row["path_b"] or "").strip()
-                if not a or not b:
-                    raise UsageError(f"{path}, line {line}: empty path")
-                pairs.append((Path(a), Path(b), VERDICTS[verdict]))
-    except OSError as exc:
-        raise UsageError(f"cannot read verdicts file {path}: {exc}") from exc
-    except (csv.Error, UnicodeDecodeError) as exc:
-        raise UsageError(f"{path} is not a readable CSV file: {exc}") from exc
-    return pairs
 
 
 def _components(n: int, links: list[tuple[int, int]]) -> np.ndarray:

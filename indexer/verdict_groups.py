@@ -295,10 +295,10 @@ def current_groups(store, *, threshold: float | None = None, precision: float | 
         if threshold < float(gen.meta["thresholds"]["near"]):
             log.warning("threshold %.3f is below the generation's duplicate threshold %.3f: check the groups "
                         "before acting on them", threshold, gen.meta["thresholds"]["near"])
-        from .build import compute_groups, load_vectors  # regrouping needs the index; listing does not (start-up)
+        from .build import compute_groups, whitened_vectors  # regrouping needs the index; listing does not
 
-        ids, xb = load_vectors(store, gen.meta["model"])
-        groups = [] if len(ids) == 0 else compute_groups(store, gen.load_index(), ids, whitening.apply(xb),
+        ids, xb = whitened_vectors(store, gen.meta["model"], whitening)
+        groups = [] if len(ids) == 0 else compute_groups(store, gen.load_index(), ids, xb,
                                                          t_near=threshold, t_similar=threshold)
         t_near = t_similar = threshold
     groups = judged_groups(store.catalog, groups, model=gen.meta["model"], whitening=whitening, t_near=t_near,

@@ -20,7 +20,7 @@ from nearsight.indexer.calibration_report import questions
 from nearsight.indexer.pipeline import store_status
 
 from . import params
-from .app import snapshot, state
+from .state import snapshot, state
 from .openapi import openapi_document
 
 api = Blueprint("api", __name__)

@@ -10,23 +10,23 @@ from __future__ import annotations
 
 import hmac
 import logging
-import threading
 import time
-from dataclasses import dataclass, field
 from pathlib import Path
 
 from flask import Flask, g, jsonify, request
 from werkzeug.exceptions import HTTPException, RequestEntityTooLarge
 
-from nearsight.indexer.errors import (AuthError, ForbiddenError, MisdirectedError, NearsightError, NotReadyError,
-                                      disk_full)
+from nearsight.indexer.errors import AuthError, ForbiddenError, MisdirectedError, NearsightError, disk_full
 from nearsight.indexer.store import Store
 
-from .config import ServiceConfig, resolve_config
+from .api import api
+from .config import resolve_config
 from .guard import UPLOAD_ENDPOINTS, DecodeGate, RateLimiter
-from .live import LiveGeneration, Snapshot
+from .live import LiveGeneration
 from .metrics import Metrics
 from .params import MULTIPART_SLACK
+from .review import review
+from .state import ServiceState, state
 
 log = logging.getLogger(__name__)
 request_log = logging.getLogger("nearsight.service.requests")
@@ -37,42 +37,6 @@ GENERATION_HEADER = "X-Nearsight-Generation"
 # (they hold no data; every call the page makes for data carries the key when one is needed).
 PUBLIC_ENDPOINTS = {"api.healthz", "api.readyz", "review.page", "static"}
 WRITE_ENDPOINTS = {"api.add_verdicts", "api.remove_verdicts", "api.pick_keeper", "api.drop_keeper"}
-
-
-@dataclass
-class ServiceState:
-    """Everything the views need, kept in app.extensions["nearsight"]."""
-
-    config: ServiceConfig
-    live: LiveGeneration
-    metrics: Metrics
-    limiter: RateLimiter
-    decodes: DecodeGate
-    started_at: float = field(default_factory=time.time)
-    _local: threading.local = field(default_factory=threading.local)
-
-    def store(self) -> Store:
-        """This thread's Store, with its own SQLite connection (connections are per thread)."""
-        store = getattr(self._local, "store", None)
-        if store is None:
-            store = self._local.store = Store.open(self.config.store, settings=self.config.settings)
-        return store
-
-
-def state() -> ServiceState:
-    from flask import current_app
-
-    return current_app.extensions["nearsight"]
-
-
-def snapshot(required: bool = True) -> Snapshot | None:
-    """The generation this request answers from, taken once per request."""
-    if "snapshot" not in g:
-        g.snapshot = state().live.current()
-    if g.snapshot is None and required:
-        raise NotReadyError("no generation is being served yet: run `nearsight index FOLDER` on the store; "
-                            "this service picks the new generation up by itself")
-    return g.snapshot
 
 
 def create_app(config=None) -> Flask:
@@ -93,9 +57,6 @@ def create_app(config=None) -> Flask:
     live.refresh()
     if cfg.watch:
         live.start()
-
-    from .api import api
-    from .review import review
 
     app.register_blueprint(api)
     app.register_blueprint(review)
@@ -225,4 +186,4 @@ def _http_message(exc: HTTPException) -> str:
     return exc.description or exc.name
 
 
-__all__ = ["create_app", "snapshot", "state"]
+__all__ = ["create_app"]

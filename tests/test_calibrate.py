@@ -229,6 +229,19 @@ def test_calibrate_command_summary_precision_flag_and_verdict_import(store_dir, 
     run_cli("verdicts", "import", good, "--store", store_dir, check_exit=0)
     proc = run_cli("verdicts", "show", "--store", store_dir, "--json", check_exit=0)
     assert json.loads(proc.stdout) == {"pairs": 2, "same": 1, "different": 1}
+    # The same file format feeds fine-tuning: an image id becomes its catalogued path.
+    from nearsight.indexer.store import Store
+    from nearsight.indexer.verdicts import verdict_file_pairs
+
+    with Store.open(store_dir) as store:
+        first = store.catalog.file_id_for_path((photos / "scene01.png").resolve())
+        ids = tmp_path / "ids.csv"
+        ids.write_text(f"a,b,verdict\n{first},{photos / 'scene02.png'},different\n")
+        [(a, b, same)] = verdict_file_pairs(store, ids)
+        assert (a.resolve(), b, same) == ((photos / "scene01.png").resolve(), photos / "scene02.png", False)
+        ids.write_text(f"a,b,verdict\n{first},999999,same\n")
+        with pytest.raises(UsageError, match="no image with id 999999"):
+            verdict_file_pairs(store, ids)
 
 
 def test_calibration_refuses_a_store_too_small_to_measure(tmp_path):

@@ -24,7 +24,6 @@ from nearsight.indexer.train import (
     FineTuneConfig,
     TrainConfig,
     fine_tune_from_pairs,
-    read_verdicts_csv,
     train,
 )
 from nearsight.indexer.views import ViewRecipe, make_views
@@ -281,17 +280,20 @@ def test_heldout_check_reports_per_kind():
     assert sum(v["n"] for v in report["per_kind"].values()) == len(images)
 
 
-def test_read_verdicts_csv(tmp_path):
+def test_one_verdict_file_format_for_import_and_fine_tuning(tmp_path):
+    """`verdicts.read_verdicts_csv` reads what `verdicts import` and `train --from-verdicts` both take."""
+    from nearsight.indexer.verdicts import read_verdicts_csv
+
     good = tmp_path / "verdicts.csv"
-    good.write_text("path_a,path_b,verdict\na.jpg,b.jpg,same\nc.jpg,d.jpg, Different \n")
-    assert [(str(a), str(b), s) for a, b, s in read_verdicts_csv(good)] == [
-        ("a.jpg", "b.jpg", True), ("c.jpg", "d.jpg", False)]
+    good.write_text("a,b,verdict,note\na.jpg,b.jpg,same,\n12,d.jpg, Different ,a crop of another\n")
+    assert [(r.a, r.b, r.same, r.note, r.line) for r in read_verdicts_csv(good)] == [
+        ("a.jpg", "b.jpg", True, None, 2), ("12", "d.jpg", False, "a crop of another", 3)]
     bad = tmp_path / "bad.csv"
-    bad.write_text("path_a,path_b,verdict\na.jpg,b.jpg,maybe\n")
+    bad.write_text("a,b,verdict\na.jpg,b.jpg,maybe\n")
     with pytest.raises(UsageError, match="line 2"):
         read_verdicts_csv(bad)
-    with pytest.raises(UsageError, match="missing column"):
-        (tmp_path / "cols.csv").write_text("a,b\n1,2\n")
+    (tmp_path / "cols.csv").write_text("path_a,path_b,verdict\n1,2,same\n")
+    with pytest.raises(UsageError, match="missing a, b"):
         read_verdicts_csv(tmp_path / "cols.csv")
 
 
