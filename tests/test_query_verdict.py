@@ -143,13 +143,15 @@ def test_a_collection_without_duplicates_flags_copies_and_says_so(distinct_store
         searcher = Searcher(store)
         cal = searcher.generation.load_calibration()
         verdict = cal["query"]
-        # The figures are a count by hand over the stored samples.
+        # The figures are a count by hand over the stored samples. Those are rounded to 1e-4, the threshold's
+        # grid, so a score stored as exactly the threshold may have been just below it: counted either way.
         neg = np.asarray(cal["distributions"]["query_negatives"])
         pos = np.asarray(cal["distributions"]["query_positives"])
         t = verdict["threshold"]
-        assert verdict["negatives"] == len(neg) and verdict["flagged_negatives"] == int((neg >= t).sum())
-        assert verdict["false_flag_rate"] == round(int((neg >= t).sum()) / len(neg), 4)
-        assert verdict["recall"] == round(int((pos >= t).sum()) / verdict["positives"], 4)
+        assert verdict["negatives"] == len(neg)
+        assert int((neg > t).sum()) <= verdict["flagged_negatives"] <= int((neg >= t).sum())
+        assert verdict["false_flag_rate"] == round(verdict["flagged_negatives"] / len(neg), 4)
+        assert int((pos > t).sum()) <= round(verdict["recall"] * verdict["positives"]) <= int((pos >= t).sum())
         # Every image was asked as it is and edited; none of its neighbours is a copy.
         assert verdict["negative_queries"] == {"as_indexed": 60, "edited": 60}
         # The summary says in plain words that there is next to nothing to group.
