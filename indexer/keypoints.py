@@ -11,8 +11,10 @@ beside it, `thumbs/ab/<hash>.kp`; verification reads that file instead.
 The file holds both sets exactly as `rerank` would find them from the small copy, so an answer
 is the same to the last digit with or without it. Its first line names the settings that made
 it (`signature()`); a file made by other settings, torn or unreadable counts as missing, and
-verification finds the keypoints itself as before. Cost: about 100 KB an image (500 + 2,000
-keypoints of 40 bytes), four times the small copy; `keep_keypoints = false` turns it off.
+verification finds the keypoints itself as before, and the next index run makes it again. The file
+also records the small copy's size, so one made again (`verify --repair`) is not matched with the old
+keypoints. Cost: up to 100 KB an image (500 + 2,000 keypoints of 40 bytes; 71 KiB on average on the
+quality benchmark), 3.5 times the small copy; `keep_keypoints = false` turns it off.
 """
 
 from __future__ import annotations
@@ -25,6 +27,8 @@ import struct
 from pathlib import Path
 
 import numpy as np
+
+from .fsutil import FILE_MODE
 
 log = logging.getLogger(__name__)
 
@@ -59,9 +63,11 @@ def signature() -> bytes:
     return f"{part(verify_config())};{part(fine_config())};cv{cv2.__version__}".encode()
 
 
-def encode(sets) -> bytes:
-    """The bytes of a sidecar holding `sets` (verify.Features, in order: the check's, the fine check's)."""
-    chunks = [_MAGIC, signature(), b"\n", struct.pack("<B", len(sets))]
+def encode(sets, small_copy_size: int) -> bytes:
+    """The bytes of a sidecar holding `sets` (verify.Features, in order: the check's, the fine check's) of a
+    small copy of `small_copy_size` bytes (a small copy made again, e.g. by `verify --repair` at another side,
+    no longer matches its old sidecar)."""
+    chunks = [_MAGIC, signature(), b"\n", struct.pack("<QB", small_copy_size, len(sets))]
     for f in sets:
         reason = f.reason.encode()
         chunks.append(_SET.pack(len(f), *f.size, *f.work_size, len(reason)))
@@ -70,16 +76,24 @@ def encode(sets) -> bytes:
     return b"".join(chunks)
 
 
-def decode(data: bytes, expected: bytes | None = None) -> list | None:
+def header() -> bytes:
+    """A usable sidecar's first line: the format and the settings that made it."""
+    return _MAGIC + signature() + b"\n"
+
+
+def decode(data: bytes, small_copy_size: int | None = None) -> list | None:
     """The Features kept in a sidecar's bytes, or None when they are not usable (another format or
-    signature, torn)."""
+    signature, made from a small copy of another size, torn)."""
     from .verify import Features
 
-    head, sep, body = data.partition(b"\n")
-    if not sep or not head.startswith(_MAGIC) or head[len(_MAGIC):] != (expected or signature()):
+    if not data.startswith(header()):
         return None
+    body = data[len(header()):]
     try:
-        (count,), at, out = struct.unpack_from("<B", body), 1, []
+        size, count = struct.unpack_from("<QB", body)
+        if small_copy_size is not None and size != small_copy_size:
+            return None
+        at, out = struct.calcsize("<QB"), []
         for _ in range(count):
             n, w, h, ww, wh, r = _SET.unpack_from(body, at)
             at += _SET.size
@@ -100,10 +114,11 @@ def load(small_copy: str | os.PathLike, which: int) -> object | None:
     if not is_small_copy(small_copy):
         return None
     try:
+        size = os.stat(small_copy).st_size
         data = sidecar(small_copy).read_bytes()
     except OSError:
         return None
-    sets = decode(data)
+    sets = decode(data, size)
     if sets is None:
         log.debug("kept keypoints of %s are not usable; finding them again", small_copy)
         return None
@@ -116,8 +131,9 @@ def find(small_copy: str | os.PathLike) -> bytes:
     from .rerank import VERIFY_SIDE, fine_config, verify_config
     from .verify import features_or_reason
 
+    size = os.stat(small_copy).st_size
     image = read_image(small_copy, max_side=VERIFY_SIDE)[0]
-    return encode([features_or_reason(image, verify_config()), features_or_reason(image, fine_config())])
+    return encode([features_or_reason(image, verify_config()), features_or_reason(image, fine_config())], size)
 
 
 def write(small_copy: str | os.PathLike, data: bytes) -> None:
@@ -127,6 +143,7 @@ def write(small_copy: str | os.PathLike, data: bytes) -> None:
     tmp = target.with_name(f".{target.name}.{os.getpid()}.{secrets.token_hex(4)}.tmp")
     try:
         with open(tmp, "xb") as fh:
+            os.fchmod(fh.fileno(), FILE_MODE)  # the service may run as another user
             fh.write(data)
         os.replace(tmp, target)
     except BaseException:
@@ -134,15 +151,25 @@ def write(small_copy: str | os.PathLike, data: bytes) -> None:
         raise
 
 
+def _current(small_copy: Path) -> bool:
+    """Whether a small copy's sidecar is there and was made by these settings (its first line only)."""
+    expected = header()
+    try:
+        with open(sidecar(small_copy), "rb") as fh:
+            return fh.read(len(expected)) == expected
+    except OSError:
+        return False
+
+
 def keep_missing(store) -> dict:
-    """Find and keep the keypoints of every readable content's small copy that has none kept; both cores
-    at once (ORB and decoding release the GIL). A small copy that cannot be read is left for
-    verification to report. Returns counts."""
+    """Find and keep the keypoints of every readable content's small copy that has none kept, or one made by
+    other settings (another OpenCV, another verification side); both cores at once (ORB and decoding release
+    the GIL). A small copy that cannot be read is left for verification to report. Returns counts."""
     from .cores import each_on_cores
     from .errors import ImageReadError
 
     todo = [store.thumb_path(r["hash"]) for r in store.catalog.readable_contents() if r["thumb"]]
-    todo = [p for p in todo if not sidecar(p).exists() and p.exists()]
+    todo = [p for p in todo if not _current(p) and p.exists()]
 
     def one(path: Path) -> bool:
         try:

@@ -247,7 +247,7 @@ SETTINGS: tuple[Setting, ...] = (
         _parse_bool,
         "Find every small copy's ORB keypoints at index time and keep them beside it "
         "(thumbs/ab/<hash>.kp, indexer/keypoints.py), so that verifying a query's candidates reads them "
-        "instead of finding them. Costs about 100 KB an image on disk and 3 to 10 ms of one core an image "
+        "instead of finding them. Costs about 70 KiB an image on disk and 5 to 10 ms of one core an image "
         "while indexing; answers are the same either way.",
     ),
     Setting(

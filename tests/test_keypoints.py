@@ -85,6 +85,28 @@ def test_a_torn_or_foreign_sidecar_counts_as_missing(copies):
     assert keypoints.load(path, 0) is None
 
 
+def test_a_small_copy_made_again_or_other_settings_make_the_sidecar_stale(copies, monkeypatch):
+    """A small copy re-written at another size no longer matches its sidecar; a sidecar made by other settings
+    (another OpenCV, say) is found stale by the index run's check and made again."""
+    from nearsight.indexer.images import save_thumbnail
+
+    path = copies["astronaut"]
+    keypoints.write(path, keypoints.find(path))
+    assert keypoints._current(path) and keypoints.load(path, 0) is not None
+    with Image.open(path) as im:
+        smaller = im.convert("RGB").resize((im.width // 2, im.height // 2))
+    save_thumbnail(smaller, path)  # as `verify --repair` would make it at another side
+    assert keypoints.load(path, 0) is None
+    keypoints.write(path, keypoints.find(path))
+    assert keypoints.load(path, 0).size == smaller.size
+    keypoints.signature.cache_clear()
+    monkeypatch.setattr("cv2.__version__", "0.0.0-other")
+    try:
+        assert not keypoints._current(path) and keypoints.load(path, 0) is None
+    finally:
+        keypoints.signature.cache_clear()
+
+
 def test_a_users_own_file_is_never_looked_beside(tmp_path):
     own = tmp_path / "holiday" / "beach.jpg"
     own.parent.mkdir()
@@ -94,7 +116,7 @@ def test_a_users_own_file_is_never_looked_beside(tmp_path):
     assert keypoints.load(own, 0) is None
 
 
-def test_verification_answers_the_same_with_or_without_kept_keypoints(copies, tmp_path):
+def test_verification_answers_the_same_with_or_without_kept_keypoints(copies, tmp_path, monkeypatch):
     """A 50 %-area crop of the brick half, re-saved as JPEG: every result's score and evidence are equal."""
     brick = _photo("brick")
     brick = brick.crop((0, 0, brick.width // 2, brick.height))
@@ -112,11 +134,15 @@ def test_verification_answers_the_same_with_or_without_kept_keypoints(copies, tm
     without = answer()
     for path in copies.values():
         keypoints.write(path, keypoints.find(path))
+    # With the sidecars there, no candidate's small copy may be decoded again: doing so now fails loudly.
+    def refuse(*args, **kwargs):
+        raise AssertionError("a candidate's keypoints were found again instead of read")
+
+    monkeypatch.setattr(rerank, "read_image", refuse)
     with_kept = answer()
+    monkeypatch.undo()
     assert json.dumps(with_kept, sort_keys=True) == json.dumps(without, sort_keys=True)
     assert with_kept[0]["id"] == 1 and with_kept[0]["evidence"]["verified"]
-    # And the features verification used did come from the sidecars.
-    assert rerank._features_at.cache_info().misses >= 1
     direct = verify_candidates(query, [keypoints.load(copies["brick"], 0)], config=verify_config())[0]
     assert direct.verified and direct.inliers == with_kept[0]["evidence"]["inliers"]
 
