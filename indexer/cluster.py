@@ -33,7 +33,7 @@ BATCH_FILES = 256
 IN_FLIGHT_PER_WORKER = 2  # batches queued per worker: keeps it busy, bounds memory
 RETRIES = 3
 
-_models: dict[str, tuple] = {}
+_models: dict[tuple[str, str], tuple] = {}
 _models_lock = threading.Lock()
 _worker_threads: int | None = None  # threads of a worker's encoder; None = every core (set by _single_thread_worker)
 
@@ -48,21 +48,28 @@ class BatchResult:
     errors: dict[int, str]
 
 
-def _model(model_dir: str):
-    """The worker's copy of the model, loaded once per process (tasks may run in threads)."""
+def _model(model_dir: str, runtime: str):
+    """The worker's copy of the model, loaded once per process (tasks may run in threads), run as the store's
+    `runtime` setting says (indexer/runtime.py)."""
     with _models_lock:
-        if model_dir not in _models:
-            from .runtime import load_encoder
+        if (model_dir, runtime) not in _models:
+            from .runtime import OnnxEncoder, load_encoder
 
-            _models[model_dir] = load_encoder(Path(model_dir), threads=_worker_threads)
-        return _models[model_dir]
+            encoder, card = load_encoder(Path(model_dir), runtime, threads=_worker_threads)
+            if _worker_threads == 1 and not isinstance(encoder, OnnxEncoder):
+                import torch
+
+                torch.set_num_threads(1)
+            _models[(model_dir, runtime)] = encoder, card
+        return _models[(model_dir, runtime)]
 
 
-def embed_batch(start: int, paths: Sequence[str], model_dir: str, batch_size: int = 64) -> BatchResult:
+def embed_batch(start: int, paths: Sequence[str], model_dir: str, batch_size: int = 64,
+                runtime: str = "auto") -> BatchResult:
     """Embed one batch of files with the model in `model_dir` (runs on a worker)."""
     from .embed import iter_embed_files
 
-    encoder, card = _model(model_dir)
+    encoder, card = _model(model_dir, runtime)
     size = int(card["image_size"])
     ok, blocks, errors = [], [], {}
     for ids, xb, block_errors in iter_embed_files(list(paths), encoder, size, batch_size=batch_size, workers=0):
@@ -80,7 +87,7 @@ def batches(n: int, size: int = BATCH_FILES) -> list[tuple[int, int]]:
 
 
 def iter_distributed(paths: Sequence[str], model_dir: Path, *, submit: Callable, as_completed: Callable,
-                     workers: int, batch_files: int = BATCH_FILES) -> Iterator[BatchResult]:
+                     workers: int, batch_files: int = BATCH_FILES, runtime: str = "auto") -> Iterator[BatchResult]:
     """Yield each batch's result as it completes, keeping about 2 batches per worker in flight.
 
     `submit(fn, *args)` returns a future; `as_completed(futures)` yields finished ones
@@ -93,7 +100,7 @@ def iter_distributed(paths: Sequence[str], model_dir: Path, *, submit: Callable,
     def top_up() -> None:
         while pending and len(running) < limit:
             lo, hi = pending.popleft()
-            running.add(submit(embed_batch, lo, list(map(str, paths[lo:hi])), model_dir))
+            running.add(submit(embed_batch, lo, list(map(str, paths[lo:hi])), model_dir, 64, runtime))
 
     top_up()
     while running:
@@ -115,8 +122,8 @@ def dask_client(address: str):
         raise UsageError(f"cannot reach the Dask scheduler at {address}: {exc}") from None
 
 
-def iter_on_client(client, paths: Sequence[str], model_dir: Path, *, batch_files: int = BATCH_FILES
-                   ) -> Iterator[BatchResult]:
+def iter_on_client(client, paths: Sequence[str], model_dir: Path, *, batch_files: int = BATCH_FILES,
+                   runtime: str = "auto") -> Iterator[BatchResult]:
     """`iter_distributed` over a Dask client: retries lost batches, sizes the queue by its workers."""
     from distributed import as_completed
 
@@ -131,21 +138,18 @@ def iter_on_client(client, paths: Sequence[str], model_dir: Path, *, batch_files
 
     log.info("embedding %d files on %d Dask worker threads in batches of %d", len(paths), workers, batch_files)
     yield from iter_distributed(paths, model_dir, submit=submit, as_completed=first_done, workers=workers,
-                                batch_files=batch_files)
+                                batch_files=batch_files, runtime=runtime)
 
 
 def _single_thread_worker() -> None:
-    """Each worker process uses one thread (torch's, or ONNX Runtime's): the processes, not threads, share
-    the cores."""
+    """Each worker process runs its encoder on one thread (ONNX Runtime's, or torch's, set when the model is
+    loaded, so a worker that runs ONNX never imports torch): the processes, not threads, share the cores."""
     global _worker_threads
-    import torch
-
-    torch.set_num_threads(1)
     _worker_threads = 1
 
 
-def iter_local(paths: Sequence[str], model_dir: Path, *, workers: int, batch_files: int = BATCH_FILES
-               ) -> Iterator[BatchResult]:
+def iter_local(paths: Sequence[str], model_dir: Path, *, workers: int, batch_files: int = BATCH_FILES,
+               runtime: str = "auto") -> Iterator[BatchResult]:
     """`iter_distributed` over a local pool of `workers` processes (spawned: torch and fork do not mix)."""
     import multiprocessing
     from concurrent.futures import ProcessPoolExecutor, as_completed
@@ -155,4 +159,4 @@ def iter_local(paths: Sequence[str], model_dir: Path, *, workers: int, batch_fil
     context = multiprocessing.get_context("spawn")
     with ProcessPoolExecutor(workers, mp_context=context, initializer=_single_thread_worker) as pool:
         yield from iter_distributed(paths, model_dir, submit=pool.submit, as_completed=as_completed,
-                                    workers=workers, batch_files=batch_files)
+                                    workers=workers, batch_files=batch_files, runtime=runtime)

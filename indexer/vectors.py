@@ -23,12 +23,12 @@ def _local_blocks(paths, model_dir: Path, encoder, size: int, batch_size: int, w
     yield from iter_embed_files(paths, encoder, size, batch_size=batch_size, workers=workers)
 
 
-def _cluster_blocks(paths, model_dir: Path, address: str):
+def _cluster_blocks(paths, model_dir: Path, address: str, runtime: str):
     """The same (ids, vectors, errors) blocks, computed by a Dask cluster's workers (cluster.py)."""
     from .cluster import dask_client, iter_on_client
 
     with dask_client(address) as client:
-        for r in iter_on_client(client, [str(p) for p in paths], model_dir):
+        for r in iter_on_client(client, [str(p) for p in paths], model_dir, runtime=runtime):
             yield r.start + r.ok, r.vectors, {r.start + k: v for k, v in r.errors.items()}
 
 
@@ -45,7 +45,7 @@ def embed_missing(store: Store, model_dir: Path, *, batch_size: int = 64, worker
     paths = [store.pixels_path(row) for row in rows]
     embedded, failed = 0, {}
     with Progress(len(paths), "embed", enabled=progress) as bar:
-        blocks = (_cluster_blocks(paths, model_dir, cluster) if cluster
+        blocks = (_cluster_blocks(paths, model_dir, cluster, store.settings.runtime) if cluster
                   else _local_blocks(paths, model_dir, encoder, size, batch_size, workers))
         for ids, xb, errors in blocks:
             if len(ids):
