@@ -457,8 +457,16 @@ def tune_pair_search(index: faiss.Index, xb: np.ndarray, ids: np.ndarray, thresh
         return {"params": {}, "pair_recall": 1.0, "sample_pairs": 0, "reached": True}
     current = int(ivf.nprobe)
     rng = np.random.default_rng(seed)
-    rows = np.sort(rng.choice(xb.shape[0], min(sample, xb.shape[0]), replace=False))
+    # Rows the index holds, paired with rows it holds: a file scanned since the index was built can have
+    # pairs no nprobe finds, and counting them would tune towards the slowest setting for nothing.
+    stored = stored_ids(index)
+    held = np.flatnonzero(np.isin(ids, stored))
+    rows = np.sort(rng.choice(held, min(sample, len(held)), replace=False))
     truth = exact_pairs_of(xb, ids, rows, threshold)
+    if len(held) < len(ids) and truth:
+        ends = np.array(sorted(truth), np.int64)
+        kept = np.isin(ends[:, 0], stored) & np.isin(ends[:, 1], stored)
+        truth = {(int(a), int(b)) for a, b in ends[kept]}
     if len(truth) < MIN_SAMPLE_PAIRS:
         return {"params": {"nprobe": current}, "pair_recall": None, "sample_pairs": len(truth), "reached": None}
     recall, value = 0.0, current
@@ -467,8 +475,9 @@ def tune_pair_search(index: faiss.Index, xb: np.ndarray, ids: np.ndarray, thresh
         recall = len(truth & set(zip(a.tolist(), b.tolist()))) / len(truth)
         if recall >= target:
             break
-    log.info("pair search: nprobe %d finds %.3f of %d exact pairs on a sample of %d rows (query nprobe %d)",
-             value, recall, len(truth), len(rows), current)
+    (log.info if recall >= target else log.warning)(
+        "pair search: nprobe %d finds %.3f of %d exact pairs on a sample of %d rows (query nprobe %d)",
+        value, recall, len(truth), len(rows), current)
     return {"params": {"nprobe": value}, "pair_recall": round(recall, 4), "sample_pairs": len(truth),
             "reached": recall >= target}
 
@@ -570,7 +579,7 @@ def range_pairs(index: faiss.Index, xb: np.ndarray, ids: np.ndarray, threshold: 
     a, b, sims = canonical_pairs(np.concatenate(parts_a), np.concatenate(parts_b).astype(np.int64),
                                   np.concatenate(parts_s))
     log.debug("range_pairs(%s, t=%.3f): %d pairs from %d queries in %.1f s", method, threshold,
-             a.shape[0], xb.shape[0], time.perf_counter() - start_time)
+             a.shape[0], queries.shape[0], time.perf_counter() - start_time)
     return a, b, sims
 
 

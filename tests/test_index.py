@@ -234,6 +234,17 @@ def test_the_tuned_self_join_finds_the_exact_pairs_with_a_smaller_nprobe(copies_
     assert ix.exact_pairs_of(xb, ids, rows, t) <= pairs.keys()
 
 
+def test_pair_search_measures_only_files_the_index_holds(copies_set):
+    """Files scanned since the index was built (in xb, not in the index) have pairs no nprobe can find;
+    the tuning leaves them out instead of climbing to the query's nprobe for nothing."""
+    xb, ids = copies_set
+    held = np.r_[0:6000, 8000:8400]  # the 2,000 rows 6000-7999 came after the build; the copies are held
+    index = ix.build_index(np.ascontiguousarray(xb[held]), ids[held], "IVF128,SQ8")
+    ix.apply_search_params(index, {"nprobe": 64})
+    tuned = ix.tune_pair_search(index, xb, ids, 0.9)
+    assert tuned["reached"] and tuned["params"]["nprobe"] < 64
+
+
 def test_pair_search_keeps_the_query_nprobe_when_the_sample_has_too_few_pairs(clustered_set):
     xb, ids = clustered_set
     index = ix.build_index(xb, ids, "IVF64,SQ8")
