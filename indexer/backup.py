@@ -173,9 +173,8 @@ def backup_store(store: Store, dest: str | os.PathLike, *, small_copies: bool = 
             shutil.copy2(store.root / SETTINGS_FILE, work / SETTINGS_FILE)
         thumbs = 0
         if small_copies and store.thumbs_dir.is_dir():
-            before = counts["linked"] + counts["copied"]
-            _copy_tree(store.thumbs_dir, work / store.thumbs_dir.name, counts)
-            thumbs = counts["linked"] + counts["copied"] - before
+            _copy_tree(store.thumbs_dir, work / store.thumbs_dir.name, counts)  # with their kept keypoints
+            thumbs = sum(1 for _ in (work / store.thumbs_dir.name).rglob("*.jpg"))
         if current:
             atomic_write_text(work / "generations" / "CURRENT", current + "\n")
         model_pointer = store.read_pointer("models/CURRENT")

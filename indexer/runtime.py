@@ -153,7 +153,8 @@ def load_encoder(model_dir: Path, runtime: str = "auto", threads: int | None = N
                 log.warning("ONNX Runtime cannot load %s (%s); using PyTorch", model_dir / ONNX_FILE, exc)
         if runtime == "onnx":
             raise NotReadyError(f"runtime = onnx, but {model_dir} has no usable {ONNX_FILE} or onnxruntime is "
-                                "not installed; run `nearsight index` to export it, or set runtime = auto")
+                                "not installed: install onnx and onnxruntime and run `nearsight index` to export "
+                                "the model, or set runtime = auto")
     from .model import load_model
 
     return load_model(model_dir)

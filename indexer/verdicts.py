@@ -46,8 +46,10 @@ def read_verdicts_csv(path: Path) -> list[VerdictRow]:
             reader = csv.DictReader(fh)
             missing = {"a", "b", "verdict"} - set(reader.fieldnames or [])
             if missing:
+                renamed = " (the columns path_a and path_b are now called a and b)" if {"path_a", "path_b"} <= set(
+                    reader.fieldnames or []) else ""
                 raise UsageError(f"{path}: the header must name the columns a, b and verdict "
-                                 f"(missing {', '.join(sorted(missing))})")
+                                 f"(missing {', '.join(sorted(missing))}){renamed}")
             for line, row in enumerate(reader, start=2):
                 verdict = (row["verdict"] or "").strip().lower()
                 if verdict not in VERDICTS:

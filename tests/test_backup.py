@@ -28,7 +28,9 @@ def test_the_backup_is_a_store_that_answers_as_the_original_does(store_dir, serv
     dest = tmp_path / "backup"
     with open_plain_store(store_dir) as store:
         report = backup_store(store, dest)
-    assert report["generation"] and report["models"] and report["small_copies"] > 0
+        small = len(store.catalog.contents_with_small_copies())
+    assert report["generation"] and report["models"] and report["small_copies"] == small > 0
+    assert len(list((dest / "thumbs").rglob("*.kp"))) == small  # each with the keypoints kept beside it
     conn = sqlite3.connect(dest / "catalog.sqlite")
     assert conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
     conn.close()

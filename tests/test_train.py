@@ -293,7 +293,7 @@ def test_one_verdict_file_format_for_import_and_fine_tuning(tmp_path):
     with pytest.raises(UsageError, match="line 2"):
         read_verdicts_csv(bad)
     (tmp_path / "cols.csv").write_text("path_a,path_b,verdict\n1,2,same\n")
-    with pytest.raises(UsageError, match="missing a, b"):
+    with pytest.raises(UsageError, match="missing a, b.*now called a and b"):
         read_verdicts_csv(tmp_path / "cols.csv")
 
 
