@@ -33,7 +33,7 @@ from .fsutil import FILE_MODE
 log = logging.getLogger(__name__)
 
 SUFFIX = ".kp"
-_MAGIC = b"NSKP1 "
+_MAGIC = b"NSKP2 "  # 2: the small copy's size after the first line
 _SET = struct.Struct("<IHHHHH")  # keypoints, width, height, working width, working height, reason length
 
 
