@@ -4,7 +4,7 @@ Importing PyTorch costs one and a half to three seconds on this project's machin
 one-image `nearsight similar` (benchmarks/results/startup.md). Every model folder therefore also
 holds the encoder exported to ONNX (`model.onnx`, written when the model is saved, or by the next
 `nearsight index` for a model saved before), and queries, the service and the embedding stage run it
-with ONNX Runtime when it is installed. Its vectors equal PyTorch's to about 1e-6
+with ONNX Runtime when it is installed. Its vectors equal PyTorch's to about 2e-5
 (tests/test_runtime.py); the file is tied to the weights it was exported from (`model.onnx.json`: its
 own BLAKE2b and the weights' hash from the card), so a file that does not match is never used.
 

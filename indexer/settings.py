@@ -239,7 +239,7 @@ SETTINGS: tuple[Setting, ...] = (
         "What runs the trained encoder for queries, the service and embedding: auto (ONNX Runtime on the "
         "model's exported model.onnx when both are there, else PyTorch), onnx (refuse to go on without it) "
         "or torch. ONNX Runtime answers without importing PyTorch, which is most of a one-image `similar`'s "
-        "start-up; the vectors are the same to about 1e-6.",
+        "start-up; the vectors are the same to about 2e-5.",
     ),
     Setting(
         "keep_keypoints",
