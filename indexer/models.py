@@ -78,7 +78,7 @@ def train_into_store(store: Store, config, *, resume: bool = False, progress: bo
 
 def fine_tune_into_store(store: Store, pairs, config=None, *, progress: bool | None = None):
     """Fine-tune the current model on verdict pairs into a new model version, made current."""
-    from .train import FineTuneConfig, fine_tune_from_pairs
+    from .fine_tune import FineTuneConfig, fine_tune_from_pairs
 
     base = require_model_dir(store)
     work = _work_dir(store)

@@ -8,8 +8,7 @@ whole batches of views are made in the training process with per-sample
 parameters, and some pictures enter a batch as two non-overlapping regions that
 are negatives of each other (`train_batches`, `batch_views`).
 
-`fine_tune_from_pairs` adjusts a trained model with human verdicts
-("same" / "different" pairs) using a margin or batch-hard triplet loss.
+Fine-tuning a trained model from a person's verdicts lives in `fine_tune.py`.
 """
 
 from __future__ import annotations
@@ -31,17 +30,17 @@ import numpy as np
 import torch
 from PIL import Image
 
-from .embed import decode_files, embed_images
+from .embed import decode_files
 from .encoder import DEFAULT_ARCH, Encoder, ProjectionHead, create_encoder
 from .errors import UsageError
 from .fsutil import atomic_write_bytes
 from .heldout import heldout_check
-from .losses import koleo, margin_contrastive, nt_xent, triplet_hard
-from .model import load_model, save_model
+from .losses import koleo, nt_xent
+from .model import save_model
 from .progress import Progress
 from .split_batch import SplitEncoder
 from .train_batches import VIEW_MODES, decode_pictures, plan_batches, view_batches
-from .views import ViewRecipe, make_views
+from .views import ViewRecipe
 
 log = logging.getLogger(__name__)
 
@@ -250,7 +249,7 @@ def _fingerprint(paths: Sequence[Path]) -> str:
     return digest.hexdigest()
 
 
-def _sample_curve(losses: list[float]) -> list[list[float]]:
+def sample_curve(losses: list[float]) -> list[list[float]]:
     """(step, mean loss) at most _LOSS_CURVE_POINTS points, each the mean of its window."""
     if not losses:
         return []
@@ -338,7 +337,7 @@ def _model_card(config: TrainConfig, run: dict, *, images_given: int, trained_on
         "steps": run["step"],
         "epochs": round(run["step"] * run["pictures_per_step"] / len(trained_on), 3),
         "stopped_by": run["stopped_by"],
-        "loss_curve": _sample_curve(run["losses"]),
+        "loss_curve": sample_curve(run["losses"]),
         "train_seconds": round(run["elapsed_s"], 1),
         "images_per_s": round(run["images_per_s"], 1),
         "wall_seconds": round(wall_s, 1),
@@ -500,147 +499,3 @@ def _run_loop(cache, encoder: Encoder, head: ProjectionHead, config: TrainConfig
     encoder.eval()
     return {"step": state["step"], "losses": state["losses"], "elapsed_s": state["elapsed_s"],
             "images_per_s": images_per_s, "stopped_by": stopped_by, "pictures_per_step": plan.pictures}
-
-
-# --- fine-tuning from human verdicts ------------------------------------------
-
-
-# Mild views for fine-tuning: the pairs carry the signal, the views only keep the
-# encoder from memorising exact pixels.
-FINE_TUNE_RECIPE = ViewRecipe(
-    crop_scale=(0.7, 1.0), rotate_p=0.0, jitter_p=0.3, brightness=0.2, contrast=0.2, saturation=0.2, hue=0.0,
-    grayscale_p=0.0, blur_p=0.1, jpeg_p=0.2, border_p=0.0, overlay_p=0.0,
-)
-
-
-@dataclass(frozen=True)
-class FineTuneConfig:
-    loss: str = "margin"  # "margin" (Hadsell et al. 2006) or "triplet_hard" (batch-hard triplets)
-    margin: float = 1.0  # on unit vectors: same pairs pulled together, different pairs pushed to >= margin
-    steps: int = 200
-    batch_size: int = 32  # pairs per step
-    lr: float = 1e-4
-    weight_decay: float = 1e-4
-    seed: int = 0
-
-
-@dataclass
-class FineTuneResult:
-    model_dir: Path
-    version: str
-    fine_tuned_from: str | None
-    steps: int
-    pairs_used: int
-    pairs_skipped: int
-    before: dict  # mean distance of same / different pairs before fine-tuning
-    after: dict
-
-
-def _components(n: int, links: list[tuple[int, int]]) -> np.ndarray:
-    """Label of the connected component of each of n nodes (union-find)."""
-    parent = list(range(n))
-
-    def find(i: int) -> int:
-        while parent[i] != i:
-            parent[i] = parent[parent[i]]
-            i = parent[i]
-        return i
-
-    for a, b in links:
-        parent[find(a)] = find(b)
-    return np.array([find(i) for i in range(n)])
-
-
-def _pair_distances(encoder: Encoder, images: list[Image.Image], pairs: np.ndarray, size: int) -> dict:
-    x = embed_images(encoder, images, size)
-    d = np.linalg.norm(x[pairs[:, 0]] - x[pairs[:, 1]], axis=1)
-    same = pairs[:, 2] == 1
-    return {"same_mean_distance": float(d[same].mean()) if same.any() else None,
-            "different_mean_distance": float(d[~same].mean()) if (~same).any() else None}
-
-
-def _freeze_batchnorm(module: torch.nn.Module) -> None:
-    """Keep BatchNorm running statistics fixed: small verdict batches would skew them (common practice)."""
-    for m in module.modules():
-        if isinstance(m, torch.nn.modules.batchnorm._BatchNorm):
-            m.eval()
-
-
-def fine_tune_from_pairs(
-    model_dir: Path,
-    pairs: Sequence[tuple[Path, Path, bool]],
-    *,
-    out_dir: Path | None = None,
-    config: FineTuneConfig = FineTuneConfig(),
-    progress: bool = True,
-) -> FineTuneResult:
-    """Fine-tune the model in `model_dir` on verdict pairs and save it to `out_dir` (default: in place)."""
-    if config.loss not in ("margin", "triplet_hard"):
-        raise UsageError(f"fine-tuning loss must be 'margin' or 'triplet_hard', got {config.loss!r}")
-    encoder, card = load_model(model_dir)
-    size = int(card["image_size"])
-    unique = sorted({str(p) for a, b, _ in pairs for p in (a, b)})
-    position = {p: i for i, p in enumerate(unique)}
-    images: dict[int, Image.Image] = {}
-    for index, pixels, error in decode_files(unique, round(1.5 * size), workers=0):
-        if error is None:
-            images[index] = Image.fromarray(pixels)
-        else:
-            log.warning("skipping %s: %s", unique[index], error)
-    rows = [(position[str(a)], position[str(b)], int(same)) for a, b, same in pairs]
-    usable = np.array([r for r in rows if r[0] in images and r[1] in images], dtype=np.int64).reshape(-1, 3)
-    if len(usable) == 0:
-        raise UsageError("no verdict pair has two readable images")
-    # Re-index to the readable images only.
-    keep = sorted(images)
-    remap = {old: new for new, old in enumerate(keep)}
-    usable[:, 0] = [remap[i] for i in usable[:, 0]]
-    usable[:, 1] = [remap[i] for i in usable[:, 1]]
-    pics = [images[i] for i in keep]
-    labels = torch.as_tensor(_components(len(pics), [(a, b) for a, b, s in usable if s]))
-
-    before = _pair_distances(encoder, pics, usable, size)
-    losses = _fine_tune_loop(encoder, pics, usable, labels, size, config, progress)
-    after = _pair_distances(encoder, pics, usable, size)
-    log.info("fine-tuned on %d pairs: same-pair distance %s -> %s, different-pair distance %s -> %s",
-             len(usable), before["same_mean_distance"], after["same_mean_distance"],
-             before["different_mean_distance"], after["different_mean_distance"])
-
-    new_card = {k: v for k, v in card.items() if k not in ("version", "created", "weights_blake2b", "libraries", "format")}
-    new_card["fine_tuned_from"] = card.get("version")
-    new_card["fine_tune"] = {"config": asdict(config), "pairs_used": int(len(usable)),
-                             "pairs_skipped": len(pairs) - int(len(usable)), "loss_curve": _sample_curve(losses),
-                             "before": before, "after": after}
-    target = Path(out_dir) if out_dir is not None else Path(model_dir)
-    version = save_model(target, encoder, new_card)
-    return FineTuneResult(target, version, card.get("version"), config.steps, int(len(usable)),
-                          len(pairs) - int(len(usable)), before, after)
-
-
-def _fine_tune_loop(encoder: Encoder, pics: list[Image.Image], pairs: np.ndarray, labels: torch.Tensor,
-                    size: int, config: FineTuneConfig, progress: bool) -> list[float]:
-    torch.manual_seed(config.seed)
-    rng = np.random.default_rng(config.seed)
-    views = make_views(FINE_TUNE_RECIPE, size)
-    optimizer = torch.optim.AdamW(encoder.parameters(), lr=config.lr, weight_decay=config.weight_decay)
-    encoder.train()
-    _freeze_batchnorm(encoder)
-    losses = []
-    with Progress(config.steps, "fine-tune", enabled=progress, unit="step", every_s=30.0) as bar:
-        for _ in range(config.steps):
-            batch = pairs[rng.choice(len(pairs), size=min(config.batch_size, len(pairs)), replace=False)]
-            xa = torch.stack([views(pics[i]) for i in batch[:, 0]])
-            xb = torch.stack([views(pics[i]) for i in batch[:, 1]])
-            za, zb = encoder(torch.cat([xa, xb])).chunk(2)
-            if config.loss == "margin":
-                y = torch.as_tensor(1 - batch[:, 2])  # Hadsell et al.: y = 0 similar, 1 dissimilar
-                loss = margin_contrastive(za, zb, y, config.margin)
-            else:
-                loss = triplet_hard(torch.cat([za, zb]), torch.cat([labels[batch[:, 0]], labels[batch[:, 1]]]), config.margin)
-            optimizer.zero_grad(set_to_none=True)
-            loss.backward()
-            optimizer.step()
-            losses.append(float(loss.item()))
-            bar.update(1, loss=f"{losses[-1]:.3f}")
-    encoder.eval()
-    return losses

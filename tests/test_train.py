@@ -19,13 +19,8 @@ from nearsight.indexer.encoder import create_encoder, preprocess
 from nearsight.indexer.errors import NearsightError, NotReadyError, UsageError
 from nearsight.indexer.heldout import heldout_check, ranks_of_originals
 from nearsight.indexer.model import load_model, save_model
-from nearsight.indexer.train import (
-    CHECKPOINT_FILE,
-    FineTuneConfig,
-    TrainConfig,
-    fine_tune_from_pairs,
-    train,
-)
+from nearsight.indexer.fine_tune import FineTuneConfig, fine_tune_from_pairs
+from nearsight.indexer.train import CHECKPOINT_FILE, TrainConfig, train
 from nearsight.indexer.views import ViewRecipe, make_views
 
 PHOTOS = ("astronaut", "coffee", "chelsea", "rocket", "camera", "coins", "immunohistochemistry",
