@@ -34,6 +34,7 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from nearsight.indexer import index as ix  # noqa: E402
+from nearsight.indexer import index_spec as spec_of  # noqa: E402
 from nearsight.indexer.groups import ImageMeta, build_groups  # noqa: E402
 
 BLOCK = 100_000
@@ -106,7 +107,7 @@ def exact_pairs_for(xb, ids, rows, threshold):
 def bench_groups(xb, ids, planted, threshold, seed, compare: bool = True):
     rng = np.random.default_rng(seed)
     n, dim = xb.shape
-    spec = ix.choose_spec(n, dim)
+    spec = spec_of.choose_spec(n, dim)
     t0 = time.perf_counter()
     index = ix.build_index(xb, ids, spec)
     t_build = time.perf_counter() - t0
@@ -151,7 +152,7 @@ def bench_groups(xb, ids, planted, threshold, seed, compare: bool = True):
 
 
 def query_specs(n: int, dim: int) -> dict[str, str]:
-    nlist = ix.ivf_nlist(n)
+    nlist = spec_of.ivf_nlist(n)
     return {"Flat": "IDMap2,Flat", "IVF-SQ8": f"IVF{nlist},SQ8", "IVF-PQ": f"IVF{nlist},PQ{dim // 4}",
             "HNSW32": "IDMap2,HNSW32"}
 

@@ -17,6 +17,7 @@ import numpy as np
 
 from . import generations
 from . import index as faiss_index
+from .index_spec import choose_spec
 from .classic import DEFAULT_CLASSIC_WEIGHT
 from .errors import ImageReadError, NotReadyError
 from .fusion import fit_classic_weight
@@ -177,7 +178,7 @@ def build_generation(store: Store, model_dir, *, t_near: float, t_similar: float
         "whitening": "pca-shrunk",
         "fusion": fusion.to_dict() if fusion is not None else {"classic_weight": whitening.classic_weight,
                                                                  "reason": "default (not calibrated)"},
-        "index_spec": index_spec or faiss_index.choose_spec(len(ids), xb.shape[1]),
+        "index_spec": index_spec or choose_spec(len(ids), xb.shape[1]),
         "search_params": tuning["params"],
         "recall_at_10": tuning["recall"],
         "build": {"kind": "full", "reason": reason, "since_full": {"indexed": n, "changes": 0}},

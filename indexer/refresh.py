@@ -40,6 +40,7 @@ from . import index as faiss_index
 from .build import build_generation, calibrate_thresholds, compute_pairs, groups_from_pairs, \
     publish_generation, verify_floor_of, whitened_vectors, with_verified_pairs
 from .groups import Group
+from .index_spec import choose_spec
 from .model import read_card
 from .pause import pause_at
 from .regions import regions_extra, regions_for_generation
@@ -96,7 +97,7 @@ def choose_build(prev, change: Change | None, model: str, index_spec: str | None
     if prev.meta.get("model") != model:
         return "full", f"new model {model} (generation {prev.name} used {prev.meta.get('model')})"
     spec = prev.meta.get("index_spec", "")
-    wanted = index_spec or faiss_index.choose_spec(max(1, len(change.ids)), dim)
+    wanted = index_spec or choose_spec(max(1, len(change.ids)), dim)
     if (index_spec and index_spec != spec) or _family(wanted) != _family(spec):
         return "full", f"index spec {wanted} instead of {spec}"
     if _family(spec) == "hnsw" and len(change.removed) + len(change.replaced):

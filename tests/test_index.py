@@ -10,6 +10,7 @@ import pytest
 from sklearn.neighbors import NearestNeighbors
 
 from nearsight.indexer import index as ix
+from nearsight.indexer import index_spec as spec_of
 from nearsight.indexer.errors import NotFoundError, NotReadyError, UsageError
 
 
@@ -337,16 +338,16 @@ def test_load_missing_or_corrupt(tmp_path):
 # ------------------------------------------------------------------ choosing a spec
 
 def test_choose_spec():
-    assert ix.choose_spec(1000, 128) == "IDMap2,Flat"
-    assert ix.choose_spec(ix.EXACT_MAX, 128) == "IDMap2,Flat"
+    assert spec_of.choose_spec(1000, 128) == "IDMap2,Flat"
+    assert spec_of.choose_spec(spec_of.EXACT_MAX, 128) == "IDMap2,Flat"
     n = 1_000_000
-    assert ix.choose_spec(n, 128) == "IVF4000,SQ8"  # 4 * sqrt(1e6)
-    assert ix.choose_spec(n, 128, 10**10) == "IDMap2,HNSW32"
-    assert ix.choose_spec(n, 128, 200 * 10**6) == "IVF4000,SQ8"  # 136 bytes/vector fits
-    pq = ix.choose_spec(n, 128, 60 * 10**6)
-    assert pq.startswith("IVF4000,PQ") and n * ix.bytes_per_vector(pq, 128) <= 60 * 10**6
+    assert spec_of.choose_spec(n, 128) == "IVF4000,SQ8"  # 4 * sqrt(1e6)
+    assert spec_of.choose_spec(n, 128, 10**10) == "IDMap2,HNSW32"
+    assert spec_of.choose_spec(n, 128, 200 * 10**6) == "IVF4000,SQ8"  # 136 bytes/vector fits
+    pq = spec_of.choose_spec(n, 128, 60 * 10**6)
+    assert pq.startswith("IVF4000,PQ") and n * spec_of.bytes_per_vector(pq, 128) <= 60 * 10**6
     with pytest.raises(UsageError, match="too small"):
-        ix.choose_spec(n, 128, 10**6)
+        spec_of.choose_spec(n, 128, 10**6)
 
 
 def test_bytes_per_vector_matches_serialized_codes(duplicate_set):
@@ -355,8 +356,8 @@ def test_bytes_per_vector_matches_serialized_codes(duplicate_set):
     xb, ids = np.ascontiguousarray(xb[:1000]), ids[:1000]
     for spec in ("IVF8,SQ8", "IVF8,PQ4", "IVF8,PQ8x4"):
         index = ix.build_index(xb, ids, spec)
-        size = len(faiss.serialize_index(index)) - ix.fixed_bytes(spec, 32)
-        assert size / len(xb) == pytest.approx(ix.bytes_per_vector(spec, 32), rel=0.25), spec
+        size = len(faiss.serialize_index(index)) - spec_of.fixed_bytes(spec, 32)
+        assert size / len(xb) == pytest.approx(spec_of.bytes_per_vector(spec, 32), rel=0.25), spec
 
 
 # ------------------------------------------------------------------ bad input
