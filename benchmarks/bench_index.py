@@ -92,18 +92,6 @@ def disk_bytes(index) -> int:
         return path.stat().st_size
 
 
-def exact_pairs_for(xb, ids, rows, threshold):
-    """Brute force (NumPy): all pairs (query id, other id) >= threshold for the sample rows."""
-    found = set()
-    for start in range(0, xb.shape[0], BLOCK):
-        S = xb[rows] @ xb[start:start + BLOCK].T
-        qi, bi = np.nonzero(S >= threshold)
-        for a, b in zip(ids[rows[qi]].tolist(), ids[start + bi].tolist()):
-            if a != b:
-                found.add((min(a, b), max(a, b)))
-    return found
-
-
 def bench_groups(xb, ids, planted, threshold, seed, compare: bool = True):
     rng = np.random.default_rng(seed)
     n, dim = xb.shape
@@ -137,7 +125,7 @@ def bench_groups(xb, ids, planted, threshold, seed, compare: bool = True):
     got = set(zip(a.tolist(), b.tolist()))
     planted_found = sum((min(p, q), max(p, q)) in got for p, q in planted.tolist())
     rows = rng.choice(n, 500, replace=False)
-    truth = exact_pairs_for(xb, ids, rows, threshold)
+    truth = ix.exact_pairs_of(xb, ids, rows, threshold)  # brute force (checked against NumPy in tests)
     sample_ids = set(ids[rows].tolist())
     mine = {p for p in got if p[0] in sample_ids or p[1] in sample_ids}
     pair_recall = len(mine & truth) / max(1, len(truth))
