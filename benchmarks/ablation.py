@@ -5,8 +5,8 @@ re-describes the collection and the queries with that model once (learned vector
 classical descriptors, mirrored queries) and scores every combination of the levers
 that act after training:
 
-* whitening of the learned part (indexer/whiten.py);
-* fusion with a classical descriptor at weight w (indexer/classic.py);
+* whitening of the learned part (indexer/matching/whiten.py);
+* fusion with a classical descriptor at weight w (indexer/learning/classic.py);
 * flip-robust queries: the better of the image and its mirror;
 * query-adaptive score normalisation: s - beta * (mean of the query's top similarities
   to a background set drawn from the collection), optionally also the reference's own
@@ -55,10 +55,10 @@ def describe(paths: Sequence[Path], model_dir: Path, classics: Sequence[str], mi
     with `regions`, the rows are each file's regions in REGIONS order instead."""
     import torch
 
-    from nearsight.indexer.classic import classic_descriptor
-    from nearsight.indexer.encoder import pixels, preprocess
-    from nearsight.indexer.images import read_image
-    from nearsight.indexer.model import load_model
+    from nearsight.indexer.learning.classic import classic_descriptor
+    from nearsight.indexer.learning.encoder import pixels, preprocess
+    from nearsight.indexer.reading.images import read_image
+    from nearsight.indexer.learning.model import load_model
 
     encoder, card = load_model(model_dir)
     size = int(card["image_size"])
@@ -87,7 +87,7 @@ class Lever:
     beta: float = 0.0
     regions: str | None = None  # db side: also the best of each image's region descriptors ...
     region_penalty: float = 0.0  # ... less this
-    verify: int = 0  # geometric verification of each query's best `verify` candidates (indexer/rerank.py)
+    verify: int = 0  # geometric verification of each query's best `verify` candidates (indexer/matching/rerank.py)
     symmetric: bool = False  # normalise by the reference's background statistic too
 
     @property
@@ -129,7 +129,7 @@ def _symmetric(x: Described, mirrored: Described) -> Described:
 
 
 def _space(lever: Lever, xb: Described, *others: Described):
-    from nearsight.indexer.whiten import fit_whitening, identity
+    from nearsight.indexer.matching.whiten import fit_whitening, identity
 
     d = xb.learned.shape[1]
     w = lever.weight if lever.classic else 0.0
@@ -216,14 +216,14 @@ class Verifier:
         self.images: dict[int, object] = {}
 
     def _image(self, path: Path):
-        from nearsight.indexer.images import read_image
-        from nearsight.indexer.rerank import VERIFY_SIDE
+        from nearsight.indexer.reading.images import read_image
+        from nearsight.indexer.matching.rerank import VERIFY_SIDE
 
         return read_image(path, max_side=VERIFY_SIDE)[0]
 
     def verified(self, q: int, refs: Sequence[int]) -> list[bool]:
-        from nearsight.indexer.rerank import VERIFY_SIDE
-        from nearsight.indexer.verify import VerifyConfig, verify_candidates
+        from nearsight.indexer.matching.rerank import VERIFY_SIDE
+        from nearsight.indexer.matching.verify import VerifyConfig, verify_candidates
 
         todo = [r for r in refs if (q, r) not in self.done]
         if todo:
@@ -236,7 +236,7 @@ class Verifier:
         return [self.done[q, r] for r in refs]
 
     def rerank(self, pred: metrics.Predictions, top: int) -> metrics.Predictions:
-        from nearsight.indexer.rerank import boosted
+        from nearsight.indexer.matching.rerank import boosted
 
         score = pred.score.copy()
         for q in np.unique(pred.q):

@@ -31,12 +31,12 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from benchmarks.common import machine  # noqa: E402
-from nearsight.indexer.build import recalibrate  # noqa: E402
-from nearsight.indexer.calibrate import CalibrationConfig  # noqa: E402
+from nearsight.indexer.building.build import recalibrate  # noqa: E402
+from nearsight.indexer.calibration.calibrate import CalibrationConfig  # noqa: E402
 from nearsight.indexer.demo import demo_pairs, pair_quality, run_demo  # noqa: E402
-from nearsight.indexer.generations import require_current  # noqa: E402
-from nearsight.indexer.settings import load_settings  # noqa: E402
-from nearsight.indexer.store import Store  # noqa: E402
+from nearsight.indexer.matching.generations import require_current  # noqa: E402
+from nearsight.indexer.core.settings import load_settings  # noqa: E402
+from nearsight.indexer.storage.store import Store  # noqa: E402
 
 TARGETS = (0.95, 0.99, 0.995)
 

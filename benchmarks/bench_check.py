@@ -67,7 +67,7 @@ def main() -> int:
 
     from nearsight.demo_data._layout import ROOT as ARCHIVE_DIR
     from nearsight.indexer.demo import ensure_archive
-    from nearsight.indexer.query_verdict import QueryVerdictConfig
+    from nearsight.indexer.matching.query_verdict import QueryVerdictConfig
 
     work = args.work
     work.mkdir(parents=True, exist_ok=True)

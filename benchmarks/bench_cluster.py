@@ -2,7 +2,7 @@
 
 In one run:
 
-* embedding throughput of the batch path (`indexer.cluster`, the code `--cluster` runs) with
+* embedding throughput of the batch path (`indexer.matching.cluster`, the code `--cluster` runs) with
   1, 2 and 4 local worker processes, and over a Dask `distributed.LocalCluster` with 2
   workers, against the in-process path (`embed_files` with a decoding pool, what `index`
   runs without `--cluster`), as ratios on the same files;
@@ -34,11 +34,11 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from benchmarks.bench_read import make_small_jpegs  # noqa: E402
 from benchmarks.common import DEFAULT_LIBRARIES, machine  # noqa: E402
-from nearsight.indexer import index as ix  # noqa: E402
-from nearsight.indexer.cluster import iter_local, iter_on_client  # noqa: E402
-from nearsight.indexer.embed import embed_files  # noqa: E402
-from nearsight.indexer.encoder import DEFAULT_ARCH, create_encoder  # noqa: E402
-from nearsight.indexer.model import save_model  # noqa: E402
+from nearsight.indexer.matching import index as ix  # noqa: E402
+from nearsight.indexer.matching.cluster import iter_local, iter_on_client  # noqa: E402
+from nearsight.indexer.learning.embed import embed_files  # noqa: E402
+from nearsight.indexer.learning.encoder import DEFAULT_ARCH, create_encoder  # noqa: E402
+from nearsight.indexer.learning.model import save_model  # noqa: E402
 
 SIZE = 128
 DIM = 128

@@ -48,12 +48,12 @@ def _timed(fn) -> float:
 
 
 def measure(files: list[Path], work: Path, model_dir: Path, label: str) -> dict:
-    from nearsight.indexer.embed import decode_files, embed_files
-    from nearsight.indexer.images import read_image
-    from nearsight.indexer.scan import scan_source
-    from nearsight.indexer.settings import load_settings
-    from nearsight.indexer.store import Store
-    from nearsight.indexer.vectors import embed_missing
+    from nearsight.indexer.learning.embed import decode_files, embed_files
+    from nearsight.indexer.reading.images import read_image
+    from nearsight.indexer.reading.scan import scan_source
+    from nearsight.indexer.core.settings import load_settings
+    from nearsight.indexer.storage.store import Store
+    from nearsight.indexer.matching.vectors import embed_missing
 
     cores = os.cpu_count() or 1
     for path in files[:2]:  # page cache and Pillow's plugin registry warm for every route alike
@@ -105,8 +105,8 @@ def main() -> None:
     parser.add_argument("--small", type=int, default=200, help="640x480 PNGs")
     parser.add_argument("--out", type=Path, help="write the Markdown report to this file")
     args = parser.parse_args()
-    from nearsight.indexer.encoder import DEFAULT_ARCH, create_encoder
-    from nearsight.indexer.model import save_model
+    from nearsight.indexer.learning.encoder import DEFAULT_ARCH, create_encoder
+    from nearsight.indexer.learning.model import save_model
 
     with tempfile.TemporaryDirectory() as tmp:
         work = Path(tmp)

@@ -52,14 +52,14 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from nearsight.demo_data.generate import generate  # noqa: E402
-from nearsight.indexer.errors import ImageReadError  # noqa: E402
-from nearsight.indexer.images import read_image  # noqa: E402
+from nearsight.indexer.core.errors import ImageReadError  # noqa: E402
+from nearsight.indexer.reading.images import read_image  # noqa: E402
 from benchmarks.common import DEFAULT_LIBRARIES, machine  # noqa: E402
-from nearsight.indexer.pipeline import run_index  # noqa: E402
-from nearsight.indexer.query import Searcher  # noqa: E402
-from nearsight.indexer.settings import load_settings  # noqa: E402
-from nearsight.indexer.store import Store  # noqa: E402
-from nearsight.indexer.train import TrainConfig  # noqa: E402
+from nearsight.indexer.building.pipeline import run_index  # noqa: E402
+from nearsight.indexer.matching.query import Searcher  # noqa: E402
+from nearsight.indexer.core.settings import load_settings  # noqa: E402
+from nearsight.indexer.storage.store import Store  # noqa: E402
+from nearsight.indexer.learning.train import TrainConfig  # noqa: E402
 
 K = 10
 UPLOADS = 8

@@ -33,9 +33,9 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from nearsight.indexer import index as ix  # noqa: E402
-from nearsight.indexer import index_spec as spec_of  # noqa: E402
-from nearsight.indexer.groups import ImageMeta, build_groups  # noqa: E402
+from nearsight.indexer.matching import index as ix  # noqa: E402
+from nearsight.indexer.matching import index_spec as spec_of  # noqa: E402
+from nearsight.indexer.matching.groups import ImageMeta, build_groups  # noqa: E402
 
 BLOCK = 100_000
 

@@ -39,15 +39,15 @@ from benchmarks.common import machine  # noqa: E402
 # `nearsight index` (whose entry module imports neither) does not pay.
 
 SIZE = 128
-THRESHOLD = 0.5  # the default near_threshold (indexer/settings.py); pairs at or above it
+THRESHOLD = 0.5  # the default near_threshold (indexer/core/settings.py); pairs at or above it
 
 
 def naive(paths: list[Path], model_dir: Path) -> dict:
     """Decode at full size, embed, flat index, range search: seconds per step."""
     import faiss
 
-    from nearsight.indexer.embed import embed_images
-    from nearsight.indexer.model import load_model
+    from nearsight.indexer.learning.embed import embed_images
+    from nearsight.indexer.learning.model import load_model
 
     encoder, card = load_model(model_dir)
     stages = {"decode (full size) + shrink": 0.0, "embed": 0.0}
@@ -84,9 +84,9 @@ def naive(paths: list[Path], model_dir: Path) -> dict:
 
 
 def nearsight(folder: Path, model_dir: Path, store_dir: Path, calibrate: bool) -> dict:
-    from nearsight.indexer.pipeline import run_index
-    from nearsight.indexer.settings import load_settings
-    from nearsight.indexer.store import Store
+    from nearsight.indexer.building.pipeline import run_index
+    from nearsight.indexer.core.settings import load_settings
+    from nearsight.indexer.storage.store import Store
 
     with Store.open(store_dir, create=True, settings=load_settings(environ={})) as store:
         target = store.models_dir / model_dir.name
@@ -138,8 +138,8 @@ def main() -> None:
     parser.add_argument("--small", type=int, default=100, help="640x480 PNGs")
     parser.add_argument("--out", type=Path, help="write the Markdown report to this file")
     args = parser.parse_args()
-    from nearsight.indexer.encoder import DEFAULT_ARCH, create_encoder
-    from nearsight.indexer.model import save_model
+    from nearsight.indexer.learning.encoder import DEFAULT_ARCH, create_encoder
+    from nearsight.indexer.learning.model import save_model
 
     with tempfile.TemporaryDirectory() as tmp:
         work = Path(tmp)

@@ -39,8 +39,8 @@ import numpy as np  # noqa: E402
 from PIL import Image, ImageEnhance  # noqa: E402
 
 from benchmarks.common import machine  # noqa: E402
-from nearsight.indexer.settings import load_settings  # noqa: E402
-from nearsight.indexer.store import Store  # noqa: E402
+from nearsight.indexer.core.settings import load_settings  # noqa: E402
+from nearsight.indexer.storage.store import Store  # noqa: E402
 
 # run_index and TrainConfig (torch, FAISS) are imported where they are used: the scan's worker
 # processes start by importing this file, and the command line's workers do not import them either.
@@ -99,7 +99,7 @@ def change_one_percent(folders: list[Path], seed: int = 1) -> dict:
 
 
 def timed(store_dir: Path, folders, *, train_config=None, **overrides) -> tuple[float, dict]:
-    from nearsight.indexer.pipeline import run_index
+    from nearsight.indexer.building.pipeline import run_index
 
     settings = load_settings(store_dir=store_dir, environ={}, overrides=overrides or None)
     with Store.open(store_dir, create=True, settings=settings) as store:
@@ -149,7 +149,7 @@ def main() -> None:
         folders = make_collection(work, args.files)
         made = time.perf_counter() - started
         store = work / "store"
-        from nearsight.indexer.train import TrainConfig
+        from nearsight.indexer.learning.train import TrainConfig
 
         config = TrainConfig(steps=args.train_steps, minutes=None, seed=0)
         first_s, first = timed(store, folders, train_config=config)

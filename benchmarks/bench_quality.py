@@ -94,7 +94,7 @@ def make_queries(work: Path, refs: list, transforms: list, plan: list[tuple[int,
 
 
 def _budget_config(minutes: float, quick: bool):
-    from nearsight.indexer.train import TrainConfig
+    from nearsight.indexer.learning.train import TrainConfig
 
     if quick:  # small heldout set and few steps, so a debugging run takes minutes
         return TrainConfig(minutes=minutes, heldout=32)
@@ -105,15 +105,15 @@ SETTINGS_OVERRIDES: dict[str, str] = {}  # benchmarks/rescore.py --set: nothing 
 
 
 def _store(path: Path, create: bool = True):
-    from nearsight.indexer.settings import load_settings
-    from nearsight.indexer.store import Store
+    from nearsight.indexer.core.settings import load_settings
+    from nearsight.indexer.storage.store import Store
 
     return Store.open(path, create=create, settings=load_settings(environ={}, overrides=SETTINGS_OVERRIDES))
 
 
 def index_trained(store_dir: Path, folder: Path, minutes: float, quick: bool) -> dict:
     """`nearsight index` on the collection with a training budget; what the run did."""
-    from nearsight.indexer.pipeline import run_index
+    from nearsight.indexer.building.pipeline import run_index
 
     load_before = os.getloadavg()[0]
     started = time.monotonic()
@@ -130,10 +130,10 @@ def index_untrained(store_dir: Path, folder: Path) -> dict:
     """The same pipeline with the same architecture at random initialisation (seed 0, as training starts)."""
     import torch
 
-    from nearsight.indexer.encoder import DEFAULT_ARCH, create_encoder
-    from nearsight.indexer.model import save_model
-    from nearsight.indexer.pipeline import run_index
-    from nearsight.indexer.train import TrainConfig
+    from nearsight.indexer.learning.encoder import DEFAULT_ARCH, create_encoder
+    from nearsight.indexer.learning.model import save_model
+    from nearsight.indexer.building.pipeline import run_index
+    from nearsight.indexer.learning.train import TrainConfig
 
     config = TrainConfig()
     started = time.monotonic()
@@ -156,9 +156,9 @@ def index_untrained(store_dir: Path, folder: Path) -> dict:
 
 def _nearsight_predictions(store_dir: Path, records: list[dict], col: dict[str, int], k: int) -> tuple:
     """(Predictions, calibrated threshold, calibration summary) of one nearsight store."""
-    from nearsight.indexer.calibration_report import groups_line
-    from nearsight.indexer.images import read_image
-    from nearsight.indexer.query import Searcher
+    from nearsight.indexer.calibration.calibration_report import groups_line
+    from nearsight.indexer.reading.images import read_image
+    from nearsight.indexer.matching.query import Searcher
 
     with _store(store_dir, create=False) as store:
         searcher = Searcher(store)

@@ -5,7 +5,7 @@ writes them) and answers them against its trained store exactly as `nearsight si
 (`Searcher.neighbours` with the query images), in batches of `--batch` like the command. Reported:
 ms per query overall and per stage, four times in one run: with the candidates' keypoints found at
 query time (a store indexed with keep_keypoints = false), read from the files kept beside the small
-copies (indexer/keypoints.py, what a fresh `nearsight similar` meets), and kept in memory
+copies (indexer/matching/keypoints.py, what a fresh `nearsight similar` meets), and kept in memory
 (rerank.small_features, what a folder of queries or a long-running service meets); and what keeping
 them costs at index time and on disk.
 
@@ -35,7 +35,7 @@ LIBRARIES = ("numpy", "torch", "faiss-cpu", "pillow", "opencv-python-headless")
 def _answer(searcher, paths: list[str], batch: int, forget=None) -> dict[str, list[float]]:
     """Per stage, seconds per query of each batch (decode, embed, search + normalise + verify);
     `forget()`, when given, runs before each batch (untimed)."""
-    from nearsight.indexer.query import read_queries
+    from nearsight.indexer.matching.query import read_queries
 
     stages: dict[str, list[float]] = {"decode": [], "embed": [], "search and verify": [], "total": []}
     for start in range(0, len(paths), batch):
@@ -68,11 +68,12 @@ def main() -> int:
                         help="a setting other than its default (e.g. mirror_view=off); repeatable")
     args = parser.parse_args()
 
-    from nearsight.indexer import keypoints, rerank
-    from nearsight.indexer.cores import each_on_cores
-    from nearsight.indexer.query import Searcher
-    from nearsight.indexer.settings import load_settings
-    from nearsight.indexer.store import Store
+    from nearsight.indexer.matching import keypoints
+    from nearsight.indexer.matching import rerank
+    from nearsight.indexer.core.cores import each_on_cores
+    from nearsight.indexer.matching.query import Searcher
+    from nearsight.indexer.core.settings import load_settings
+    from nearsight.indexer.storage.store import Store
 
     overrides = dict(item.split("=", 1) for item in args.set)
     files = sorted(str(p) for p in (args.work / "queries").rglob("*") if p.is_file())
@@ -128,7 +129,7 @@ def main() -> int:
         "",
         "Medians over batches. First column: as a store indexed with `keep_keypoints = false`, every batch "
         "starting with no candidate's keypoints in memory, so each is found from its small copy (as every query "
-        "did before keypoints were kept, indexer/keypoints.py). Second: the keypoints kept beside the small "
+        "did before keypoints were kept, indexer/matching/keypoints.py). Second: the keypoints kept beside the small "
         "copies are read, every batch starting with none in memory, as a fresh `nearsight similar` of 32 images "
         "does. Third: one pass over all the queries with the memory emptied at its start (candidates recur "
         "between batches, as in a folder of queries). Fourth: the same queries again, every candidate in "

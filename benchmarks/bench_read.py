@@ -30,7 +30,7 @@ from PIL import Image
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from nearsight.indexer.images import REDUCING_GAP, RESAMPLE, fit_size, read_image, to_rgb  # noqa: E402
+from nearsight.indexer.reading.images import REDUCING_GAP, RESAMPLE, fit_size, read_image, to_rgb  # noqa: E402
 
 
 def photo_like(rng: np.random.Generator, width: int, height: int) -> Image.Image:

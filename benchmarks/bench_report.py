@@ -1,6 +1,6 @@
 """The HTML report at scale: a synthetic generation of 10,000 groups of three files each.
 
-Writes the groups' contact sheets (indexer/report.py) with a small JPEG for every file, and states the wall
+Writes the groups' contact sheets (indexer/acting/report.py) with a small JPEG for every file, and states the wall
 time, the process's peak resident memory before and after (ru_maxrss), the page's size and its picture
 folder's. A report must stay a page a browser opens at once: the pictures are files beside it.
 
@@ -27,7 +27,7 @@ from benchmarks.common import machine, write_report  # noqa: E402
 
 def synthetic_groups(n: int, size: int = 3):
     """`n` near-duplicate groups of `size` files, with paths and metadata like an archive's."""
-    from nearsight.indexer.groups import Group, ImageMeta, Member
+    from nearsight.indexer.matching.groups import Group, ImageMeta, Member
 
     groups = []
     for g in range(n):
@@ -59,7 +59,7 @@ def main() -> int:
     ap.add_argument("--groups", type=int, default=10_000)
     ap.add_argument("--out", type=Path, default=ROOT / "benchmarks/results/report.md")
     args = ap.parse_args()
-    from nearsight.indexer.report import write_html_report
+    from nearsight.indexer.acting.report import write_html_report
 
     groups = synthetic_groups(args.groups)
     picture = thumbnail_bytes()

@@ -29,11 +29,11 @@ from PIL import Image
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from nearsight.indexer import train as train_module  # noqa: E402
-from nearsight.indexer.encoder import ARCHS, ProjectionHead  # noqa: E402
-from nearsight.indexer.heldout import heldout_check  # noqa: E402
-from nearsight.indexer.model import library_versions, load_model  # noqa: E402
-from nearsight.indexer.train import CHECKPOINT_FILE, TrainConfig, split_heldout, train  # noqa: E402
+from nearsight.indexer.learning import train as train_module  # noqa: E402
+from nearsight.indexer.learning.encoder import ARCHS, ProjectionHead  # noqa: E402
+from nearsight.indexer.learning.heldout import heldout_check  # noqa: E402
+from nearsight.indexer.learning.model import library_versions, load_model  # noqa: E402
+from nearsight.indexer.learning.train import CHECKPOINT_FILE, TrainConfig, split_heldout, train  # noqa: E402
 
 log = logging.getLogger("bench_train")
 
@@ -151,7 +151,7 @@ def write_report(results: Path, report: Path, n_images: int) -> None:
         "",
         f"Machine: {machine()}.",
         f"Collection: {n_images} images (demo archive originals + look-alikes, scikit-image photos + 4x4 tiles).",
-        "Held-out check: one synthetic edit (indexer/edits.py) per held-out original; recall@1 / mean rank of the",
+        "Held-out check: one synthetic edit (indexer/learning/edits.py) per held-out original; recall@1 / mean rank of the",
         "original among all held-out originals. Random init = same architecture and seed, untrained.",
         "",
         "| run | arch | batch | temperature | pooling | queue | workers / threads | budget | steps | images/s "

@@ -38,10 +38,10 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from benchmarks.common import machine  # noqa: E402
-from nearsight.indexer import train as train_module  # noqa: E402
-from nearsight.indexer.heldout import heldout_check  # noqa: E402
-from nearsight.indexer.model import load_model  # noqa: E402
-from nearsight.indexer.train import TrainConfig, split_heldout, train  # noqa: E402
+from nearsight.indexer.learning import train as train_module  # noqa: E402
+from nearsight.indexer.learning.heldout import heldout_check  # noqa: E402
+from nearsight.indexer.learning.model import load_model  # noqa: E402
+from nearsight.indexer.learning.train import TrainConfig, split_heldout, train  # noqa: E402
 
 log = logging.getLogger("bench_train_views")
 
@@ -129,7 +129,7 @@ def speed(paths: list[Path], work: Path, results: Path, names: list[str], steps:
 
 def view_speed(paths: list[Path], results: Path, rounds: int, batches: int = 6) -> None:
     """View pairs/s of each view path alone (no model), on one torch thread / one process, in rounds."""
-    from nearsight.indexer.train_batches import decode_pictures, plan_batches, view_batches
+    from nearsight.indexer.learning.train_batches import decode_pictures, plan_batches, view_batches
 
     torch.set_num_threads(1)
     side = round(BASE.cache_side * BASE.size)

@@ -1,4 +1,4 @@
-"""Geometric verification (indexer/verify.py): which copies verify, which non-copies do not, at what cost.
+"""Geometric verification (indexer/matching/verify.py): which copies verify, which non-copies do not, at what cost.
 
 Originals are the photos shipped with scikit-image (skimage.data) plus two tiles of each
 (the centre and the top-left cell of a 3 x 3 grid). In one run:
@@ -53,8 +53,8 @@ from benchmarks.protocol import (  # noqa: E402
     shape_overlay,
     text_overlay,
 )
-from nearsight.indexer import edits  # noqa: E402
-from nearsight.indexer.verify import (  # noqa: E402
+from nearsight.indexer.learning import edits  # noqa: E402
+from nearsight.indexer.matching.verify import (  # noqa: E402
     DEFAULT_VERIFY,
     VerifyConfig,
     extract_features,

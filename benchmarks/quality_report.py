@@ -19,7 +19,7 @@ def _f(x, digits: int = 3) -> str:
 
 
 def _wilson(k: int, n: int) -> str:
-    from nearsight.indexer.rates import wilson_interval
+    from nearsight.indexer.core.rates import wilson_interval
 
     if n == 0:
         return "n/a"
@@ -207,7 +207,7 @@ def render(results: dict, command: str) -> str:
         "",
         "nearsight calls a result a duplicate when its similarity reaches the generation's query verdict "
         "threshold (calibrated so that at most the stated share of queries whose original is not indexed get a "
-        "flag, on the collection's own images and synthetic copies; indexer/query_verdict.py). Realised here on "
+        "flag, on the collection's own images and synthetic copies; indexer/matching/query_verdict.py). Realised here on "
         "every top-10 prediction of every query. pHash has no calibration; its row uses the common Hamming <= 10 "
         "cut for comparison.",
         "",

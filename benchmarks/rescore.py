@@ -28,8 +28,8 @@ def _recalibrated_copy(store_dir: Path) -> Path:
     """A copy of the store (beside it, named *-rescored), recalibrated by the current code."""
     import shutil
 
-    from nearsight.indexer.build import recalibrate
-    from nearsight.indexer.calibrate import CalibrationConfig
+    from nearsight.indexer.building.build import recalibrate
+    from nearsight.indexer.calibration.calibrate import CalibrationConfig
 
     copy = store_dir.with_name(store_dir.name + "-rescored")
     shutil.rmtree(copy, ignore_errors=True)

@@ -29,10 +29,10 @@ import sqlite3
 import time
 from pathlib import Path
 
-from .errors import StoreError, UsageError
-from .fsutil import atomic_write_text, fsync_dir
-from .settings import SETTINGS_FILE
-from .store import CATALOG_FILE, Store
+from .core.errors import StoreError, UsageError
+from .core.fsutil import atomic_write_text, fsync_dir
+from .core.settings import SETTINGS_FILE
+from .storage.store import CATALOG_FILE, Store
 
 log = logging.getLogger(__name__)
 
@@ -76,7 +76,7 @@ def _check_copy(folder: Path) -> None:
     the generation was pruned while it was copied). Generations from before checksums pass as they are."""
     import json
 
-    from .generations import CHECKSUMS_FILE
+    from .matching.generations import CHECKSUMS_FILE
 
     try:
         recorded = json.loads((folder / CHECKSUMS_FILE).read_text("utf-8"))

@@ -21,10 +21,10 @@ from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Iterator, Sequence
 
-from .errors import ImageReadError, NotFoundError
-from .fsutil import hash_bytes, hash_file
-from .images import read_image
-from .query import read_query
+from .core.errors import ImageReadError, NotFoundError
+from .core.fsutil import hash_bytes, hash_file
+from .matching.query import read_query
+from .reading.images import read_image
 
 log = logging.getLogger(__name__)
 
@@ -58,7 +58,7 @@ def _verdict(result: dict | None, similar_threshold: float) -> str:
 
 def check_files(searcher, paths: Sequence[str], *, threshold: float | None = None,
                 catalog=None) -> Iterator[CheckAnswer]:
-    """One CheckAnswer per path, in order. `searcher`: the store's indexer.query.Searcher; `threshold`
+    """One CheckAnswer per path, in order. `searcher`: the store's indexer.matching.query.Searcher; `threshold`
     replaces the query verdict as `similar --threshold` does; `catalog`: the connection to read with (a
     thread's own in the service; default the store's)."""
     def content_hash(given: str) -> str | None:

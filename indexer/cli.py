@@ -15,8 +15,8 @@ from pathlib import Path
 from typing import Sequence
 
 from . import __version__, commands
-from .errors import NearsightError, disk_full
-from .limits import K, PRECISION, THRESHOLD
+from .core.errors import NearsightError, disk_full
+from .core.limits import PRECISION, THRESHOLD, K
 
 log = logging.getLogger("nearsight")
 

@@ -13,11 +13,11 @@ import sys
 from pathlib import Path
 from typing import Sequence
 
-from .errors import UsageError
-from .fsutil import human_bytes
-from .settings import describe as describe_settings
-from .settings import load_settings
-from .store import ENV_STORE, Store, resolve_store_path
+from .core.errors import UsageError
+from .core.fsutil import human_bytes
+from .core.settings import describe as describe_settings
+from .core.settings import load_settings
+from .storage.store import ENV_STORE, Store, resolve_store_path
 
 SETTING_FLAGS = ("workers", "train_minutes", "near_threshold", "similar_threshold",
                  "serve_host", "serve_port", "serve_threads", "keep_paths", "prefer_folders", "prefer_formats")
@@ -46,7 +46,7 @@ def _progress(args) -> bool | None:
 
 def train_config(args, **extra):
     """A TrainConfig from the training flags that were given (the rest keep their defaults)."""
-    from .train import TrainConfig
+    from .learning.train import TrainConfig
 
     given = {name: getattr(args, name, None) for name in
              ("arch", "dim", "size", "batch_size", "temperature", "queue_len", "minutes", "epochs", "seed")}
@@ -55,8 +55,8 @@ def train_config(args, **extra):
 
 # -- index, status --------------------------------------------------------------------
 def cmd_index(args) -> int:
-    from .pipeline import run_index
-    from .scan import check_folders
+    from .building.pipeline import run_index
+    from .reading.scan import check_folders
 
     check_folders(args.folders)  # before the store is created: a mistyped folder leaves nothing behind
     with open_store(args, create=True) as store:
@@ -88,8 +88,8 @@ def cmd_index(args) -> int:
 
 
 def cmd_calibrate(args) -> int:
-    from .build import recalibrate
-    from .calibrate import CalibrationConfig
+    from .building.build import recalibrate
+    from .calibration.calibrate import CalibrationConfig
 
     with open_store(args) as store, store.lock():
         settings = store.settings
@@ -111,7 +111,7 @@ def cmd_calibrate(args) -> int:
 
 
 def cmd_verdicts(args) -> int:
-    from .verdicts import import_csv
+    from .calibration.verdicts import import_csv
 
     with open_store(args) as store:
         if args.action == "import":
@@ -131,7 +131,7 @@ def cmd_verdicts(args) -> int:
 
 
 def cmd_status(args) -> int:
-    from .pipeline import store_status
+    from .building.pipeline import store_status
 
     with open_store(args) as store:
         status = store_status(store)
@@ -172,15 +172,15 @@ def _print_heldout(trained: dict, random_init: dict) -> None:
 
 
 def cmd_train(args) -> int:
-    from .models import fine_tune_into_store, train_into_store
-    from .pipeline import run_index
+    from .building.pipeline import run_index
+    from .learning.models import fine_tune_into_store, train_into_store
 
     with open_store(args, create=bool(args.folders)) as store:
         if args.folders:
             run_index(store, args.folders, progress=_progress(args), build=False)
         with store.lock():
             if args.from_verdicts:
-                from .verdicts import verdict_file_pairs
+                from .calibration.verdicts import verdict_file_pairs
 
                 result = fine_tune_into_store(store, verdict_file_pairs(store, Path(args.from_verdicts)),
                                               progress=_progress(args))
@@ -206,7 +206,7 @@ def cmd_train(args) -> int:
 
 # -- similar, groups -------------------------------------------------------------------------
 def cmd_similar(args) -> int:
-    from .query import Searcher, expand_queries
+    from .matching.query import Searcher, expand_queries
 
     with open_store(args) as store:
         searcher = Searcher(store)
@@ -238,7 +238,7 @@ def cmd_check(args) -> int:
     import csv
 
     from .check import VERDICTS, check_files
-    from .query import Searcher, expand_queries
+    from .matching.query import Searcher, expand_queries
 
     args.json, args.csv = args.json or args.format == "json", args.csv or args.format == "csv"
     if args.out and args.format != "html":
@@ -272,7 +272,7 @@ def cmd_check(args) -> int:
                 print(f"{answer.verdict:<10}  {answer.path}  {detail}".rstrip())
             sys.stdout.flush()
         if args.format == "html":
-            from .report import write_check_report
+            from .acting.report import write_check_report
 
             out = Path(args.out or "nearsight-check.html")
             write_check_report(answers, out, read_given=given_thumbnail, thumbnail=_thumbnail_reader(store),
@@ -308,8 +308,8 @@ def _print_answer(answer: dict) -> None:
 
 
 def cmd_groups(args) -> int:
-    from .groups import groups_to_csv, groups_to_json, summarize
-    from .verdict_groups import current_groups
+    from .building.verdict_groups import current_groups
+    from .matching.groups import groups_to_csv, groups_to_json, summarize
 
     with open_store(args) as store:
         now = current_groups(store, threshold=args.threshold, precision=args.precision)
@@ -318,9 +318,9 @@ def cmd_groups(args) -> int:
             groups = [g for g in groups if g.tier == args.tier]
         buf = io.StringIO()
         if args.format in ("keep-list", "drop-list"):
-            from .keepers import KeeperRules
-            from .keeplist import keep_and_drop, write_drop_list, write_keep_list
-            from .plan import plan_quarantine
+            from .acting.keepers import KeeperRules
+            from .acting.keeplist import keep_and_drop, write_drop_list, write_keep_list
+            from .acting.plan import plan_quarantine
 
             # The groups' weakest tier acted on is the plan's default (near-duplicate); --tier narrows it.
             tier = args.tier if args.tier in ("same-bytes", "same-pixels", "person-same", "near-duplicate") else None
@@ -328,7 +328,7 @@ def cmd_groups(args) -> int:
                                    rules=KeeperRules.from_settings(store.settings))
             keep, drop = keep_and_drop(store, plan)
             if args.out and str(args.out).lower().endswith(".parquet"):
-                from .keeplist import DROP_COLUMNS, KEEP_COLUMNS, write_parquet
+                from .acting.keeplist import DROP_COLUMNS, KEEP_COLUMNS, write_parquet
 
                 if args.format == "keep-list":
                     write_parquet([{"path": p} for p in keep], KEEP_COLUMNS, Path(args.out))
@@ -345,10 +345,9 @@ def cmd_groups(args) -> int:
         elif args.format == "csv":
             groups_to_csv(groups, buf)
         elif args.format == "html":
-            from .explain import group_explainer
-            from .report import write_html_report
-
-            from .calibration_report import questions
+            from .acting.explain import group_explainer
+            from .acting.report import write_html_report
+            from .calibration.calibration_report import questions
 
             out = Path(args.out or store.reports_dir / f"groups-{gen.name}.html")
             summary = {"store": str(store.root), "generation": gen.name,
@@ -372,7 +371,7 @@ def given_thumbnail(path: str) -> bytes | None:
     """A report's thumbnail of a file that is not in the store (`check`): a JPEG of at most 256 px."""
     import io
 
-    from .images import read_image
+    from .reading.images import read_image
 
     im, _ = read_image(path, max_side=256)
     out = io.BytesIO()
@@ -406,7 +405,7 @@ def _groups_table(groups, summary: dict, out) -> None:
 
 def _emit(text: str, out: str | None) -> None:
     if out:
-        from .fsutil import atomic_write_text
+        from .core.fsutil import atomic_write_text
 
         atomic_write_text(Path(out), text)
         print(f"wrote {out}", file=sys.stderr)
@@ -425,9 +424,9 @@ def cmd_serve(args) -> int:
 
 # -- quarantine, restore -------------------------------------------------------------------------
 def cmd_quarantine(args) -> int:
-    from .keepers import KeeperRules
-    from .plan import plan_quarantine
-    from .quarantine import apply_quarantine
+    from .acting.keepers import KeeperRules
+    from .acting.plan import plan_quarantine
+    from .acting.quarantine import apply_quarantine
 
     with open_store(args) as store:
         options = dict(tier=args.tier, threshold=args.threshold, precision=args.precision,
@@ -482,7 +481,7 @@ RESTORE_WORDS = {"would-restore": "would restore", "restored": "restored", "in-p
 
 
 def cmd_restore(args) -> int:
-    from .restore import restore, store_of_manifest
+    from .acting.restore import restore, store_of_manifest
 
     if args.store is None and not os.environ.get(ENV_STORE):
         args.store = store_of_manifest(args.manifest)  # the manifest names the store it was written for

@@ -14,9 +14,9 @@ import os
 import shutil
 from pathlib import Path
 
-from .errors import UsageError
-from .pipeline import run_index, store_status
-from .store import Store
+from .building.pipeline import run_index, store_status
+from .core.errors import UsageError
+from .storage.store import Store
 
 log = logging.getLogger(__name__)
 
@@ -77,8 +77,8 @@ def demo_pairs(store: Store, truth: dict):
     planted truth per pair), in the current generation's whitened space."""
     import numpy as np
 
-    from .build import whitened_vectors
-    from .generations import require_current
+    from .building.build import whitened_vectors
+    from .matching.generations import require_current
 
     gen = require_current(store)
     ids, xb = whitened_vectors(store, gen.meta["model"], gen.load_whitening())
@@ -112,8 +112,8 @@ def pair_quality(store: Store, truth: dict, thresholds: dict[str, float]) -> dic
 
 def run_demo(out: Path, *, seed: int = 7, originals: int = 160, progress: bool | None = None,
              train_minutes: float = 3.0, train_epochs: float | None = None) -> dict:
-    from .generations import current
-    from .train import TrainConfig
+    from .learning.train import TrainConfig
+    from .matching.generations import current
 
     out = Path(out).absolute()
     truth = ensure_archive(out, seed=seed, originals=originals)

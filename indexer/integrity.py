@@ -39,9 +39,9 @@ from pathlib import Path
 
 import numpy as np
 
-from . import generations
-from .fsutil import hash_file
-from .store import Store
+from .core.fsutil import hash_file
+from .matching import generations
+from .storage.store import Store
 
 log = logging.getLogger(__name__)
 
@@ -195,7 +195,7 @@ def _quarantine(store: Store) -> list[Finding]:
 
 
 def _model(store: Store, gen) -> list[Finding]:
-    from .models import POINTER as MODEL_POINTER
+    from .learning.models import POINTER as MODEL_POINTER
 
     out = []
     current = store.read_pointer(MODEL_POINTER)
@@ -222,8 +222,8 @@ def _model(store: Store, gen) -> list[Finding]:
 
 def _manifest_records(store: Store, rows: list[dict]) -> list[Finding]:
     """Moves known manifests record as done that the catalog does not show, and moves left half-told."""
-    from . import manifest
-    from .errors import UsageError
+    from .acting import manifest
+    from .core.errors import UsageError
 
     known = {Path(r["quarantine_manifest"]) for r in rows if r["quarantine_manifest"]}
     for folder in {p.parent for p in known}:
@@ -297,8 +297,8 @@ def repair_store(store: Store, findings: list[Finding] | None = None) -> list[st
 def _sync_marks(store: Store, path: Path) -> str:
     """The catalog's quarantine marks from a manifest, for moves that did happen (the file is at its new
     path and gone from its old one): quarantine.py's own settling, without moving anything."""
-    from . import manifest
-    from .quarantine import sync_catalog
+    from .acting import manifest
+    from .acting.quarantine import sync_catalog
 
     before = {r["id"] for r in store.catalog.quarantined_files()}
     sync_catalog(store, manifest.read(path), path)
@@ -309,8 +309,8 @@ def _sync_marks(store: Store, path: Path) -> str:
 
 
 def _remake_small_copy(store: Store, digest: str) -> str:
-    from .errors import ImageReadError
-    from .images import read_image, save_thumbnail
+    from .core.errors import ImageReadError
+    from .reading.images import read_image, save_thumbnail
 
     for source in store.catalog.present_files_with_hash(digest):
         path = Path(source["path"])
@@ -326,9 +326,9 @@ def _remake_small_copy(store: Store, digest: str) -> str:
 
 
 def _rebuild_generation(store: Store, *, embed: bool) -> list[str]:
-    from .build import build_generation
-    from .calibrate import CalibrationConfig
-    from .models import current_model_dir
+    from .building.build import build_generation
+    from .calibration.calibrate import CalibrationConfig
+    from .learning.models import current_model_dir
 
     settings = store.settings
     model_dir = current_model_dir(store)
@@ -336,7 +336,7 @@ def _rebuild_generation(store: Store, *, embed: bool) -> list[str]:
         return ["could not rebuild the generation: the store has no model"]
     done = []
     if embed:
-        from .vectors import embed_missing
+        from .matching.vectors import embed_missing
 
         embedded = embed_missing(store, model_dir, progress=False)
         done.append(f"embedded {embedded['embedded']} contents that had no vector")

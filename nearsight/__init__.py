@@ -15,5 +15,7 @@ The Python API (nearsight/api.py):
 
 from nearsight.indexer import __version__
 from nearsight.api import Answer, Archive, IndexRun, Match, Status, open_store
+from nearsight.indexer.core.errors import NearsightError, NotFoundError, StoreError, UsageError
 
-__all__ = ["Answer", "Archive", "IndexRun", "Match", "Status", "__version__", "open_store"]
+__all__ = ["Answer", "Archive", "IndexRun", "Match", "NearsightError", "NotFoundError", "Status", "StoreError",
+           "UsageError", "__version__", "open_store"]

@@ -23,10 +23,10 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any, Iterable, Mapping, Sequence
 
-from nearsight.indexer import limits
-from nearsight.indexer.errors import ImageReadError, NearsightError, NotFoundError, UsageError
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store, resolve_store_path
+from nearsight.indexer.core import limits
+from nearsight.indexer.core.errors import ImageReadError, NearsightError, NotFoundError, UsageError
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store, resolve_store_path
 
 
 @dataclass(frozen=True)
@@ -137,10 +137,10 @@ class Archive:
               scan_only: bool = False, progress: bool = False, train=None) -> IndexRun:
         """`nearsight index`: scan the folders, train the encoder when needed, embed, index, group,
         calibrate and publish a generation. `epochs` alone replaces the time budget, as on the command line;
-        `train`, an indexer.train.TrainConfig, replaces every training option at once."""
-        from nearsight.indexer.pipeline import run_index
-        from nearsight.indexer.scan import check_folders
-        from nearsight.indexer.train import TrainConfig
+        `train`, an indexer.learning.train.TrainConfig, replaces every training option at once."""
+        from nearsight.indexer.building.pipeline import run_index
+        from nearsight.indexer.reading.scan import check_folders
+        from nearsight.indexer.learning.train import TrainConfig
 
         if isinstance(folders, (str, os.PathLike)):
             raise UsageError("index takes a list of folders, e.g. index([\"photos/\"])")
@@ -158,7 +158,7 @@ class Archive:
     # -- asking ---------------------------------------------------------------------------
     def status(self) -> Status:
         """`nearsight status`: files, model, generation and what the calibration says."""
-        from nearsight.indexer.pipeline import store_status
+        from nearsight.indexer.building.pipeline import store_status
 
         st = store_status(self._store)
         gen = st.get("generation") or {}
@@ -172,7 +172,7 @@ class Archive:
         catalogued images, best first, each with the store's copy verdict. `threshold` (a cosine in (0, 1]) or
         `precision` (read off the calibration) replaces the calibrated verdict, as on the command line. An
         input that is not a readable image gets an Answer with its error; nothing is raised for it."""
-        from nearsight.indexer.query import QUERY_BATCH
+        from nearsight.indexer.matching.query import QUERY_BATCH
 
         k = limits.K.check(k)
         searcher = self._current_searcher()
@@ -199,7 +199,7 @@ class Archive:
         `copy`, `similar`, `new` or `unreadable` against the archive (indexer/check.py's CheckAnswer), the
         store untouched. `threshold` or `precision` as in `similar`."""
         from nearsight.indexer.check import check_files
-        from nearsight.indexer.query import expand_queries
+        from nearsight.indexer.matching.query import expand_queries
 
         searcher = self._current_searcher()
         cut = self._threshold(searcher, threshold, precision)
@@ -209,11 +209,11 @@ class Archive:
         return list(check_files(searcher, given, threshold=cut))
 
     def groups(self, *, tier: str | None = None, threshold: float | None = None, precision: float | None = None):
-        """`nearsight groups`: the current groups (indexer/groups.py's Group: keeper first, each member's tier
+        """`nearsight groups`: the current groups (indexer/matching/groups.py's Group: keeper first, each member's tier
         and similarity), a person's verdicts applied; optionally regrouped at a threshold or precision, and
         only those of one `tier` ("exact", "near-duplicate" or "similar")."""
-        from nearsight.indexer.groups import TIERS
-        from nearsight.indexer.verdict_groups import current_groups
+        from nearsight.indexer.matching.groups import TIERS
+        from nearsight.indexer.building.verdict_groups import current_groups
 
         threshold, precision = limits.THRESHOLD.check(threshold), limits.PRECISION.check(precision)
         if tier is not None and tier not in TIERS:
@@ -225,10 +225,10 @@ class Archive:
                         threshold: float | None = None, precision: float | None = None,
                         include_unverified: bool = False):
         """`nearsight quarantine` as a dry run: per group the keeper (the store's keeper rules), the files
-        that would move into `to` and why, and those left alone (indexer/plan.py's Plan; `to_dict()` is the
+        that would move into `to` and why, and those left alone (indexer/acting/plan.py's Plan; `to_dict()` is the
         CLI's `--json`). Nothing moves; apply a plan with `nearsight quarantine --apply`."""
-        from nearsight.indexer.keepers import KeeperRules
-        from nearsight.indexer.plan import plan_quarantine
+        from nearsight.indexer.acting.keepers import KeeperRules
+        from nearsight.indexer.acting.plan import plan_quarantine
 
         threshold, precision = limits.THRESHOLD.check(threshold), limits.PRECISION.check(precision)
         return plan_quarantine(self._store, to=to, tier=tier, threshold=threshold, precision=precision,
@@ -238,7 +238,7 @@ class Archive:
     # -- inside ---------------------------------------------------------------------------
     def _current_searcher(self):
         """The current generation's Searcher, loaded again when a newer generation has been published."""
-        from nearsight.indexer.query import Searcher
+        from nearsight.indexer.matching.query import Searcher
 
         current = self._store.read_pointer("generations/CURRENT")
         if self._searcher is None or self._searcher.generation.name != current:
@@ -252,7 +252,7 @@ class Archive:
     def _queries(self, images) -> list:
         """The inputs as a list: one path, bytes or image alone is one query; folders are expanded to their
         image files, as `nearsight similar` does."""
-        from nearsight.indexer.query import expand_queries
+        from nearsight.indexer.matching.query import expand_queries
 
         if isinstance(images, (str, os.PathLike, bytes, bytearray)) or hasattr(images, "getpixel"):
             images = [images]
@@ -269,8 +269,8 @@ class Archive:
         """Each input's pixels as the query path reads a file, or the NearsightError saying why not."""
         from PIL import Image
 
-        from nearsight.indexer.images import from_pil, read_image
-        from nearsight.indexer.query import read_queries
+        from nearsight.indexer.reading.images import from_pil, read_image
+        from nearsight.indexer.matching.query import read_queries
 
         max_side = 2 * searcher.size
         out: list = [None] * len(items)

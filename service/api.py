@@ -14,10 +14,10 @@ import time
 from flask import Blueprint, Response, jsonify, request, send_file
 
 from nearsight.indexer import __version__
-from nearsight.indexer.errors import ImageReadError, NotFoundError, UsageError
-from nearsight.indexer.images import read_image
-from nearsight.indexer.calibration_report import questions
-from nearsight.indexer.pipeline import store_status
+from nearsight.indexer.core.errors import ImageReadError, NotFoundError, UsageError
+from nearsight.indexer.reading.images import read_image
+from nearsight.indexer.calibration.calibration_report import questions
+from nearsight.indexer.building.pipeline import store_status
 
 from . import params
 from .state import snapshot, state
@@ -256,9 +256,9 @@ def group(gid: str):
 
 
 def _explained(snap, catalog, gid: str) -> dict | None:
-    """The group as a quarantine would see it now (indexer/explain.py): the file to keep and why, each
+    """The group as a quarantine would see it now (indexer/acting/explain.py): the file to keep and why, each
     member's metadata, what would happen to it, and where it matches the keeper."""
-    from nearsight.indexer.explain import group_explainer
+    from nearsight.indexer.acting.explain import group_explainer
 
     explain = group_explainer(state().store(), snap.model, snap.searcher.whitening)
     facts = explain(snap.groups_now(catalog).group(gid))
@@ -268,9 +268,9 @@ def _explained(snap, catalog, gid: str) -> dict | None:
 # -- a person's choice of the file to keep ----------------------------------------------------------
 @api.post("/v1/keepers")
 def pick_keeper():
-    """Keep this file in its group (indexer/picks.py): it becomes the keeper of the plan, the keep list
+    """Keep this file in its group (indexer/acting/picks.py): it becomes the keeper of the plan, the keep list
     and the review page, before every other keeper rule. Body: {"file": id}. Needs the API key."""
-    from nearsight.indexer.picks import pick_keeper as pick
+    from nearsight.indexer.acting.picks import pick_keeper as pick
 
     file_id, author = params.keeper_body(params.json_body(request))
     response = jsonify(pick(state().store().catalog, file_id, author=author))
@@ -281,7 +281,7 @@ def pick_keeper():
 @api.delete("/v1/keepers/<int:image_id>")
 def drop_keeper(image_id: int):
     """Forget a person's choice of this file: the keeper rules choose again. Needs the API key."""
-    from nearsight.indexer.picks import drop_picks
+    from nearsight.indexer.acting.picks import drop_picks
 
     return jsonify(file=image_id, removed=drop_picks(state().store().catalog, params.check_id(image_id)))
 
@@ -293,7 +293,7 @@ def plan():
     verdicts leave them and the store's keeper rules, with the evidence for each file; nothing is moved or
     written (the CLI's --apply is the only way to act). Groups with a file to move or a near-duplicate left
     unverified are listed."""
-    from nearsight.indexer.plan import ACTION_TIERS, plan_quarantine
+    from nearsight.indexer.acting.plan import ACTION_TIERS, plan_quarantine
 
     tier = request.args.get("tier") or None
     if tier is not None and tier not in ACTION_TIERS:
@@ -314,7 +314,7 @@ def plan():
 @api.get("/v1/review/pairs")
 def review_pairs():
     """The pairs whose verdict would tell most about the duplicate threshold, best first
-    (indexer/review_queue.py); a judged pair leaves the queue with the next request."""
+    (indexer/calibration/review_queue.py); a judged pair leaves the queue with the next request."""
     limit = params.int_arg(request.args, "limit", 20, 1, 200)
     offset = params.int_arg(request.args, "offset", 0, 0, 10**9)
     snap = snapshot()

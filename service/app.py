@@ -16,8 +16,8 @@ from pathlib import Path
 from flask import Flask, g, jsonify, request
 from werkzeug.exceptions import HTTPException, RequestEntityTooLarge
 
-from nearsight.indexer.errors import AuthError, ForbiddenError, MisdirectedError, NearsightError, disk_full
-from nearsight.indexer.store import Store
+from nearsight.indexer.core.errors import AuthError, ForbiddenError, MisdirectedError, NearsightError, disk_full
+from nearsight.indexer.storage.store import Store
 
 from .api import api
 from .config import resolve_config

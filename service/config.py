@@ -11,9 +11,9 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Mapping
 
-from nearsight.indexer.errors import UsageError
-from nearsight.indexer.settings import Settings, load_settings
-from nearsight.indexer.store import resolve_store_path
+from nearsight.indexer.core.errors import UsageError
+from nearsight.indexer.core.settings import Settings, load_settings
+from nearsight.indexer.storage.store import resolve_store_path
 
 # Config names create_app takes beside "store" and "settings", and the setting each defaults to.
 FROM_SETTINGS = {

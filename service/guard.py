@@ -22,7 +22,7 @@ import time
 from contextlib import contextmanager
 from typing import Iterator
 
-from nearsight.indexer.errors import BusyError, TooManyRequestsError
+from nearsight.indexer.core.errors import BusyError, TooManyRequestsError
 
 UPLOAD_ENDPOINTS = frozenset({"api.search", "api.check"})  # the writes are app.WRITE_ENDPOINTS
 MAX_CLIENTS = 10_000  # buckets kept; the least recently seen are dropped past it

@@ -3,7 +3,7 @@
 A `Snapshot` is one generation loaded whole: index, whitening, model, groups and
 calibration are read once, so a request that took a snapshot answers from it to the
 end even if the nightly job publishes (and prunes) generations meanwhile. Its groups
-are shown as a person's verdicts leave them (indexer/verdict_groups.py), worked out
+are shown as a person's verdicts leave them (indexer/building/verdict_groups.py), worked out
 again only when a verdict was added since. A
 `LiveGeneration` watches ``generations/CURRENT``; when it names another generation,
 it loads that one beside the old and then replaces the reference in one assignment.
@@ -20,15 +20,15 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
 
-from nearsight.indexer.errors import NearsightError, NotFoundError, StoreError, UsageError
-from nearsight.indexer.generations import POINTER, Generation
-from nearsight.indexer.groups import TIERS as GROUP_TIERS
-from nearsight.indexer.groups import Group
-from nearsight.indexer.query import Searcher
-from nearsight.indexer.review_queue import ReviewQueue, review_queue
-from nearsight.indexer.settings import Settings
-from nearsight.indexer.store import Store
-from nearsight.indexer.verdict_groups import judged_groups
+from nearsight.indexer.core.errors import NearsightError, NotFoundError, StoreError, UsageError
+from nearsight.indexer.matching.generations import POINTER, Generation
+from nearsight.indexer.matching.groups import TIERS as GROUP_TIERS
+from nearsight.indexer.matching.groups import Group
+from nearsight.indexer.matching.query import Searcher
+from nearsight.indexer.calibration.review_queue import ReviewQueue, review_queue
+from nearsight.indexer.core.settings import Settings
+from nearsight.indexer.storage.store import Store
+from nearsight.indexer.building.verdict_groups import judged_groups
 
 log = logging.getLogger(__name__)
 
@@ -110,7 +110,7 @@ class Snapshot:
         return view
 
     def review_queue(self, catalog) -> ReviewQueue:
-        """The pairs to judge first (indexer/review_queue.py), worked out again when a verdict was added."""
+        """The pairs to judge first (indexer/calibration/review_queue.py), worked out again when a verdict was added."""
         version = catalog.verdicts_version()
         with self._queue_lock:
             seen, queue = self._queue

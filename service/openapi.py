@@ -6,7 +6,7 @@ routes, and the property tests (schemathesis) check the answers against these sc
 
 from __future__ import annotations
 
-from nearsight.indexer.limits import PRECISION, THRESHOLD
+from nearsight.indexer.core.limits import PRECISION, THRESHOLD
 
 from .params import MAX_K
 

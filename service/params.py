@@ -9,8 +9,8 @@ from __future__ import annotations
 
 from typing import Any, Mapping
 
-from nearsight.indexer.errors import NotFoundError, PayloadTooLargeError, UnsupportedMediaError, UsageError
-from nearsight.indexer.limits import K, MAX_K, PRECISION, THRESHOLD  # noqa: F401  (MAX_K: the service's name for it)
+from nearsight.indexer.core.errors import NotFoundError, PayloadTooLargeError, UnsupportedMediaError, UsageError
+from nearsight.indexer.core.limits import K, MAX_K, PRECISION, THRESHOLD  # noqa: F401  (MAX_K: the service's name for it)
 
 MAX_ID = 2**63 - 1  # SQLite INTEGER
 MULTIPART_SLACK = 64 * 1024  # multipart framing and form fields beside the image

@@ -18,8 +18,8 @@ from waitress.channel import HTTPChannel
 from waitress.server import create_server
 from waitress.task import ErrorTask
 
-from nearsight.indexer.errors import UsageError
-from nearsight.indexer.settings import Settings
+from nearsight.indexer.core.errors import UsageError
+from nearsight.indexer.core.settings import Settings
 
 from .app import create_app
 from .config import is_loopback

@@ -12,8 +12,8 @@ from dataclasses import dataclass, field
 
 from flask import g
 
-from nearsight.indexer.errors import NotReadyError
-from nearsight.indexer.store import Store
+from nearsight.indexer.core.errors import NotReadyError
+from nearsight.indexer.storage.store import Store
 
 from .config import ServiceConfig
 from .guard import DecodeGate, RateLimiter

@@ -34,7 +34,7 @@ COPIED = ("astronaut", "coffee", "chelsea")
 
 
 def _train_config():
-    from nearsight.indexer.train import TrainConfig
+    from nearsight.indexer.learning.train import TrainConfig
 
     # A tiny encoder trained for 20 steps (a few seconds on 2 cores). Measured while writing these
     # tests: 3 steps already rank a 70%-resized JPEG (quality 60) of each of the 13 uncopied photos
@@ -107,9 +107,9 @@ class BuiltStore:
 
 
 def build_store(work: Path) -> BuiltStore:
-    from nearsight.indexer.pipeline import run_index
-    from nearsight.indexer.settings import load_settings
-    from nearsight.indexer.store import Store
+    from nearsight.indexer.building.pipeline import run_index
+    from nearsight.indexer.core.settings import load_settings
+    from nearsight.indexer.storage.store import Store
 
     archive = work / "archive"
     originals = make_archive(archive)
@@ -131,8 +131,8 @@ def sha256(path: Path) -> str:
 
 def open_plain_store(path: Path):
     """A store opened with its defaults only (no NEARSIGHT_* from the environment)."""
-    from nearsight.indexer.settings import load_settings
-    from nearsight.indexer.store import Store
+    from nearsight.indexer.core.settings import load_settings
+    from nearsight.indexer.storage.store import Store
 
     return Store.open(path, settings=load_settings(environ={}))
 

@@ -12,7 +12,6 @@ import pytest
 from PIL import Image
 
 import nearsight
-from nearsight.indexer.errors import NotFoundError, UsageError
 
 from .service_support import COPIED, _train_config, transformed
 
@@ -109,14 +108,14 @@ def test_status_reports_the_stores_files(store_dir, service_store):
     (lambda s: s.similar([], threshold=0.5, precision=0.9), "not both"),
 ])
 def test_out_of_range_arguments_are_refused_with_the_commands_words(store_dir, call, message):
-    with nearsight.open_store(store_dir) as store, pytest.raises(UsageError, match=message.replace("(", r"\(")
+    with nearsight.open_store(store_dir) as store, pytest.raises(nearsight.UsageError, match=message.replace("(", r"\(")
                                                                    .replace(")", r"\)").replace("[", r"\[")
                                                                    .replace("]", r"\]")):
         call(store)
 
 
 def test_opening_a_missing_store_says_so_and_creates_nothing(tmp_path):
-    with pytest.raises(NotFoundError, match="no nearsight store"):
+    with pytest.raises(nearsight.NotFoundError, match="no nearsight store"):
         nearsight.open_store(tmp_path / "nowhere")
     assert not (tmp_path / "nowhere").exists()
 
@@ -139,5 +138,5 @@ def test_index_builds_a_store_that_then_answers(tmp_path):
         assert run.to_dict()["generation"] == run.generation
         (answer,) = store.similar([transformed(photos / f"{name}.jpg", tmp_path / "query.jpg")], k=2)
     assert {m.path.rsplit("/", 1)[1] for m in answer.matches} == {f"{name}.jpg", f"{name}-half.png"}
-    with nearsight.open_store(tmp_path / "store") as store, pytest.raises(UsageError, match="list of folders"):
+    with nearsight.open_store(tmp_path / "store") as store, pytest.raises(nearsight.UsageError, match="list of folders"):
         store.index(str(photos))

@@ -14,7 +14,7 @@ import pytest
 import nearsight
 from nearsight.indexer import backup as backup_module
 from nearsight.indexer.backup import backup_store
-from nearsight.indexer.errors import UsageError
+from nearsight.indexer.core.errors import UsageError
 
 from .service_support import COPIED, open_plain_store, sha256, transformed
 

@@ -14,13 +14,13 @@ import torch
 from PIL import Image
 from torchvision.transforms.v2 import functional as TF
 
-from nearsight.indexer.batch_views import (ViewParams, make_view_pairs, render_views, sample_view_params, warp)
-from nearsight.indexer.errors import UsageError
-from nearsight.indexer.pixel_ops import (OVERLAY_BANK_SIZE, add_noise, adjust_colour, adjust_gamma, composite_overlays,
+from nearsight.indexer.learning.batch_views import (ViewParams, make_view_pairs, render_views, sample_view_params, warp)
+from nearsight.indexer.core.errors import UsageError
+from nearsight.indexer.learning.pixel_ops import (OVERLAY_BANK_SIZE, add_noise, adjust_colour, adjust_gamma, composite_overlays,
                                gaussian_blur, jpeg_round_trip, overlay_bank, pixelate)
-from nearsight.indexer.view_sources import (REGION_GAP, build_source_bank, plan_entries, sample_crop_boxes,
+from nearsight.indexer.learning.view_sources import (REGION_GAP, build_source_bank, plan_entries, sample_crop_boxes,
                                   split_regions, whole_regions)
-from nearsight.indexer.views import ViewRecipe
+from nearsight.indexer.learning.views import ViewRecipe
 
 SIDE = 192
 
@@ -130,7 +130,7 @@ def test_view_one_is_the_moderate_crop_and_view_two_the_hard_one(bank):
     # astronaut photo resized (torchvision's resize, bilinear, no antialiasing), view 2 is not.
     recipe = no_edits(moderate_crop_scale=(1.0, 1.0), hard_crop_scale=(0.1, 0.1))
     v1, v2 = make_view_pairs(bank, torch.tensor([0]), 0, recipe, 64, torch.Generator().manual_seed(0))
-    from nearsight.indexer.encoder import normalize_tensor
+    from nearsight.indexer.learning.encoder import normalize_tensor
 
     expected = normalize_tensor(TF.resize(_as_float(photo("astronaut")), [64, 64], antialias=False))
     assert (v1[0] - expected).abs().max() < 1e-4
@@ -167,7 +167,7 @@ def test_affine_crop_matches_torchvision_resized_crop(box):
 
 
 def test_the_written_out_grid_is_affine_grids_and_rotation_matches_torchvision_rotate():
-    from nearsight.indexer.batch_views import _affine_coefficients, _output_coords
+    from nearsight.indexer.learning.batch_views import _affine_coefficients, _output_coords
 
     # torch.nn.functional.affine_grid of the same theta: the same sample points.
     params = identity_params(torch.tensor([[10.0, 20.0, 100.0, 80.0]]), angle=torch.tensor([7.0]),

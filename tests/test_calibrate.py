@@ -9,13 +9,13 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from nearsight.indexer.errors import NotReadyError, UsageError
-from nearsight.indexer.generations import threshold_for_precision
-from nearsight.indexer.pipeline import run_index
-from nearsight.indexer.rates import counts_at_or_above, fit_mixture, survival, wilson_interval
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
-from nearsight.indexer.verdicts import verdict_report
+from nearsight.indexer.core.errors import NotReadyError, UsageError
+from nearsight.indexer.matching.generations import threshold_for_precision
+from nearsight.indexer.building.pipeline import run_index
+from nearsight.indexer.core.rates import counts_at_or_above, fit_mixture, survival, wilson_interval
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
+from nearsight.indexer.calibration.verdicts import verdict_report
 
 from .test_pipeline import TINY, _scene
 
@@ -90,7 +90,7 @@ def test_the_tails_expected_count_is_scipys_integral_without_overflow(a, b):
     and no RuntimeWarning (turned into an error here)."""
     from scipy import integrate
 
-    from nearsight.indexer.rates import MixtureFit
+    from nearsight.indexer.core.rates import MixtureFit
 
     fit = MixtureFit(floor=0.2, dup_hits=10.0, a=a, b=b, pos_mass_above_floor=1.0)
     for t in (0.2, 0.5, 0.9, 1.0):
@@ -148,7 +148,7 @@ def store_dir(tmp_path_factory):
 
 def test_index_calibrates_and_the_result_is_coherent(store_dir):
     with Store.open(store_dir, settings=load_settings(environ={})) as store:
-        from nearsight.indexer.generations import require_current
+        from nearsight.indexer.matching.generations import require_current
 
         gen = require_current(store)
         cal = gen.load_calibration()
@@ -172,9 +172,9 @@ def test_index_calibrates_and_the_result_is_coherent(store_dir):
 def test_negatives_leave_out_planted_duplicates(store_dir):
     """Contamination: the exact copy and a pair a person marked "same" are among each other's
     closest neighbours; the hard negatives must exclude exactly those pairs (counted with hashlib)."""
-    from nearsight.indexer.build import load_vectors
-    from nearsight.indexer.calibrate import neighbour_hits
-    from nearsight.indexer.generations import require_current
+    from nearsight.indexer.building.build import load_vectors
+    from nearsight.indexer.calibration.calibrate import neighbour_hits
+    from nearsight.indexer.matching.generations import require_current
 
     with Store.open(store_dir, settings=load_settings(environ={})) as store:
         gen = require_current(store)
@@ -230,8 +230,8 @@ def test_calibrate_command_summary_precision_flag_and_verdict_import(store_dir, 
     proc = run_cli("verdicts", "show", "--store", store_dir, "--json", check_exit=0)
     assert json.loads(proc.stdout) == {"pairs": 2, "same": 1, "different": 1}
     # The same file format feeds fine-tuning: an image id becomes its catalogued path.
-    from nearsight.indexer.store import Store
-    from nearsight.indexer.verdicts import verdict_file_pairs
+    from nearsight.indexer.storage.store import Store
+    from nearsight.indexer.calibration.verdicts import verdict_file_pairs
 
     with Store.open(store_dir) as store:
         first = store.catalog.file_id_for_path((photos / "scene01.png").resolve())
@@ -245,8 +245,8 @@ def test_calibrate_command_summary_precision_flag_and_verdict_import(store_dir, 
 
 
 def test_calibration_refuses_a_store_too_small_to_measure(tmp_path):
-    from nearsight.indexer.build import recalibrate
-    from nearsight.indexer.calibrate import CalibrationConfig
+    from nearsight.indexer.building.build import recalibrate
+    from nearsight.indexer.calibration.calibrate import CalibrationConfig
 
     folder = tmp_path / "few"
     folder.mkdir()

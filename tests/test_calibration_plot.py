@@ -1,4 +1,4 @@
-"""indexer.calibration_report's plot: threshold labels never overlap each other or the legend,
+"""indexer.calibration.calibration_report's plot: threshold labels never overlap each other or the legend,
 and the legend's counts are calibration.txt's. Extents come from matplotlib's own Agg renderer
 (`Text.get_window_extent`, `Legend.get_window_extent`, `Bbox.overlaps`) after a real draw."""
 
@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from nearsight.indexer.calibration_report import LABEL_GID, plot_figure, plot_png, summary_text
+from nearsight.indexer.calibration.calibration_report import LABEL_GID, plot_figure, plot_png, summary_text
 
 
 def _tier(rng, threshold, target, positives, duplicate_pairs):

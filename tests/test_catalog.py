@@ -4,8 +4,8 @@ import sqlite3
 
 import pytest
 
-from nearsight.indexer.catalog import SCHEMA_VERSION, Catalog
-from nearsight.indexer.errors import StoreError
+from nearsight.indexer.storage.catalog import SCHEMA_VERSION, Catalog
+from nearsight.indexer.core.errors import StoreError
 
 
 def test_new_catalog_is_wal_with_schema_version(tmp_path):
@@ -75,7 +75,7 @@ def test_a_version_1_catalog_is_migrated_keeping_its_rows(tmp_path):
 
     path = tmp_path / "old.sqlite"
     conn = sqlite3.connect(path)
-    conn.executescript(resources.files("nearsight.indexer").joinpath("schema.sql").read_text())
+    conn.executescript(resources.files("nearsight.indexer.storage").joinpath("schema.sql").read_text())
     conn.execute("PRAGMA user_version=1")
     conn.execute("INSERT INTO sources(root, added_at) VALUES ('/photos', 0)")
     conn.commit()
@@ -120,7 +120,7 @@ def _three_files(tmp_path):
 
 
 def test_verdicts_are_kept_by_content_and_the_latest_counts(tmp_path):
-    from nearsight.indexer.errors import NotFoundError, UsageError
+    from nearsight.indexer.core.errors import NotFoundError, UsageError
 
     catalog, (a, b, c) = _three_files(tmp_path)
     catalog.add_verdicts([{"file_a": b, "file_b": a, "verdict": "same"}], origin="csv")

@@ -14,11 +14,11 @@ import pytest
 from PIL import Image, ImageEnhance
 from skimage import data
 
-from nearsight.indexer import generations
-from nearsight.indexer.pipeline import run_index
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
-from nearsight.indexer.train import TrainConfig
+from nearsight.indexer.matching import generations
+from nearsight.indexer.building.pipeline import run_index
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
+from nearsight.indexer.learning.train import TrainConfig
 
 ARCHIVE = ("astronaut", "coffee", "chelsea", "rocket", "camera", "brick", "immunohistochemistry", "hubble_deep_field",
            "retina", "coins")

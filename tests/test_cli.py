@@ -8,7 +8,7 @@ import pytest
 from PIL import Image
 
 from nearsight.indexer.cli import build_parser
-from nearsight.indexer.store import Store
+from nearsight.indexer.storage.store import Store
 
 
 @pytest.fixture

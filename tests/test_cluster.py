@@ -8,12 +8,12 @@ import signal
 import numpy as np
 import pytest
 
-from nearsight.indexer.cluster import iter_local, iter_on_client
-from nearsight.indexer.embed import embed_files
-from nearsight.indexer.models import current_model_dir
-from nearsight.indexer.pipeline import run_index
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
+from nearsight.indexer.matching.cluster import iter_local, iter_on_client
+from nearsight.indexer.learning.embed import embed_files
+from nearsight.indexer.learning.models import current_model_dir
+from nearsight.indexer.building.pipeline import run_index
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
 
 from .test_pipeline import TINY, _scene
 
@@ -91,7 +91,7 @@ def test_local_process_pool_runs_the_same_batches(corpus):
 def test_index_with_cluster_stores_the_vectors_of_a_local_run(corpus, tmp_path, run_cli):
     """`nearsight index --cluster ADDRESS` against a LocalCluster's scheduler: the catalog ends with
     the vectors a local run stores, for the same model, and a wrong address is one clear line."""
-    from nearsight.indexer.build import load_vectors
+    from nearsight.indexer.building.build import load_vectors
 
     paths, model_dir, reference = corpus
     folder = tmp_path / "photos"

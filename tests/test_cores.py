@@ -1,4 +1,4 @@
-"""Work shared among the cores by threads (indexer/cores.py), and verification of a batch of queries on them.
+"""Work shared among the cores by threads (indexer/core/cores.py), and verification of a batch of queries on them.
 
 The reference for order and errors is what Python's own `map` and a plain loop give; the reference for the
 verification is the same function called one query at a time, on scikit-image's bundled photos.
@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from nearsight.indexer import cores
-from nearsight.indexer.rerank import rerank_all, rerank_more
+from nearsight.indexer.core import cores
+from nearsight.indexer.matching.rerank import rerank_all, rerank_more
 
 two_cores = pytest.mark.skipif(cores.usable_cores() < 2, reason="needs 2 usable cores")
 

@@ -1,4 +1,4 @@
-"""What a stored descriptor is made of: the classical part (indexer/classic.py) against SciPy's
+"""What a stored descriptor is made of: the classical part (indexer/learning/classic.py) against SciPy's
 DCT, the encoder's input standardisation against Pillow's own brightness and contrast edits,
 and model files that remember both."""
 
@@ -8,9 +8,9 @@ import scipy.fft
 import torch
 from PIL import Image, ImageEnhance
 
-from nearsight.indexer.classic import THUMB_SIDE, check_classic, classic_descriptor, classic_dim, dct_matrix
-from nearsight.indexer.encoder import create_encoder, pixels, preprocess, standardise_luma
-from nearsight.indexer.errors import UsageError
+from nearsight.indexer.learning.classic import THUMB_SIDE, check_classic, classic_descriptor, classic_dim, dct_matrix
+from nearsight.indexer.learning.encoder import create_encoder, pixels, preprocess, standardise_luma
+from nearsight.indexer.core.errors import UsageError
 
 
 def _photo(name="astronaut") -> Image.Image:
@@ -75,8 +75,8 @@ def test_luma_standardisation_removes_an_affine_brightness_and_contrast_change()
 
 
 def test_model_files_remember_input_standardisation_and_classical_part(tmp_path):
-    from nearsight.indexer.embed import embed_images
-    from nearsight.indexer.model import load_model, save_model
+    from nearsight.indexer.learning.embed import embed_images
+    from nearsight.indexer.learning.model import load_model, save_model
 
     torch.manual_seed(0)
     encoder = create_encoder("tiny", 16, input_norm="luma", classic="dct8")
@@ -96,7 +96,7 @@ def test_residual_block_equals_torchvision_basic_block_with_the_same_weights(c_i
     from torch import nn
     from torchvision.models.resnet import BasicBlock as Reference
 
-    from nearsight.indexer.encoder import BasicBlock
+    from nearsight.indexer.learning.encoder import BasicBlock
 
     def downsample():
         if stride == 1 and c_in == width:

@@ -11,7 +11,7 @@ common practice, from memory of the ext4 and SQLite documentation):
   the file's new folder is fsynced between its link and that unlink;
 - the catalog's commits reach the disk before the command reports them: every write to the SQLite
   write-ahead log before the command's last line of output is followed by an fsync of the log before that
-  line (SQLite runs with synchronous=FULL under WAL: indexer/catalog.py).
+  line (SQLite runs with synchronous=FULL under WAL: indexer/storage/catalog.py).
 
 Caches (thumbnails, small copies) are written without fsync on purpose: a torn one is read as broken and
 made again. They are left out of the check, and so are files outside the store and the archive.

@@ -1,4 +1,4 @@
-"""The classical weight is fitted on the collection's own synthetic copies (indexer/fusion.py)."""
+"""The classical weight is fitted on the collection's own synthetic copies (indexer/matching/fusion.py)."""
 
 from __future__ import annotations
 
@@ -8,13 +8,13 @@ import numpy as np
 from PIL import Image
 from sklearn.metrics import average_precision_score
 
-from nearsight.indexer.build import load_vectors
-from nearsight.indexer.fusion import AP_TOLERANCE, WEIGHT_GRID, choose_weight, fit_classic_weight
-from nearsight.indexer.pipeline import run_index
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
-from nearsight.indexer.train import TrainConfig
-from nearsight.indexer.whiten import fit_whitening
+from nearsight.indexer.building.build import load_vectors
+from nearsight.indexer.matching.fusion import AP_TOLERANCE, WEIGHT_GRID, choose_weight, fit_classic_weight
+from nearsight.indexer.building.pipeline import run_index
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
+from nearsight.indexer.learning.train import TrainConfig
+from nearsight.indexer.matching.whiten import fit_whitening
 
 
 def _unit(x):
@@ -78,7 +78,7 @@ def test_the_fit_reads_only_the_store_s_own_images(tmp_path, monkeypatch):
         model = store.read_pointer("models/CURRENT")
         ids, xb = load_vectors(store, model)
         read = []
-        from nearsight.indexer import images as image_module
+        from nearsight.indexer.reading import images as image_module
 
         real = image_module.read_image
         monkeypatch.setattr(image_module, "read_image", lambda src, *a, **k: (read.append(Path(src)), real(src, *a, **k))[1])

@@ -1,4 +1,4 @@
-"""indexer.groups: partitions against scipy's connected components, the no-chaining
+"""indexer.matching.groups: partitions against scipy's connected components, the no-chaining
 guarantee against NumPy brute force, tiers and the keeper policy on crafted data."""
 
 import csv
@@ -10,8 +10,8 @@ import pytest
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
-from nearsight.indexer.errors import UsageError
-from nearsight.indexer.groups import (ImageMeta, build_groups, group_id, groups_from_json, groups_to_csv,
+from nearsight.indexer.core.errors import UsageError
+from nearsight.indexer.matching.groups import (ImageMeta, build_groups, group_id, groups_from_json, groups_to_csv,
                             groups_to_json, keeper_key, reclaimable_bytes, summarize)
 
 

@@ -1,4 +1,4 @@
-"""Tests for indexer.images: decoding, orientation, modes, limits and failures.
+"""Tests for indexer.reading.images: decoding, orientation, modes, limits and failures.
 
 Every input is built in tmp_path at test time. Pixel references come from
 outside nearsight: Pillow's own decoders and ImageOps, numpy formulas from the
@@ -22,9 +22,9 @@ from PIL import Image, ImageOps, JpegImagePlugin
 from skimage import data as skdata
 from skimage import transform as sktransform
 
-from nearsight.indexer import images
-from nearsight.indexer.errors import ImageReadError
-from nearsight.indexer.images import ImageInfo, fit_size, probe, read_image, save_thumbnail, to_rgb
+from nearsight.indexer.reading import images
+from nearsight.indexer.core.errors import ImageReadError
+from nearsight.indexer.reading.images import ImageInfo, fit_size, probe, read_image, save_thumbnail, to_rgb
 
 # Open data shipped inside the scikit-image package (skimage.data): public photos
 # bundled with the library, so no network is needed. "camera" is greyscale.

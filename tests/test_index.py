@@ -1,4 +1,4 @@
-"""indexer.index against exhaustive references.
+"""indexer.matching.index against exhaustive references.
 
 Oracles: scikit-learn's NearestNeighbors(metric="cosine", algorithm="brute") for
 k-NN, NumPy brute force (xb @ xb.T) for all pairs above a threshold.
@@ -9,9 +9,9 @@ import numpy as np
 import pytest
 from sklearn.neighbors import NearestNeighbors
 
-from nearsight.indexer import index as ix
-from nearsight.indexer import index_spec as spec_of
-from nearsight.indexer.errors import NotFoundError, NotReadyError, UsageError
+from nearsight.indexer.matching import index as ix
+from nearsight.indexer.matching import index_spec as spec_of
+from nearsight.indexer.core.errors import NotFoundError, NotReadyError, UsageError
 
 
 def unit(x):

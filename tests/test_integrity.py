@@ -9,7 +9,7 @@ import sqlite3
 
 import pytest
 
-from nearsight.indexer import generations
+from nearsight.indexer.matching import generations
 from nearsight.indexer.integrity import repair_store, verify_store
 
 from .service_support import open_plain_store, sha256

@@ -1,4 +1,4 @@
-"""Keep and drop lists (indexer/keeplist.py) on a real store of scikit-image's photos and planted copies.
+"""Keep and drop lists (indexer/acting/keeplist.py) on a real store of scikit-image's photos and planted copies.
 
 Reference: the quarantine plan as `nearsight quarantine --json` prints it (what would move), and the
 catalog's files read with sqlite3 directly: the keep list must be every present readable file less the

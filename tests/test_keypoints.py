@@ -1,4 +1,4 @@
-"""Keypoints kept beside the small copies (indexer/keypoints.py): the same features OpenCV's ORB finds,
+"""Keypoints kept beside the small copies (indexer/matching/keypoints.py): the same features OpenCV's ORB finds,
 read back exactly, ignored when not usable, and the same verification answers with or without them."""
 
 import json
@@ -7,9 +7,10 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from nearsight.indexer import keypoints, rerank
-from nearsight.indexer.rerank import VERIFY_SIDE, fine_config, verify_config
-from nearsight.indexer.verify import verify_candidates, working_grey
+from nearsight.indexer.matching import keypoints
+from nearsight.indexer.matching import rerank
+from nearsight.indexer.matching.rerank import VERIFY_SIDE, fine_config, verify_config
+from nearsight.indexer.matching.verify import verify_candidates, working_grey
 
 
 def _photo(name):
@@ -20,7 +21,7 @@ def _photo(name):
 
 def _small_copy(root, digest, image):
     """A store's small-copy layout, thumbs/ab/<hash>.jpg, written as the scan writes it."""
-    from nearsight.indexer.images import save_thumbnail
+    from nearsight.indexer.reading.images import save_thumbnail
 
     path = root / "thumbs" / digest[:2] / f"{digest}.jpg"
     copy = image.copy()
@@ -88,7 +89,7 @@ def test_a_torn_or_foreign_sidecar_counts_as_missing(copies):
 def test_a_small_copy_made_again_or_other_settings_make_the_sidecar_stale(copies, monkeypatch):
     """A small copy re-written at another size no longer matches its sidecar; a sidecar made by other settings
     (another OpenCV, say) is found stale by the index run's check and made again."""
-    from nearsight.indexer.images import save_thumbnail
+    from nearsight.indexer.reading.images import save_thumbnail
 
     path = copies["astronaut"]
     keypoints.write(path, keypoints.find(path))
@@ -149,9 +150,9 @@ def test_verification_answers_the_same_with_or_without_kept_keypoints(copies, tm
 
 @pytest.mark.parametrize("keep", [True, False])
 def test_an_index_run_keeps_every_small_copys_keypoints_unless_told_not_to(tmp_path, keep):
-    from nearsight.indexer.pipeline import run_index
-    from nearsight.indexer.settings import load_settings
-    from nearsight.indexer.store import Store
+    from nearsight.indexer.building.pipeline import run_index
+    from nearsight.indexer.core.settings import load_settings
+    from nearsight.indexer.storage.store import Store
     from tests.test_pipeline import TINY, _scene
 
     photos = tmp_path / "photos"

@@ -5,8 +5,8 @@ import pytest
 import torch
 from scipy.spatial.distance import cdist
 
-from nearsight.indexer.errors import UsageError
-from nearsight.indexer.losses import batch_hard_indices, koleo, margin_contrastive, nt_xent, triplet, triplet_hard
+from nearsight.indexer.core.errors import UsageError
+from nearsight.indexer.learning.losses import batch_hard_indices, koleo, margin_contrastive, nt_xent, triplet, triplet_hard
 
 
 def _unit(x: np.ndarray) -> np.ndarray:

@@ -24,14 +24,14 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from nearsight.indexer import generations
-from nearsight.indexer.build import load_vectors
-from nearsight.indexer.groups import build_groups
-from nearsight.indexer.pipeline import run_index
-from nearsight.indexer.query import Searcher
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
-from nearsight.indexer.train import TrainConfig
+from nearsight.indexer.matching import generations
+from nearsight.indexer.building.build import load_vectors
+from nearsight.indexer.matching.groups import build_groups
+from nearsight.indexer.building.pipeline import run_index
+from nearsight.indexer.matching.query import Searcher
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
+from nearsight.indexer.learning.train import TrainConfig
 
 from .conftest import ROOT
 
@@ -329,7 +329,7 @@ def _nightly_env(**extra) -> dict:
 
 
 def _start_paused(store_dir: Path, sources, stage: str, log_path: Path, *flags: str) -> subprocess.Popen:
-    """`nearsight index` in a child process, held by the test hook at `stage` (see indexer/pause.py)."""
+    """`nearsight index` in a child process, held by the test hook at `stage` (see indexer/core/pause.py)."""
     with open(log_path, "wb") as log:
         proc = subprocess.Popen(
             [sys.executable, "-m", "nearsight", "index", *map(str, sources), "--store", str(store_dir),
@@ -410,7 +410,7 @@ def test_a_second_run_is_refused_and_a_killed_holder_leaves_no_stale_lock(killab
     try:
         second = run_cli("index", *killable["sources"], "--store", store_dir, *NIGHTLY_FLAGS,
                          env=_nightly_env())
-        assert second.returncode == 3      # StoreLockedError's exit code (indexer/errors.py)
+        assert second.returncode == 3      # StoreLockedError's exit code (indexer/core/errors.py)
         (line,) = second.stderr.strip().splitlines()
         assert line.startswith("nearsight index: error: store ") and f"is busy: locked by pid {holder.pid}" in line
     finally:
@@ -432,7 +432,7 @@ def test_the_held_out_drop_test_matches_statsmodels(before, now, n):
     pooled variance (its default)."""
     from statsmodels.stats.proportion import proportions_ztest
 
-    from nearsight.indexer.retrain import recall_drop
+    from nearsight.indexer.learning.retrain import recall_drop
 
     got = recall_drop(before, now, n)
     assert got["drop"] == pytest.approx((before - now) / n)
@@ -444,7 +444,7 @@ def test_the_held_out_drop_test_matches_statsmodels(before, now, n):
 
 
 def test_the_retrain_policy_follows_its_settings(models, tmp_path):
-    from nearsight.indexer.retrain import SIGNIFICANCE, decide
+    from nearsight.indexer.learning.retrain import SIGNIFICANCE, decide
 
     photos, scans = _first_collection(tmp_path)
     store_dir = _store_with_model(models, tmp_path / "store")

@@ -12,8 +12,8 @@ import sqlite3
 import pytest
 from PIL import ExifTags, Image, ImageCms
 
-from nearsight.indexer.groups import ImageMeta, keeper_key
-from nearsight.indexer.images import capture_time, probe, read_image
+from nearsight.indexer.matching.groups import ImageMeta, keeper_key
+from nearsight.indexer.reading.images import capture_time, probe, read_image
 
 
 def _exif(when="2019:06:01 10:20:30", make="Fernhill", model="FX-20"):
@@ -101,7 +101,7 @@ def test_the_keeper_order_is_origin_first_then_pixels():
                      file_size=5, format="JPEG", mtime=1.0)
     assert sorted([deep, top], key=keeper_key)[0] is top
     # ... and the plan says which rule decided, in words.
-    from nearsight.indexer.keepers import KeeperRules
+    from nearsight.indexer.acting.keepers import KeeperRules
 
     rules = KeeperRules()
     assert rules.reason(original, [brighter]) == "is the oldest file (modification time)"
@@ -119,9 +119,9 @@ def _sha(path):
 def archive_store(tmp_path_factory):
     """Nine scikit-image photos, and three files of astronaut: the camera's JPEG (EXIF, ICC profile), a
     stripped upscale with more pixels, and a stripped PNG of the same pixels as the camera's."""
-    from nearsight.indexer.pipeline import run_index
-    from nearsight.indexer.settings import load_settings
-    from nearsight.indexer.store import Store
+    from nearsight.indexer.building.pipeline import run_index
+    from nearsight.indexer.core.settings import load_settings
+    from nearsight.indexer.storage.store import Store
 
     from .service_support import _train_config
     from .test_train import skimage_photos
@@ -145,9 +145,9 @@ def archive_store(tmp_path_factory):
 
 
 def _keeper_of_astronaut(store_dir):
-    from nearsight.indexer.plan import plan_quarantine
-    from nearsight.indexer.settings import load_settings
-    from nearsight.indexer.store import Store
+    from nearsight.indexer.acting.plan import plan_quarantine
+    from nearsight.indexer.core.settings import load_settings
+    from nearsight.indexer.storage.store import Store
 
     with Store.open(store_dir, settings=load_settings(environ={})) as store:
         plan = plan_quarantine(store, include_unverified=True)
@@ -174,9 +174,9 @@ def test_a_store_from_before_reads_the_facts_once_at_its_next_index(archive_stor
     from the files' headers, and the plan's keeper is the camera's file again."""
     import shutil
 
-    from nearsight.indexer.pipeline import run_index
-    from nearsight.indexer.settings import load_settings
-    from nearsight.indexer.store import Store
+    from nearsight.indexer.building.pipeline import run_index
+    from nearsight.indexer.core.settings import load_settings
+    from nearsight.indexer.storage.store import Store
 
     from .service_support import _train_config
 

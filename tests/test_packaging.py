@@ -47,7 +47,7 @@ def test_the_wheel_puts_one_import_name_into_site_packages(wheel):
 
 def test_the_wheel_carries_the_schema_and_the_review_pages_files(wheel):
     names = set(wheel.namelist())
-    for data in ("nearsight/indexer/schema.sql", "nearsight/service/templates/review.html",
+    for data in ("nearsight/indexer/storage/schema.sql", "nearsight/service/templates/review.html",
                  "nearsight/service/static/review.js", "nearsight/service/static/review.css"):
         assert data in names, data
 
@@ -57,3 +57,15 @@ def test_the_command_is_the_packages_entry_point(wheel):
     text = wheel.read(entry_points).decode()
     assert "nearsight = nearsight.indexer.cli:main" in text
 
+
+
+def test_every_module_of_the_source_tree_is_in_the_wheel(wheel):
+    """The stages' sub-packages are listed one by one in pyproject.toml (setuptools maps folders to
+    package names there); one left out would install a nearsight that fails on first import."""
+    names = set(wheel.namelist())
+    for folder, package in (("indexer", "nearsight/indexer"), ("service", "nearsight/service")):
+        for source in (ROOT / folder).rglob("*.py"):
+            if "__pycache__" in source.parts:
+                continue
+            inside = source.relative_to(ROOT / folder).as_posix()
+            assert f"{package}/{inside}" in names, inside

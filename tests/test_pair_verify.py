@@ -9,13 +9,13 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from nearsight.indexer.build import load_vectors
-from nearsight.indexer.generations import require_current
-from nearsight.indexer.groups import build_groups
-from nearsight.indexer.pair_verify import complete_components, verified_pairs, verified_score
-from nearsight.indexer.pipeline import run_index
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
+from nearsight.indexer.building.build import load_vectors
+from nearsight.indexer.matching.generations import require_current
+from nearsight.indexer.matching.groups import build_groups
+from nearsight.indexer.matching.pair_verify import complete_components, verified_pairs, verified_score
+from nearsight.indexer.building.pipeline import run_index
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
 
 from .test_pipeline import TINY
 

@@ -7,13 +7,13 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from nearsight.indexer import generations
-from nearsight.indexer.errors import NotReadyError
-from nearsight.indexer.pipeline import run_index
-from nearsight.indexer.query import Searcher
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
-from nearsight.indexer.train import TrainConfig
+from nearsight.indexer.matching import generations
+from nearsight.indexer.core.errors import NotReadyError
+from nearsight.indexer.building.pipeline import run_index
+from nearsight.indexer.matching.query import Searcher
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
+from nearsight.indexer.learning.train import TrainConfig
 
 # A training run of a few steps: these tests check the plumbing, not the encoder's quality.
 TINY = TrainConfig(arch="tiny", dim=16, size=32, batch_size=8, steps=3, minutes=None, heldout=4, workers=0,
@@ -143,9 +143,9 @@ def test_long_work_logs_its_progress_when_no_terminal_shows_a_bar(caplog):
     count, the total, the rate and what the work reports (a training loop's loss)."""
     import logging
 
-    from nearsight.indexer.progress import Progress
+    from nearsight.indexer.core.progress import Progress
 
-    with caplog.at_level(logging.INFO, logger="nearsight.indexer.progress"):
+    with caplog.at_level(logging.INFO, logger="nearsight.indexer.core.progress"):
         with Progress(200, "train", enabled=False, unit="step", initial=50, every_s=0.0) as bar:
             bar.update(1, loss="3.142")
     (line,) = [r.getMessage() for r in caplog.records]

@@ -10,11 +10,11 @@ import numpy as np
 import pytest
 from PIL import Image, ImageEnhance, ImageOps
 
-from nearsight.indexer.pipeline import run_index
-from nearsight.indexer.query import Searcher
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
-from nearsight.indexer.train import TrainConfig
+from nearsight.indexer.building.pipeline import run_index
+from nearsight.indexer.matching.query import Searcher
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
+from nearsight.indexer.learning.train import TrainConfig
 
 from .test_train import skimage_photos
 
@@ -83,9 +83,9 @@ def photo_store(tmp_path_factory):
     # of the descriptor, 16 of 16 brightened photos are found first (measured 2026-12-02).
     "brighter",
     # The query's mirror image is searched too, and a mirrored match counts once verified
-    # (indexer/query.py); the picture inside a frame is searched too (indexer/frames.py).
+    # (indexer/matching/query.py); the picture inside a frame is searched too (indexer/matching/frames.py).
     "mirror", "crop-50%", "framed",
-    # A query whose best candidate does not verify is also searched turned upside down (indexer/query.py).
+    # A query whose best candidate does not verify is also searched turned upside down (indexer/matching/query.py).
     "upside-down",
 ])
 def test_transformed_scikit_image_photos_find_their_original_first(photo_store, kind):
@@ -113,7 +113,7 @@ def test_demo_archive_duplicates_above_stated_floors(run_cli, tmp_path):
     archive, demo_data/). Measured 2026-12-03: precision 1.000, recall 0.893 (0.889 after 12
     epochs, 0.900 after one minute, 131 steps, on an idle 2-core machine), where the groups used
     to find 0.40: the grouping threshold comes from the collection's pairwise estimate and verified
-    close pairs join as near-duplicates (indexer/pair_verify.py). An epoch budget, not minutes, so
+    close pairs join as near-duplicates (indexer/matching/pair_verify.py). An epoch budget, not minutes, so
     that a machine busy with other tests trains the same encoder; the floors leave room for the
     run-to-run variation of multi-threaded training.
     """
@@ -142,8 +142,8 @@ def test_calibrated_duplicate_verdict_is_honest_on_transformed_scikit_image_phot
     on every pair (truth: a photo and its copies) is at least 0.97; recall is printed."""
     import shutil
 
-    from nearsight.indexer.build import load_vectors
-    from nearsight.indexer.generations import require_current
+    from nearsight.indexer.building.build import load_vectors
+    from nearsight.indexer.matching.generations import require_current
 
     _store_dir, queries = photo_store
     collection = tmp_path / "collection"
@@ -154,7 +154,7 @@ def test_calibrated_duplicate_verdict_is_honest_on_transformed_scikit_image_phot
             shutil.copy(original, collection)
     # A store of the photos and their copies only (tiles of one texture are look-alikes that a
     # briefly trained encoder scores like copies), trained on itself as a user's store would be.
-    # 32 dimensions, so that its 80 images are enough to fit the whitening (indexer/whiten.py).
+    # 32 dimensions, so that its 80 images are enough to fit the whitening (indexer/matching/whiten.py).
     store_dir = tmp_path / "store"
     with Store.open(store_dir, create=True, settings=load_settings(environ={})) as store:
         run_index(store, [collection], progress=False,

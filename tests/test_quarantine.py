@@ -24,17 +24,17 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from nearsight.indexer import generations
-from nearsight.indexer.errors import NearsightError, UsageError
-from nearsight.indexer.keepers import FORMAT_ALIASES, KeeperRules, normalize_format, path_matches
-from nearsight.indexer.groups import ImageMeta
-from nearsight.indexer.pipeline import run_index
-from nearsight.indexer.quarantine import TEST_PAUSE_ENV, apply_quarantine, plan_quarantine
-from nearsight.indexer.restore import restore
-from nearsight.indexer.scan import scan_source
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
-from nearsight.indexer.train import TrainConfig
+from nearsight.indexer.matching import generations
+from nearsight.indexer.core.errors import NearsightError, UsageError
+from nearsight.indexer.acting.keepers import FORMAT_ALIASES, KeeperRules, normalize_format, path_matches
+from nearsight.indexer.matching.groups import ImageMeta
+from nearsight.indexer.building.pipeline import run_index
+from nearsight.indexer.acting.quarantine import TEST_PAUSE_ENV, apply_quarantine, plan_quarantine
+from nearsight.indexer.acting.restore import restore
+from nearsight.indexer.reading.scan import scan_source
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
+from nearsight.indexer.learning.train import TrainConfig
 
 ROOT = Path(__file__).resolve().parent.parent
 TINY = TrainConfig(arch="tiny", dim=16, size=32, batch_size=8, steps=3, minutes=None, heldout=4, workers=0,
@@ -519,7 +519,7 @@ def _skimage(name: str) -> Image.Image:
 def _force_vectors(store: Store, copies: dict[Path, Path]) -> None:
     """Give each file the stored vector of another, as an encoder fooled by a look-alike would, and
     publish a generation grouped from those vectors (cosine 1.0, above any duplicate threshold)."""
-    from nearsight.indexer.build import build_generation
+    from nearsight.indexer.building.build import build_generation
 
     model = generations.current(store).meta["model"]
     ids = {p: store.catalog.file_id_for_path(p) for pair in copies.items() for p in pair}

@@ -8,12 +8,12 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from nearsight.indexer.calibrate import grouping_threshold
-from nearsight.indexer.pipeline import run_index
-from nearsight.indexer.query import Searcher
-from nearsight.indexer.query_verdict import copy_probability, false_flag_threshold, fit_probability, threshold_report
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
+from nearsight.indexer.calibration.calibrate import grouping_threshold
+from nearsight.indexer.building.pipeline import run_index
+from nearsight.indexer.matching.query import Searcher
+from nearsight.indexer.matching.query_verdict import copy_probability, false_flag_threshold, fit_probability, threshold_report
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
 
 from .test_pipeline import TINY, _scene
 
@@ -73,7 +73,7 @@ def test_the_copy_threshold_is_where_sklearns_isotonic_fit_reaches_even_odds():
     step lower it is below one half. Worked by hand for the steps (0.311, 0) to (0.452, 1): 0.3815."""
     from sklearn.isotonic import IsotonicRegression
 
-    from nearsight.indexer.query_verdict import even_odds_score
+    from nearsight.indexer.matching.query_verdict import even_odds_score
 
     assert even_odds_score({"scores": [0.016, 0.311, 0.452, 0.863], "probabilities": [0, 0, 1, 1]}) == 0.3815
     rng = np.random.default_rng(5)
@@ -91,7 +91,7 @@ def test_a_verified_negative_is_a_likely_duplicate_only_when_it_scores_like_the_
     """The floor is numpy's linear quantile of the synthetic copies' descriptor scores (worked by hand for
     0.1 of [0.5, 0.6, ..., 1.4]: 0.59); a verified best result under it stays a negative (a look-alike that
     shares a drawn element or a logo), one at or above it is left out as an unknown duplicate."""
-    from nearsight.indexer.query_verdict import DESCRIPTOR_KEY, copy_like
+    from nearsight.indexer.matching.query_verdict import DESCRIPTOR_KEY, copy_like
 
     positives = [{DESCRIPTOR_KEY: 0.5 + 0.1 * i} for i in range(10)]
     assert np.quantile([p[DESCRIPTOR_KEY] for p in positives], 0.1) == pytest.approx(0.59)
@@ -171,7 +171,7 @@ def test_a_collection_without_duplicates_flags_copies_and_says_so(distinct_store
 def test_per_query_exclusions_in_one_batch_answer_as_one_query_at_a_time(distinct_store):
     """Calibration asks its negatives in batches, each query without its own file: the answers must be
     those of asking each query alone with its exclusion (the reference: the same call, one by one)."""
-    from nearsight.indexer.images import read_image
+    from nearsight.indexer.reading.images import read_image
 
     store_dir, copies, others = distinct_store
     with Store.open(store_dir, settings=load_settings(environ={})) as store:

@@ -13,8 +13,8 @@ import pytest
 from PIL import Image, ImageChops, ImageOps
 from skimage import data
 
-from nearsight.indexer.frames import ANALYSIS_SIDE, frame_box, inside_frame
-from nearsight.indexer.query import _better_of, _settle_views
+from nearsight.indexer.matching.frames import ANALYSIS_SIDE, frame_box, inside_frame
+from nearsight.indexer.matching.query import _better_of, _settle_views
 
 PHOTOS = ("astronaut", "coffee", "chelsea", "rocket", "hubble_deep_field")  # the last: dark sky at its edges
 

@@ -1,4 +1,4 @@
-"""Region descriptors (indexer/regions.py): the layout, the scoring, the second round that uses them,
+"""Region descriptors (indexer/matching/regions.py): the layout, the scoring, the second round that uses them,
 and the generation's region index kept up to date by an incremental build.
 
 References: the layout against NumPy's linspace and array slicing; region scoring against a brute-force
@@ -12,13 +12,13 @@ import pytest
 from PIL import Image
 from skimage import data
 
-from nearsight.indexer.generations import current
-from nearsight.indexer.pipeline import run_index
-from nearsight.indexer.query import Searcher, _settle_views, _with_regions
-from nearsight.indexer.regions import REGION_SIDE, build_region_index, cut_regions, region_boxes, region_candidates, region_index
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
-from nearsight.indexer.train import TrainConfig
+from nearsight.indexer.matching.generations import current
+from nearsight.indexer.building.pipeline import run_index
+from nearsight.indexer.matching.query import Searcher, _settle_views, _with_regions
+from nearsight.indexer.matching.regions import REGION_SIDE, build_region_index, cut_regions, region_boxes, region_candidates, region_index
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
+from nearsight.indexer.learning.train import TrainConfig
 
 
 @pytest.mark.parametrize("grid", [1, 2, 3, 4])

@@ -1,4 +1,4 @@
-"""indexer.report: the page parses with the standard library's html.parser, holds one
+"""indexer.acting.report: the page parses with the standard library's html.parser, holds one
 section per group, marks keepers, escapes every path, keeps its pictures as files in a folder
 beside it and loads nothing from outside."""
 
@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from nearsight.indexer.groups import ImageMeta, build_groups
-from nearsight.indexer.report import human_bytes, write_html_report
+from nearsight.indexer.matching.groups import ImageMeta, build_groups
+from nearsight.indexer.acting.report import human_bytes, write_html_report
 
 
 class Collector(HTMLParser):
@@ -128,7 +128,7 @@ def test_a_region_lands_on_the_picture_inside_its_square_tile():
     """The tile shows a picture whole and centred (CSS object-fit: contain, as the CSS specification defines
     it): a 200 x 100 picture fills the tile's width and the middle half of its height, so the picture's whole
     area is the band y 0.25-0.75, and its right half is x 0.5-1 of that band. Worked by hand."""
-    from nearsight.indexer.report import in_square
+    from nearsight.indexer.acting.report import in_square
 
     assert in_square((0, 0, 1, 1), (200, 100)) == (0.0, 0.25, 1.0, 0.75)
     assert in_square((0.5, 0, 1, 1), (200, 100)) == (0.5, 0.25, 1.0, 0.75)

@@ -1,9 +1,9 @@
-"""Re-ranking by geometric verification (indexer/rerank.py), on scikit-image's bundled photos."""
+"""Re-ranking by geometric verification (indexer/matching/rerank.py), on scikit-image's bundled photos."""
 
 import pytest
 from PIL import Image
 
-from nearsight.indexer.rerank import boosted, rerank
+from nearsight.indexer.matching.rerank import boosted, rerank
 
 
 def _photo(name):
@@ -68,7 +68,7 @@ def test_only_the_top_candidates_are_verified_and_unreadable_ones_are_skipped(fi
 def test_more_candidates_are_verified_only_when_the_best_is_not(files):
     """`rerank_more`: the crop's own tile ranked fourth by the descriptor is verified and moves first
     when the first two fail; when the best candidate verifies, nothing past `top` is checked."""
-    from nearsight.indexer.rerank import rerank_more
+    from nearsight.indexer.matching.rerank import rerank_more
 
     paths, query = files
     candidates = {1: str(paths["left"]), 2: str(paths["right"]), 3: str(paths["astronaut"]), 4: str(paths["right"])}
@@ -91,7 +91,7 @@ def test_a_candidate_placed_after_the_head_is_verified_whatever_its_score_and_th
     """A candidate put right after the head (as region descriptors place theirs) is among the next `more`
     checked even when its score is the lowest: the list is not re-sorted before choosing them, so the
     answer does not depend on how many results were asked for."""
-    from nearsight.indexer.rerank import rerank_more
+    from nearsight.indexer.matching.rerank import rerank_more
 
     paths, query = files
     candidates = {1: str(paths["left"])} | {i: str(paths["right" if i % 2 else "astronaut"]) for i in range(2, 100)}
@@ -109,7 +109,7 @@ def fifths(tmp_path_factory):
     """Per photo (at most 512 px): its small copy (VERIFY_SIDE, as the store keeps it), a crop keeping 0.45 of each
     side (a fifth of the area) at the photo's own resolution, where it was cut (fractions), and the strip left
     of the crop as a file of its own (a neighbouring tile: no pixel in common with the crop)."""
-    from nearsight.indexer.rerank import VERIFY_SIDE
+    from nearsight.indexer.matching.rerank import VERIFY_SIDE
 
     folder = tmp_path_factory.mktemp("fifths")
     out = {}
@@ -133,7 +133,7 @@ def test_the_fine_check_confirms_a_fifth_of_a_photo_that_the_small_copy_is_too_c
     6 crops verify at VERIFY_SIDE (`rerank`), 14 with the fine check (retina's and clock's smooth areas
     give no keypoints); the floor leaves one photo of room. The reference for the box is where the crop
     was cut."""
-    from nearsight.indexer.rerank import rerank, rerank_fine
+    from nearsight.indexer.matching.rerank import rerank, rerank_fine
 
     plain, fine = 0, 0
     for name, (small, crop, cut, _strip) in fifths.items():
@@ -154,7 +154,7 @@ def test_the_fine_check_confirms_a_fifth_of_a_photo_that_the_small_copy_is_too_c
 def test_the_fine_check_confirms_no_neighbouring_tile_or_other_photo(fifths):
     """The crop against the strip beside it (same photo, no pixel in common) and against every other
     photo's small copy: nothing verifies, and nothing's score moves."""
-    from nearsight.indexer.rerank import rerank_fine
+    from nearsight.indexer.matching.rerank import rerank_fine
 
     names = list(fifths)
     for i, name in enumerate(names):
@@ -170,7 +170,7 @@ def test_the_fine_check_confirms_no_neighbouring_tile_or_other_photo(fifths):
 def test_the_fine_check_runs_only_when_the_best_is_still_unconfirmed(fifths):
     """`rerank_more(..., fine=N)`: the fine check is the last round; a query whose best verified earlier
     pays nothing for it, and a hard crop's original moves first once it confirms."""
-    from nearsight.indexer.rerank import rerank_more
+    from nearsight.indexer.matching.rerank import rerank_more
 
     small, crop, _cut, strip = fifths["rocket"]  # 0 inliers at the small copy's side (measured)
     results = [{"id": 1, "similarity": 0.8}, {"id": 2, "similarity": 0.7}]
@@ -187,7 +187,7 @@ def test_the_fine_check_runs_only_when_the_best_is_still_unconfirmed(fifths):
 
 def test_the_fine_check_leaves_a_query_without_keypoints_as_it_was(fifths):
     """A flat grey query has no ORB keypoints (nothing for FAST to find): no candidate is read or changed."""
-    from nearsight.indexer.rerank import rerank_fine
+    from nearsight.indexer.matching.rerank import rerank_fine
 
     small = fifths["astronaut"][0]
     results = [{"id": 1, "similarity": 0.7, "evidence": None}]

@@ -1,4 +1,4 @@
-"""The pairs to judge first (indexer/review_queue.py) on a real calibrated store, against the rule
+"""The pairs to judge first (indexer/calibration/review_queue.py) on a real calibrated store, against the rule
 written out by brute force: contents told apart by hashlib's SHA-256 of the files, pixels by
 Pillow's decoded RGB, P(same) by scipy.stats.gaussian_kde and the mixture formula in rates.py's
 docstring, the rounds dealt pass by pass. The mixture's posterior is checked on its own against
@@ -12,13 +12,13 @@ import numpy as np
 import pytest
 from PIL import Image, ImageOps
 
-from nearsight.indexer.generations import require_current
-from nearsight.indexer.pipeline import run_index
-from nearsight.indexer.rates import fit_mixture
-from nearsight.indexer.review_queue import probability_model, review_queue
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
-from nearsight.indexer.verdicts import verdict_report
+from nearsight.indexer.matching.generations import require_current
+from nearsight.indexer.building.pipeline import run_index
+from nearsight.indexer.core.rates import fit_mixture
+from nearsight.indexer.calibration.review_queue import probability_model, review_queue
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
+from nearsight.indexer.calibration.verdicts import verdict_report
 
 from .test_calibrate import write_scenes_with_copies
 from .test_pipeline import TINY
@@ -53,7 +53,7 @@ def _pixels(path: str) -> bytes:
 
 
 def _brute_force(pairs, t, paths, verdict_paths, calibration, window):
-    """The rule of indexer/review_queue.py, written out pair by pair."""
+    """The rule of indexer/calibration/review_queue.py, written out pair by pair."""
     from scipy import stats
 
     sha = {i: hashlib.sha256(Path(p).read_bytes()).hexdigest() for i, p in paths.items()}

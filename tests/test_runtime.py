@@ -1,4 +1,4 @@
-"""The encoder run by ONNX Runtime (indexer/runtime.py): the same vectors as PyTorch on scikit-image's photos,
+"""The encoder run by ONNX Runtime (indexer/learning/runtime.py): the same vectors as PyTorch on scikit-image's photos,
 never a file that does not belong to the weights, and a query answered without importing PyTorch."""
 
 import json
@@ -7,11 +7,11 @@ import numpy as np
 import pytest
 from PIL import Image, ImageEnhance
 
-from nearsight.indexer import runtime
-from nearsight.indexer.embed import embed_images
-from nearsight.indexer.encoder import create_encoder
-from nearsight.indexer.errors import NotReadyError, UsageError
-from nearsight.indexer.model import load_model, save_model
+from nearsight.indexer.learning import runtime
+from nearsight.indexer.learning.embed import embed_images
+from nearsight.indexer.learning.encoder import create_encoder
+from nearsight.indexer.core.errors import NotReadyError, UsageError
+from nearsight.indexer.learning.model import load_model, save_model
 from tests.subprocess_cli import run_fresh
 
 pytest.importorskip("onnxruntime")
@@ -94,9 +94,9 @@ def test_a_file_that_does_not_belong_to_the_weights_is_never_used(model_dir, tmp
 
 def test_a_one_image_query_runs_without_importing_pytorch(tmp_path):
     """`nearsight similar` on a store indexed by the real pipeline: the subprocess's own sys.modules."""
-    from nearsight.indexer.pipeline import run_index
-    from nearsight.indexer.settings import load_settings
-    from nearsight.indexer.store import Store
+    from nearsight.indexer.building.pipeline import run_index
+    from nearsight.indexer.core.settings import load_settings
+    from nearsight.indexer.storage.store import Store
     from tests.test_pipeline import TINY, _scene
 
     photos = tmp_path / "photos"

@@ -12,9 +12,9 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from nearsight.indexer.scan import scan_source
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
+from nearsight.indexer.reading.scan import scan_source
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
 
 from .conftest import ROOT
 

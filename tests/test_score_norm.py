@@ -59,9 +59,9 @@ def test_statistic_against_brute_force_on_random_vectors():
 
 
 def test_query_background_statistic_used_by_similar_matches_a_hand_computation():
-    """indexer.query.background_statistic: the mean of ranks 2..k+1 of a query's similarities (the
+    """indexer.matching.query.background_statistic: the mean of ranks 2..k+1 of a query's similarities (the
     product's form of the same normalisation, with the generation's index as the background)."""
-    from nearsight.indexer.query import background_statistic
+    from nearsight.indexer.matching.query import background_statistic
 
     sims = [0.2, 0.95, 0.5, 0.4, 0.1]
     # Sorted: .95, .5, .4, .2, .1; skip .95; k = 3 -> (.5 + .4 + .2) / 3.

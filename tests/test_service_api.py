@@ -14,11 +14,11 @@ import pytest
 from PIL import Image
 from prometheus_client.parser import text_string_to_metric_families
 
-from nearsight.indexer import generations
-from nearsight.indexer.catalog import Catalog
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
-from nearsight.indexer.rerank import verdict_score
+from nearsight.indexer.matching import generations
+from nearsight.indexer.storage.catalog import Catalog
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
+from nearsight.indexer.matching.rerank import verdict_score
 
 from .service_support import API_KEY, COPIED, Response, multipart, multipart_files, transformed
 
@@ -171,7 +171,7 @@ def test_image_ids_round_trip_with_the_catalog(client, served):
 
 def test_similar_by_id_matches_a_search_with_the_stored_vector(client, served):
     """The same neighbours as FAISS gives in-process for the stored (whitened) vector."""
-    from nearsight.indexer.query import Searcher
+    from nearsight.indexer.matching.query import Searcher
 
     image_id = sorted(_ids_by_path(served).values())[7]
     searcher = Searcher(served["store"])
@@ -242,7 +242,7 @@ def test_plan_is_the_quarantine_dry_run_and_moves_nothing(client, served):
     import hashlib
     from pathlib import Path
 
-    from nearsight.indexer.quarantine import plan_quarantine
+    from nearsight.indexer.acting.quarantine import plan_quarantine
 
     paths = [m["path"] for m in served["store"].catalog.image_meta().values()]
     before = {p: hashlib.sha256(Path(p).read_bytes()).hexdigest() for p in paths}
@@ -470,7 +470,7 @@ def test_request_log_has_a_line_per_request_and_no_image_bytes(client, live_serv
     assert data[:64].decode("latin-1") not in log and "JFIF" not in log and API_KEY not in log
 
 
-# The one rule for a threshold, a precision and k (indexer/limits.py), wherever they are given.
+# The one rule for a threshold, a precision and k (indexer/core/limits.py), wherever they are given.
 OUT_OF_RANGE = [("threshold", "2", "a number in (0, 1]"), ("threshold", "-0.5", "a number in (0, 1]"),
                 ("threshold", "0", "a number in (0, 1]"), ("precision", "1", "a number in (0, 1)"),
                 ("precision", "0", "a number in (0, 1)"), ("k", "0", "a whole number from 1 to 100"),

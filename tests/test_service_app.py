@@ -9,14 +9,14 @@ import time
 
 import pytest
 
-from nearsight.indexer import generations
+from nearsight.indexer.matching import generations
 from nearsight.indexer.cli import main as cli_main
-from nearsight.indexer.errors import UsageError
-from nearsight.indexer.generations import CALIBRATION_FILE
-from nearsight.indexer.pipeline import run_index
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
-from nearsight.indexer.rerank import verdict_score
+from nearsight.indexer.core.errors import UsageError
+from nearsight.indexer.matching.generations import CALIBRATION_FILE
+from nearsight.indexer.building.pipeline import run_index
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
+from nearsight.indexer.matching.rerank import verdict_score
 from nearsight.service import create_app
 
 from .service_support import API_KEY, transformed

@@ -14,7 +14,7 @@ from pathlib import Path
 
 import pytest
 
-from nearsight.indexer.catalog import Catalog
+from nearsight.indexer.storage.catalog import Catalog
 
 from .service_support import API_KEY, COPIED, ServerProcess, artifacts_dir, transformed
 

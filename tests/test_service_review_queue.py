@@ -1,5 +1,5 @@
 """GET /v1/review/pairs on a real `python -m nearsight serve` bound to 127.0.0.1 (tests/service_support.py),
-asked with the standard library's http.client: the queue indexer/review_queue.py computes on the
+asked with the standard library's http.client: the queue indexer/calibration/review_queue.py computes on the
 same store, a judged pair gone at the next request, and bad parameters answered with JSON 400s.
 The service's store has no calibration, so the order is closeness to the threshold (the rule's
 fallback), checked here against the published pairs read with NumPy."""
@@ -8,10 +8,10 @@ import json
 
 import pytest
 
-from nearsight.indexer import generations
-from nearsight.indexer.review_queue import review_queue
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
+from nearsight.indexer.matching import generations
+from nearsight.indexer.calibration.review_queue import review_queue
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
 
 from .service_support import API_KEY, ServerProcess
 

@@ -6,10 +6,10 @@ moment of the swap: requests still in flight finish on it from memory.
 
 import time
 
-from nearsight.indexer import generations
-from nearsight.indexer.pipeline import run_index
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
+from nearsight.indexer.matching import generations
+from nearsight.indexer.building.pipeline import run_index
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
 
 from .service_support import QueryLoad, ServerProcess, transformed
 

@@ -10,10 +10,10 @@ from pathlib import Path
 import pytest
 from PIL import Image
 
-from nearsight.indexer import generations
-from nearsight.indexer.quarantine import apply_quarantine
-from nearsight.indexer.settings import load_settings
-from nearsight.indexer.store import Store
+from nearsight.indexer.matching import generations
+from nearsight.indexer.acting.quarantine import apply_quarantine
+from nearsight.indexer.core.settings import load_settings
+from nearsight.indexer.storage.store import Store
 
 from .service_support import API_KEY, ServerProcess
 
@@ -114,7 +114,7 @@ def test_a_keeper_chosen_on_the_review_page_reaches_the_plan_and_can_be_taken_ba
     the plan a `quarantine` would carry out (read from the same catalog) keep it, say why, and the group's
     page shows every member's metadata and the common region on both images: for a resize, the whole of
     each (known by construction). Removing the pick gives the choice back to the rules."""
-    from nearsight.indexer.plan import plan_quarantine
+    from nearsight.indexer.acting.plan import plan_quarantine
 
     client, writer = server.client(), server.client(API_KEY)
     groups = client.get("/v1/groups?limit=200").json()["groups"]

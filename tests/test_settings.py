@@ -2,8 +2,8 @@
 
 import pytest
 
-from nearsight.indexer.errors import UsageError
-from nearsight.indexer.settings import SETTINGS, describe, load_settings
+from nearsight.indexer.core.errors import UsageError
+from nearsight.indexer.core.settings import SETTINGS, describe, load_settings
 
 
 def test_defaults_come_from_the_table():

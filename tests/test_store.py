@@ -8,13 +8,13 @@ import textwrap
 
 import pytest
 
-from nearsight.indexer.errors import NotFoundError, StoreLockedError
-from nearsight.indexer.store import Store, resolve_store_path
+from nearsight.indexer.core.errors import NotFoundError, StoreLockedError
+from nearsight.indexer.storage.store import Store, resolve_store_path
 
 HOLD_LOCK = textwrap.dedent(
     """
     import sys, time
-    from nearsight.indexer.store import Store
+    from nearsight.indexer.storage.store import Store
     store = Store.open(sys.argv[1], create=True)
     with store.lock():
         print("locked", flush=True)

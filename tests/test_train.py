@@ -13,15 +13,15 @@ import pytest
 import torch
 from PIL import Image
 
-from nearsight.indexer.edits import EDIT_KINDS, apply_edit, random_edit
-from nearsight.indexer.embed import embed_files, embed_images
-from nearsight.indexer.encoder import create_encoder, preprocess
-from nearsight.indexer.errors import NearsightError, NotReadyError, UsageError
-from nearsight.indexer.heldout import heldout_check, ranks_of_originals
-from nearsight.indexer.model import load_model, save_model
-from nearsight.indexer.fine_tune import FineTuneConfig, fine_tune_from_pairs
-from nearsight.indexer.train import CHECKPOINT_FILE, TrainConfig, train
-from nearsight.indexer.views import ViewRecipe, make_views
+from nearsight.indexer.learning.edits import EDIT_KINDS, apply_edit, random_edit
+from nearsight.indexer.learning.embed import embed_files, embed_images
+from nearsight.indexer.learning.encoder import create_encoder, preprocess
+from nearsight.indexer.core.errors import NearsightError, NotReadyError, UsageError
+from nearsight.indexer.learning.heldout import heldout_check, ranks_of_originals
+from nearsight.indexer.learning.model import load_model, save_model
+from nearsight.indexer.learning.fine_tune import FineTuneConfig, fine_tune_from_pairs
+from nearsight.indexer.learning.train import CHECKPOINT_FILE, TrainConfig, train
+from nearsight.indexer.learning.views import ViewRecipe, make_views
 
 PHOTOS = ("astronaut", "coffee", "chelsea", "rocket", "camera", "coins", "immunohistochemistry",
           "hubble_deep_field", "brick", "moon", "page", "clock", "colorwheel", "grass", "gravel", "text")
@@ -98,12 +98,12 @@ def test_training_lowers_loss_and_beats_random_init(collection, broken_file, tmp
 @pytest.mark.parametrize("views, threads", [("batched", 2), ("per_image", 1)])
 def test_interrupted_run_resumes_to_the_same_weights(collection, tmp_path, monkeypatch, views, threads):
     # Equal weights after a resume mean the resumed run saw exactly the same batches; with two
-    # threads the batch is split over two encoder replicas (indexer/split_batch.py).
+    # threads the batch is split over two encoder replicas (indexer/core/split_batch.py).
     config = tiny_config(steps=8, heldout_fraction=0.2, views=views, threads=threads)
     straight = train(collection, tmp_path / "straight", config, progress=False)
     expected, _ = load_model(tmp_path / "straight")
 
-    import nearsight.indexer.train as train_module
+    import nearsight.indexer.learning.train as train_module
 
     calls = {"n": 0}
     real_loss = train_module.nt_xent
@@ -168,12 +168,12 @@ def test_embed_files_skips_a_broken_file(collection, broken_file, tmp_path, work
     result = embed_files(paths, tmp_path, batch_size=4, workers=workers)
     assert result.ok == [0, 1, 2, 3, 4, 6, 7, 8]
     assert list(result.errors) == [5] and result.errors[5]
-    # Rows: the 16 learned values, then the encoder's classical descriptor if it has one (indexer/classic.py).
+    # Rows: the 16 learned values, then the encoder's classical descriptor if it has one (indexer/learning/classic.py).
     assert result.vectors.shape == (8, stored.out_dim) and result.vectors.dtype == np.float32
     np.testing.assert_allclose(np.linalg.norm(result.vectors, axis=1), 1.0, rtol=1e-5)
     # The same vectors as embedding the decoded images directly.
     encoder, _ = load_model(tmp_path)
-    from nearsight.indexer.images import read_image
+    from nearsight.indexer.reading.images import read_image
 
     direct = embed_images(encoder, [read_image(p, 128)[0] for p in collection[:2]], size=64)
     np.testing.assert_allclose(result.vectors[:2], direct, atol=1e-6)
@@ -221,7 +221,7 @@ def test_a_short_run_with_batched_views_lowers_the_loss(collection, tmp_path):
 
 def test_views_at_one_side_and_the_model_at_another(collection, tmp_path):
     """`embed_size`: training views at 48 px, the saved model embeds (and is checked) at 64 px."""
-    from nearsight.indexer.model import load_model
+    from nearsight.indexer.learning.model import load_model
 
     result = train(collection, tmp_path, tiny_config(steps=5, size=48, embed_size=64), progress=False)
     card = json.loads((tmp_path / "card.json").read_text())
@@ -277,7 +277,7 @@ def test_heldout_check_reports_per_kind():
 
 def test_one_verdict_file_format_for_import_and_fine_tuning(tmp_path):
     """`verdicts.read_verdicts_csv` reads what `verdicts import` and `train --from-verdicts` both take."""
-    from nearsight.indexer.verdicts import read_verdicts_csv
+    from nearsight.indexer.calibration.verdicts import read_verdicts_csv
 
     good = tmp_path / "verdicts.csv"
     good.write_text("a,b,verdict,note\na.jpg,b.jpg,same,\n12,d.jpg, Different ,a crop of another\n")

@@ -1,4 +1,4 @@
-"""indexer.verdict_groups on crafted vectors: a person's verdicts act on the groups at once.
+"""indexer.building.verdict_groups on crafted vectors: a person's verdicts act on the groups at once.
 
 Oracles: NumPy brute force for every pair inside a group (no chaining), scipy's complete
 linkage (scipy.cluster.hierarchy) for how a group is split again, NumPy dot products for the
@@ -10,10 +10,10 @@ import pytest
 from scipy.cluster.hierarchy import fcluster, linkage
 from scipy.spatial.distance import squareform
 
-from nearsight.indexer.catalog import Catalog
-from nearsight.indexer.errors import UsageError
-from nearsight.indexer.groups import ImageMeta, build_groups
-from nearsight.indexer.verdict_groups import PERSON, PairVerdicts, apply_verdicts, person_classes
+from nearsight.indexer.storage.catalog import Catalog
+from nearsight.indexer.core.errors import UsageError
+from nearsight.indexer.matching.groups import ImageMeta, build_groups
+from nearsight.indexer.building.verdict_groups import PERSON, PairVerdicts, apply_verdicts, person_classes
 
 T_NEAR, T_SIMILAR = 0.9, 0.8
 

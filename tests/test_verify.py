@@ -1,4 +1,4 @@
-"""Geometric verification (indexer/verify.py) on real photos: scikit-image's bundled `skimage.data`.
+"""Geometric verification (indexer/matching/verify.py) on real photos: scikit-image's bundled `skimage.data`.
 
 Every copy here is made with Pillow from a photo, so the truth (the crop box, the scale,
 the mirror, the rotation) comes from how the copy was built, not from the verifier.
@@ -13,8 +13,8 @@ import pytest
 from PIL import Image
 
 from benchmarks.bench_verify import block_differences
-from nearsight.indexer.errors import UsageError
-from nearsight.indexer.verify import Verification, VerifyConfig, extract_features, verify_candidates, verify_pair
+from nearsight.indexer.core.errors import UsageError
+from nearsight.indexer.matching.verify import Verification, VerifyConfig, extract_features, verify_candidates, verify_pair
 
 
 def photo(name: str) -> Image.Image:
@@ -271,7 +271,7 @@ def _opencv_ratio_matches(query, candidate, ratio: float) -> np.ndarray:
 def test_ratio_matches_agree_with_opencv_brute_force_matching(pair):
     """FAISS's binary index finds the same ratio-test matches as OpenCV's BFMatcher on real photos:
     a copy, a mirror image, a neighbouring tile and an unrelated photo."""
-    from nearsight.indexer.verify import ratio_matches
+    from nearsight.indexer.matching.verify import ratio_matches
 
     name, kind = pair
     im = photo(name)
@@ -288,7 +288,7 @@ def test_ratio_matches_agree_with_opencv_brute_force_matching(pair):
 
 def test_query_keypoints_found_once_give_the_same_verdicts():
     """Verifying with the query's keypoints kept (verify.QueryFeatures) equals verifying the image."""
-    from nearsight.indexer.verify import QueryFeatures
+    from nearsight.indexer.matching.verify import QueryFeatures
 
     im = photo("coffee")
     query = jpeg(im.crop((0, 0, 380, 300)), 70).transpose(Image.Transpose.FLIP_LEFT_RIGHT)

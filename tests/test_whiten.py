@@ -3,7 +3,7 @@
 import numpy as np
 from sklearn.decomposition import PCA
 
-from nearsight.indexer.whiten import Whitening, fit_whitening
+from nearsight.indexer.matching.whiten import Whitening, fit_whitening
 
 
 def _anisotropic(n=2000, d=16, seed=0):

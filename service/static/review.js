@@ -131,7 +131,7 @@
   }
 
   // -- the pairs to judge first ----------------------------------------------------------------
-  // The server orders them (indexer/review_queue.py): near the duplicate threshold, the estimated
+  // The server orders them (indexer/calibration/review_queue.py): near the duplicate threshold, the estimated
   // chance of "same" nearest even first. A judged pair leaves the queue, so a new page starts at 0.
   const SOURCE_WORDS = { verdicts: "your verdicts so far", calibration: "the calibration" };
 
@@ -308,7 +308,7 @@
   $("next-page").addEventListener("click", () => { state.page += 1; renderGroups(); });
 
   // -- one group -----------------------------------------------------------------------------
-  // `now` (indexer/explain.py) is the group as a quarantine would see it: the file to keep and why,
+  // `now` (indexer/acting/explain.py) is the group as a quarantine would see it: the file to keep and why,
   // each member's metadata, what would happen to it, and where it matches the keeper.
   async function loadGroup(gid) {
     if (state.group && state.group.gid === gid) return state.group;

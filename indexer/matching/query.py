@@ -1,0 +1,411 @@
+"""Similarity queries against the current generation: image files in, neighbours out.
+
+Each query is answered on its own: a query file that cannot be read gets an
+error entry and the others still answer.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+from pathlib import Path
+from typing import Collection, Iterator, Sequence
+
+import numpy as np
+from PIL import ImageOps
+
+from ..core.errors import ImageReadError, NotFoundError, NotReadyError
+from ..learning.embed import embed_images
+from ..reading.images import ImageInfo, read_image
+from ..storage.store import Store
+from . import index as faiss_index
+from .generations import require_current
+
+log = logging.getLogger(__name__)
+
+QUERY_BATCH = 32
+BACKGROUND_K = 10  # neighbours averaged for a query's background statistic (Pizzi et al. use 10, from memory)
+BACKGROUND_SEARCH = 32  # neighbours searched for it: room for 21 copies of the query to be skipped
+
+
+def background_statistic(sims: Sequence[float], k: int = BACKGROUND_K, copy_threshold: float = np.inf) -> float:
+    """The mean of a query's k best similarities in the collection after its closest one and every one
+    at or above `copy_threshold` are skipped (0 when none is left).
+
+    Query-adaptive score normalisation (Pizzi et al. 2022, "A self-supervised descriptor for
+    image copy detection", sec. 3.3) subtracts beta times this from every score of the query,
+    so a score says how far a candidate stands out from what the query resembles anyway: a
+    textured photo's many look-alikes no longer score like copies. The background set is the
+    generation's own index; the closest one is skipped since it is the copy, if there is one, and
+    so are the scores the generation calls copies, so that an image with several copies in the
+    collection is not measured against its own copies."""
+    ranked = sorted(sims, reverse=True)[1:]
+    ranked = [s for s in ranked if s < copy_threshold][:k]
+    return float(np.mean(ranked)) if ranked else 0.0
+
+
+def expand_queries(paths: Sequence[str], extensions: tuple[str, ...]) -> list[str]:
+    """Each PATH as given, or for a folder, the image files under it (sorted)."""
+    out: list[str] = []
+    for given in paths:
+        path = Path(given)
+        if path.is_dir():
+            found = sorted(
+                str(Path(dirpath) / name)
+                for dirpath, _dirs, names in os.walk(path)
+                for name in names
+                if os.path.splitext(name)[1].lower() in extensions
+            )
+            if not found:
+                log.warning("no image files under %s", given)
+            out.extend(found)
+        else:
+            out.append(str(given))
+    return out
+
+
+def read_query(given: str, max_side: int):
+    """A query file's pixels for searching (longest side `max_side`); NotFoundError when there is no such
+    file, ImageReadError when it is not a readable image."""
+    if not Path(given).exists():
+        raise NotFoundError(f"no such file: {given}")
+    return read_image(given, max_side=max_side)[0]
+
+
+def read_queries(paths: Sequence[str], max_side: int) -> list:
+    """`read_query` of each path, decoded on every core at once (indexer/core/cores.py): per path its image, or
+    the NotFoundError or ImageReadError that says why there is none."""
+    from ..core.cores import each_on_cores
+
+    def one(given):
+        try:
+            return read_query(given, max_side)
+        except (ImageReadError, NotFoundError) as exc:
+            return exc
+
+    return each_on_cores(one, list(paths))
+
+
+def _better_of(direct: list[tuple[float, int]], other: list[tuple[float, int]],
+               head: int | None = None) -> list[tuple[float, bool, int]]:
+    """(similarity, whether it came from the other view, id) for every id of either list, with its better
+    similarity, best first. With `head`, the other view's score is taken only where it ranks among the
+    first `head` (the candidates verification will check); elsewhere the direct score stands, and an id
+    the direct list lacks is left out."""
+    best: dict[int, tuple[float, bool]] = {i: (d, False) for d, i in direct}
+    for d, i in other:
+        if d > best.get(i, (-np.inf, False))[0]:
+            best[i] = (d, True)
+    ranked = sorted(((d, m, i) for i, (d, m) in best.items()), key=lambda t: -t[0])
+    if head is None:
+        return ranked
+    own = dict((i, d) for d, i in direct)
+    kept = ranked[:head] + [(own[i], False, i) for _, m, i in ranked[head:] if m and i in own] + \
+        [t for t in ranked[head:] if not t[1]]
+    return sorted(kept, key=lambda t: -t[0])
+
+
+def _with_regions(merged: list[tuple[float, object, int]], found: list[tuple[float, int]], head: int,
+                  places: int) -> list[tuple[float, object, int]]:
+    """`merged` (similarity, other view, id) with up to `places` files found through region descriptors
+    (`found`, best first) put right after its first `head`, each with the better of its region score
+    (then marked "region") and the score it had; files already among the first `head` are not repeated."""
+    first = merged[:head]
+    have = {i for _, _, i in first}
+    rest = {i: (d, m) for d, m, i in merged[head:]}
+    regions = [(d, "region", i) if d > rest.get(i, (-np.inf, False))[0] else (*rest[i], i)
+               for d, i in found if i not in have][:places]
+    moved = {i for _, _, i in regions}
+    return first + regions + [t for t in merged[head:] if t[2] not in moved]
+
+
+def _settle_views(results: list[dict], direct: dict[int, float], shift: float) -> None:
+    """A result that scored through another view of the query (its mirror, the picture inside its frame, a
+    region of the candidate) keeps that score only when verification confirmed it, and a region's only
+    when confirmed without mirroring the query (one wing of a symmetric subject would confirm the other);
+    otherwise it falls back to its direct score, or leaves the list when the image as given did not find
+    it. Re-sorted in place."""
+    for r in list(results):
+        view = r.pop("_other_view", False)
+        evidence = r.get("evidence") or {}
+        if not view or (evidence.get("verified") and not (view == "region" and evidence.get("mirrored"))):
+            continue
+        if evidence.get("verified"):  # a region confirmed only by the mirrored query: not evidence of a copy
+            r["evidence"] = {**evidence, "verified": False, "reason": "a region matched only mirrored"}
+        if r["id"] in direct:
+            d = direct[r["id"]]
+            r["similarity"], r["descriptor_similarity"] = round(d - shift, 6), round(d, 6)
+        else:
+            results.remove(r)
+    results.sort(key=lambda r: -r["similarity"])
+
+
+class Searcher:
+    """The current generation's index and model, loaded once, answering many queries."""
+
+    def __init__(self, store: Store):
+        generation = require_current(store)
+        # Memory-mapped where FAISS allows: several service processes then share one copy in the page cache.
+        from ..learning.runtime import load_encoder
+
+        encoder, card = load_encoder(store.models_dir / generation.meta["model"], store.settings.runtime)
+        calibration = generation.load_calibration() or {}
+        regions = generation.load_regions(mmap=True) if store.settings.region_grid else (None, 0)
+        self._setup(store, generation.load_index(mmap=True), generation.load_whitening(), encoder, card,
+                    near_threshold=generation.threshold("near"), query_calibration=calibration.get("query"),
+                    regions=regions)
+        self.generation = generation
+
+    @classmethod
+    def for_build(cls, store: Store, index, whitening, encoder, card, near_threshold: float, *,
+                  regions=(None, 0)) -> "Searcher":
+        """A searcher over a generation being built (not yet published): calibration asks its
+        questions through the very function that answers users' queries."""
+        searcher = cls.__new__(cls)
+        searcher._setup(store, index, whitening, encoder, card, near_threshold=near_threshold, query_calibration=None,
+                        regions=regions)
+        searcher.generation = None
+        return searcher
+
+    def _setup(self, store: Store, index, whitening, encoder, card, *, near_threshold: float,
+               query_calibration: dict | None, regions=(None, 0)) -> None:
+        self.store = store
+        self.index = index
+        self.whitening = whitening
+        self.encoder, self.card = encoder, card
+        self.size = int(card["image_size"])
+        self.threshold = near_threshold  # the collection's pairwise near-duplicate threshold (descriptor scale)
+        self.query_calibration = query_calibration  # the query verdict (indexer/matching/query_verdict.py), if calibrated
+        self.verify_top = int(store.settings.verify_top)
+        self.score_norm = float(store.settings.score_norm)
+        self.frame_views = bool(store.settings.frame_views)
+        self.mirror_view = str(store.settings.mirror_view)
+        self.verify_more = int(store.settings.verify_more) if self.verify_top else 0
+        self.verify_fine = int(store.settings.verify_fine) if self.verify_top else 0
+        # The region descriptors' index and grid (indexer/matching/regions.py), searched in the second round.
+        self.regions, self.region_grid = regions if self.verify_top else (None, 0)
+        self.verify_regions = int(store.settings.verify_regions) if self.regions is not None else 0
+
+    @property
+    def verdict_threshold(self) -> float:
+        """What a result's `duplicate` is judged against by default: the query verdict's threshold
+        (on the scale of `similarity`) when calibrated, else the near-duplicate threshold."""
+        return float(self.query_calibration["threshold"]) if self.query_calibration else self.threshold
+
+    def vectors_for_images(self, images) -> np.ndarray:
+        """Query vectors in the generation's space (encoder output, then its whitening)."""
+        return self.whitening.apply(embed_images(self.encoder, images, self.size))
+
+    def neighbours(self, xq: np.ndarray, k: int, threshold: float | None = None, *,
+                   catalog=None, exclude: Collection[int] = (), excludes: Sequence[Collection[int]] | None = None,
+                   images=None) -> list[list[dict]]:
+        """Top-k neighbours for each query vector, as dicts with id, path, similarity,
+        descriptor_similarity, evidence, duplicate and probability.
+
+        `catalog` is the connection to read paths with (SQLite connections belong to one thread:
+        a multi-threaded caller passes its own; default the store's). Ids in `exclude` are left
+        out, and k more are asked for so that k remain; `excludes` gives each query row its own set
+        instead. With the query `images` (one per row of `xq`), the best `verify_top` candidates are
+        verified and re-ranked (indexer/matching/rerank.py); a query whose best candidate is still unverified
+        then has its other views searched (its mirror image, itself upside down, the picture inside
+        its frame) and the collection's region descriptors (indexer/matching/regions.py), its mirrored keypoints
+        tried and `verify_more` more candidates verified (`verify_regions` more for regions), and, when none
+        confirms, its first `verify_fine` unconfirmed ones checked at twice the side (`rerank.rerank_fine`).
+        `duplicate` follows the query verdict (`judge`) unless a `threshold` is given."""
+        catalog = catalog if catalog is not None else self.store.catalog
+        # The background statistic needs k + 1 neighbours and more for the copies it skips.
+        wanted = max(k, BACKGROUND_SEARCH) if self.score_norm else max(k, self.verify_top + self.verify_more)
+        excludes = [set(e) for e in excludes] if excludes is not None else [set(exclude)] * len(xq)
+        if len(excludes) != len(xq):
+            raise ValueError(f"{len(excludes)} exclusion sets for {len(xq)} queries")
+        n = wanted + max((len(e) for e in excludes), default=0)
+        rows = self._search(xq, n, excludes)
+        verifying = images is not None and self.verify_top > 0
+        # The background statistic comes from the image as given: other views' scores are not its background.
+        shifts = [self.score_norm * background_statistic([d for d, _ in kept], copy_threshold=self.threshold)
+                  for kept in rows]
+        if images is not None and self.mirror_view == "max":
+            rows = [[(d, i) for d, _, i in _better_of(kept, more)]
+                    for kept, more in zip(rows, self._mirror_rows(images, n, excludes))]
+        head = self.verify_top
+        # Every candidate verification may reach is answered (cut to k at the end): the best result
+        # must not depend on k.
+        reach = max(k, head + self.verify_more if verifying else 0) + head
+        out = self._answers([_better_of(kept, [])[:reach] for kept in rows], shifts, catalog)
+        if verifying:
+            from .rerank import query_features
+
+            keys = [query_features(im) for im in images]  # each query's keypoints and matches, kept for both rounds
+            out = self._verified(keys, out, catalog, more=False)
+            # The mirrored query's keypoints, the other views and the further candidates only for a query
+            # whose best is not confirmed yet: a copy found as given (most queries) costs none of them.
+            pending = [q for q, results in enumerate(out)
+                       if not (results and (results[0].get("evidence") or {}).get("verified"))]
+            if pending:
+                again = self._other_views(xq[pending], [images[q] for q in pending], [keys[q] for q in pending],
+                                          [rows[q] for q in pending], n, [excludes[q] for q in pending], reach,
+                                          [shifts[q] for q in pending], catalog)
+                for q, results in zip(pending, again):
+                    out[q] = results
+        for results, kept, shift in zip(out, rows, shifts):
+            _settle_views(results, dict((i, d) for d, i in kept), shift)
+            del results[k:]
+        for results in out:
+            self.judge(results, threshold)
+        return out
+
+    def _answers(self, merged: list[list[tuple[float, bool, int]]], shifts: Sequence[float], catalog) -> list[list[dict]]:
+        """Result dicts of (similarity, other view, id) lists, each score less its query's shift."""
+        paths = catalog.paths_for([i for kept in merged for _, _, i in kept])  # only the ones answered
+        return [[{"id": i, "path": paths.get(i), "similarity": round(d - shift, 6),
+                  "descriptor_similarity": round(d, 6), "evidence": None, **({"_other_view": m} if m else {})}
+                 for d, m, i in kept]
+                for kept, shift in zip(merged, shifts)]
+
+    def _other_views(self, xq, images, keys, rows, n: int, excludes: list[set[int]], reach: int, shifts, catalog):
+        """The answers of queries whose best candidate did not verify among the first `verify_top`:
+        candidates their other views find join the direct ones (`_better_of`), the mirrored query is
+        tried too, the files whose region descriptors are nearest to the query (`xq`, its vectors) get
+        `verify_regions` places right after the first `verify_top`, and verification goes on to
+        `verify_more` more (`keys`: the queries' kept keypoints and matches, so nothing matched in the
+        first round is matched again)."""
+        extra = [[] for _ in rows]
+        if self.mirror_view == "verified":
+            # Only what the mirror finds as a near-duplicate on the descriptor's scale: a mirrored copy
+            # scores like a copy there, while the other half of a symmetric subject (two wings of one
+            # butterfly in two files), which verification would also confirm as mirrored, does not.
+            extra = [[(d, i) for d, i in found if d >= self.threshold]
+                     for found in self._flipped_rows(images, n, excludes)]
+        if self.frame_views:
+            extra = self._with_frame_views(images, extra, n, excludes)
+        # Another view's candidate takes a place only among those verification checks, and keeps it only
+        # when verified (`_settle_views`): a view may not raise a look-alike's score on its own.
+        merged = [_better_of(kept, more, self.verify_top) for kept, more in zip(rows, extra)]
+        added = 0
+        if self.verify_regions:
+            from .regions import region_candidates
+
+            found = region_candidates(self.regions, xq, self.verify_regions + self.verify_top, excludes,
+                                      self.region_grid)
+            merged = [_with_regions(m, f, self.verify_top, self.verify_regions) for m, f in zip(merged, found)]
+            added = self.verify_regions
+        out = self._answers([m[:reach + added] for m in merged], shifts, catalog)
+        return self._verified(keys, out, catalog, more=True, added=added)
+
+    def _search(self, xq: np.ndarray, n: int, excludes: Sequence[Collection[int]]) -> list[list[tuple[float, int]]]:
+        """Per query row, its (similarity, id) neighbours best first, the ids of its set in `excludes` left out."""
+        D, I = faiss_index.search(self.index, np.ascontiguousarray(xq, dtype=np.float32), n)
+        return [[(float(d), int(i)) for d, i in zip(d_row, i_row) if i >= 0 and int(i) not in exclude]
+                for d_row, i_row, exclude in zip(D, I, excludes)]
+
+    def _mirror_rows(self, images, n: int, excludes) -> list[list[tuple[float, int]]]:
+        """`_search` of each query image's mirror image."""
+        return self._search(self.vectors_for_images([ImageOps.mirror(im) for im in images]), n, excludes)
+
+    def _flipped_rows(self, images, n: int, excludes) -> list[list[tuple[float, int]]]:
+        """Per query image, `_search` of its mirror image and of it turned upside down (flipped top to
+        bottom), in one forward pass, each id with the better of its two similarities."""
+        views = [ImageOps.mirror(im) for im in images] + [ImageOps.flip(im) for im in images]
+        found = self._search(self.vectors_for_images(views), n, list(excludes) * 2)
+        return [[(d, i) for d, _, i in _better_of(a, b)] for a, b in zip(found[: len(images)], found[len(images):])]
+
+    def _with_frame_views(self, images, extra: list[list[tuple[float, int]]], n: int,
+                          excludes) -> list[list[tuple[float, int]]]:
+        """`extra` (per query, candidates found through other views) with each framed query image
+        (indexer/matching/frames.py) searched once more as the picture inside its frame. Images without a frame,
+        most of them, cost one scan of their edges."""
+        from .frames import inside_frame
+
+        framed = [(row, view) for row, view in enumerate(map(inside_frame, images)) if view is not None]
+        if not framed:
+            return extra
+        found = self._search(self.vectors_for_images([view for _, view in framed]), n, [excludes[row] for row, _ in framed])
+        extra = list(extra)
+        for (row, _), more in zip(framed, found):
+            extra[row] = [(d, i) for d, _, i in _better_of(extra[row], more)]
+        return extra
+
+    def judge(self, results: list[dict], threshold: float | None = None) -> None:
+        """Set each result's `duplicate` and `probability`.
+
+        With the generation's query verdict (calibrated for a stated rate of false flags per query,
+        indexer/matching/query_verdict.py), a result is a duplicate when its final `similarity` (normalised,
+        verified) reaches the verdict's threshold, and `probability` is the calibrated chance that it
+        is a copy. Without one, or with an explicit `threshold`, the verdict compares the descriptor
+        score, boosted when verified (`rerank.verdict_score`), as the collection's thresholds do."""
+        from .query_verdict import copy_probability
+        from .rerank import verdict_score
+
+        verdict = self.query_calibration
+        for r in results:
+            r["probability"] = None if verdict is None else copy_probability(verdict, r["similarity"])
+            if threshold is None and verdict is not None:
+                r["duplicate"] = bool(r["similarity"] >= verdict["threshold"])
+            else:
+                r["duplicate"] = bool(verdict_score(r) >= (self.threshold if threshold is None else threshold))
+
+    def _verified(self, queries, answers: list[list[dict]], catalog, *, more: bool, added: int = 0) -> list[list[dict]]:
+        """`rerank_all` of the answers (`queries`: images or their rerank.query_features): the first
+        `verify_top` of each by the query as given; with `more`, by its mirror image too and, when the
+        best is still unverified, the next `verify_more` (and `added` places made for other candidates),
+        then the fine check of `verify_fine`."""
+        from .rerank import rerank_all
+
+        reach = self.verify_top + (self.verify_more + added if more else 0)
+        wanted = {r["id"] for results in answers for r in results[:reach]}
+        sources = catalog.pixel_sources(wanted)
+        candidates = {i: str(self.store.pixels_path(row)) for i, row in sources.items()}
+        return rerank_all(queries, answers, candidates, self.verify_top, more=self.verify_more + added if more else 0,
+                          mirrored=more, fine=self.verify_fine if more else 0)
+
+    def _own_image(self, file_id: int, catalog):
+        """A catalogued image's pixels, from its small copy when there is one (None if unreadable)."""
+        row = catalog.pixel_sources([file_id]).get(file_id)
+        if row is None or self.verify_top == 0:
+            return None
+        try:
+            return read_image(self.store.pixels_path(row), max_side=2 * self.size)[0]
+        except (ImageReadError, OSError):
+            return None
+
+    def similar_to_upload(self, data, k: int, threshold: float | None = None, *, max_pixels: int | None,
+                          catalog=None) -> tuple[list[dict], ImageInfo]:
+        """Neighbours of one image given as bytes or a binary file object (an upload), decoded by
+        `read_image` like every other image; raises ImageReadError for anything not an image."""
+        image, info = read_image(data, max_side=2 * self.size, max_pixels=max_pixels)
+        return self.neighbours(self.vectors_for_images([image]), k, threshold, catalog=catalog, images=[image])[0], info
+
+    def similar_to_id(self, file_id: int, k: int, threshold: float | None = None, *, catalog=None) -> list[dict]:
+        """Neighbours of a catalogued image, from its stored vector (no decoding); itself left out."""
+        catalog = catalog if catalog is not None else self.store.catalog
+        model = self.generation.meta["model"]
+        stored = catalog.file_vectors([file_id], model)
+        if file_id not in stored:
+            row = catalog.file(file_id)
+            if row is None:
+                raise NotFoundError(f"no image with id {file_id}")
+            raise NotReadyError(f"image {file_id} ({row['state']}) has no vector under model {model}; "
+                                "readable files get one at the next `nearsight index`")
+        xq = self.whitening.apply(stored[file_id][None, :])
+        own = self._own_image(file_id, catalog)
+        return self.neighbours(xq, k, threshold, catalog=catalog, exclude={file_id},
+                               images=None if own is None else [own])[0]
+
+    def similar_files(self, paths: Sequence[str], k: int, threshold: float | None = None) -> Iterator[dict]:
+        """One result object per query path, in order; unreadable queries carry an error."""
+        max_side = 2 * self.size
+        for start in range(0, len(paths), QUERY_BATCH):
+            block = paths[start : start + QUERY_BATCH]
+            images, good, answers = [], [], {}
+            for given, read in zip(block, read_queries(block, max_side)):
+                if isinstance(read, Exception):
+                    answers[given] = {"query": given, "error": read.to_dict()}
+                else:
+                    images.append(read)
+                    good.append(given)
+            if images:
+                for given, results in zip(good, self.neighbours(self.vectors_for_images(images), k, threshold,
+                                                                images=images)):
+                    answers[given] = {"query": given, "results": results}
+            for given in block:
+                yield answers[given]
