@@ -9,7 +9,7 @@ import torch
 from PIL import Image, ImageEnhance
 
 from nearsight.indexer.learning.classic import THUMB_SIDE, check_classic, classic_descriptor, classic_dim, dct_matrix
-from nearsight.indexer.learning.encoder import create_encoder, pixels, preprocess, standardise_luma
+from nearsight.indexer.learning.encoder import create_encoder, pixels, preprocess, standardise, standardise_luma
 from nearsight.indexer.core.errors import UsageError
 
 
@@ -74,15 +74,38 @@ def test_luma_standardisation_removes_an_affine_brightness_and_contrast_change()
     np.testing.assert_allclose(y.std(dim=(1, 2)).numpy(), 1.0, atol=1e-3)
 
 
+def test_centred_standardisation_removes_imagenet_c_contrast_where_luma_does_not():
+    """ImageNet-C's contrast corruption (Hendrycks and Dietterich 2019; its code, from memory:
+    `means = x.mean(axis=(0, 1)); (x - means) * c + means`, clipped, c = 0.05 at severity 5) pulls
+    each channel towards its own mean. "centred" standardisation undoes it up to 8-bit rounding;
+    "luma" leaves a colour offset of (1 - c)(m_c - M) / (c s) per channel, far larger than the
+    picture itself. scikit-image's astronaut: a colourful photograph (red suit, blue flag)."""
+    im = _photo("astronaut")
+    x = np.asarray(im.convert("RGB"), np.float64) / 255.0
+    means = x.mean(axis=(0, 1), keepdims=True)
+    low = np.clip((x - means) * 0.05 + means, 0, 1)
+    edited = Image.fromarray(np.round(low * 255).astype(np.uint8))
+    batch = preprocess([im, edited], 128)
+    centred = standardise(batch, "centred")
+    luma_only = standardise(batch, "luma")
+    centred_gap = float((centred[0] - centred[1]).abs().mean())
+    luma_gap = float((luma_only[0] - luma_only[1]).abs().mean())
+    # 8-bit rounding of a 5 % contrast picture: levels 1/255 apart in a spread of about 0.05 x 0.25,
+    # so about a third of a unit; the luma-only offsets are several units.
+    assert centred_gap < 0.5 < 2.0 < luma_gap, (centred_gap, luma_gap)
+    per_channel_mean = centred.mean(dim=(2, 3))
+    np.testing.assert_allclose(per_channel_mean.numpy(), 0.0, atol=1e-4)
+
+
 def test_model_files_remember_input_standardisation_and_classical_part(tmp_path):
     from nearsight.indexer.learning.embed import embed_images
     from nearsight.indexer.learning.model import load_model, save_model
 
     torch.manual_seed(0)
-    encoder = create_encoder("tiny", 16, input_norm="luma", classic="dct8")
+    encoder = create_encoder("tiny", 16, input_norm="centred", classic="dct8")
     save_model(tmp_path, encoder, {"arch": "tiny", "image_size": 64})
     loaded, card = load_model(tmp_path)
-    assert (card["input_norm"], card["classic"], loaded.out_dim) == ("luma", "dct8", 16 + 63)
+    assert (card["input_norm"], card["classic"], loaded.out_dim) == ("centred", "dct8", 16 + 63)
     images = [_photo("coffee"), _photo("rocket")]
     np.testing.assert_allclose(embed_images(loaded, images, 64), embed_images(encoder, images, 64), atol=1e-6)
     with pytest.raises(UsageError):

@@ -26,9 +26,11 @@ DEFAULT_ARCH = "resnet_narrow"
 POOLINGS = ("gem", "avg")
 # What the backbone sees: "imagenet" is the fixed channel standardisation alone (models
 # saved before input standardisation existed); "luma" also standardises each image by its
-# own mean and spread of luminance, so brightness and contrast changes barely move the input.
-INPUT_NORMS = ("imagenet", "luma")
-DEFAULT_INPUT_NORM = "luma"
+# own mean and spread of luminance, so brightness and contrast changes barely move the input;
+# "centred" takes each channel's own mean instead of the luma's, so a contrast change towards
+# each channel's mean (ImageNet-C's contrast) or a colour cast moves it no more (standardise).
+INPUT_NORMS = ("imagenet", "luma", "centred")
+DEFAULT_INPUT_NORM = "centred"
 
 
 class GeM(nn.Module):
@@ -162,12 +164,27 @@ def standardise_luma(x: torch.Tensor) -> torch.Tensor:
     """Per image: (pixels - mean luma) / std luma, all three channels with the same two numbers.
 
     Any change p -> a p + b applied to every channel (a brightness or contrast change
-    without clipping, ImageNet-C's contrast included) leaves the result unchanged, while
+    without clipping, Pillow's ImageEnhance.Contrast included) leaves the result unchanged, while
     colour ratios survive (a per-channel standardisation would erase colour).
+    """
+    return standardise(x, "luma")
+
+
+def standardise(x: torch.Tensor, how: str) -> torch.Tensor:
+    """Per image: (pixels - mean) / std luma, where the mean is the luma's ("luma") or each
+    channel's own ("centred"); the spread is always the luma's, so colour contrast keeps its size.
+
+    "luma" cancels p -> a p + b with the same b in every channel. "centred" also cancels a
+    different b per channel: a colour cast, and a contrast change towards each channel's own mean,
+    p_c -> a p_c + (1 - a) m_c, which is ImageNet-C's contrast corruption (Hendrycks and Dietterich
+    2019). Under "luma" that change leaves a per-channel offset of (1 - a)(m_c - M) / (a s) in
+    units of the spread: at a = 0.05 about 19 times the channel's distance from the grey mean, a
+    picture tinted far beyond any training view. What "centred" gives up is the picture's mean
+    colour, which a tinted copy does not keep either.
     """
     p = pixels(x)
     y = luma(p)
-    mean = y.mean(dim=(1, 2, 3), keepdim=True)
+    mean = p.mean(dim=(2, 3), keepdim=True) if how == "centred" else y.mean(dim=(1, 2, 3), keepdim=True)
     std = y.std(dim=(1, 2, 3), keepdim=True).clamp(min=MIN_LUMA_STD)
     return (p - mean) / std
 
@@ -200,8 +217,8 @@ class Encoder(nn.Module):
         return self.dim + self.classic_dim
 
     def forward_features(self, x: torch.Tensor) -> torch.Tensor:
-        if self.input_norm == "luma":
-            x = standardise_luma(x)
+        if self.input_norm != "imagenet":
+            x = standardise(x, self.input_norm)
         return self.backbone(x)
 
     def forward_head(self, features: torch.Tensor, normalize: bool = True) -> torch.Tensor:
