@@ -14,14 +14,16 @@ from __future__ import annotations
 import argparse
 import json
 import logging
+import sys
 import time
 from pathlib import Path
 
 import numpy as np
 
-from benchmarks import metrics
-from benchmarks import bench_quality
-from benchmarks.bench_quality import _nearsight_predictions, _store, evaluate, query_groups, verdicts
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+
+from benchmarks import bench_quality  # noqa: E402
+from benchmarks.bench_quality import _nearsight_predictions, _store, evaluate, query_groups, verdicts  # noqa: E402
 
 
 def _recalibrated_copy(store_dir: Path) -> Path:
