@@ -28,7 +28,8 @@ def _centre_crop(im: Image.Image, area: float) -> Image.Image:
 
 def _edits(im: Image.Image) -> dict[str, Image.Image]:
     """Common ways a photo gets copied: the first four, then a mirror image, one turned upside down
-    (Pillow's top-to-bottom flip), half the area, and a frame."""
+    (Pillow's top-to-bottom flip), one a quarter-turn off (an orientation tag lost: Pillow's
+    transpose ROTATE_90), half the area, and a frame."""
     w, h = im.size
     return {
         "jpeg-q30": im,  # saved below at quality 30
@@ -37,12 +38,14 @@ def _edits(im: Image.Image) -> dict[str, Image.Image]:
         "brighter": ImageEnhance.Brightness(im).enhance(1.3),
         "mirror": ImageOps.mirror(im),
         "upside-down": ImageOps.flip(im),
+        "quarter-turn": im.transpose(Image.Transpose.ROTATE_90),
         "crop-50%": _centre_crop(im, 0.5),
         "framed": ImageOps.expand(im, border=round(0.12 * max(w, h)), fill=(0, 0, 0)),
     }
 
 
-EDIT_KINDS = ("jpeg-q30", "crop-70%", "resize-50%", "brighter", "mirror", "upside-down", "crop-50%", "framed")
+EDIT_KINDS = ("jpeg-q30", "crop-70%", "resize-50%", "brighter", "mirror", "upside-down", "quarter-turn", "crop-50%",
+              "framed")
 
 
 @pytest.fixture(scope="module")
@@ -87,6 +90,8 @@ def photo_store(tmp_path_factory):
     "mirror", "crop-50%", "framed",
     # A query whose best candidate does not verify is also searched turned upside down (indexer/matching/query.py).
     "upside-down",
+    # ... and a quarter-turn either way (setting turned_views).
+    "quarter-turn",
 ])
 def test_transformed_scikit_image_photos_find_their_original_first(photo_store, kind):
     store_dir, queries = photo_store

@@ -282,6 +282,15 @@ SETTINGS: tuple[Setting, ...] = (
         "better of its two scores; off: the image as given only.",
     ),
     Setting(
+        "turned_views",
+        True,
+        _parse_bool,
+        "A query whose best candidate is not verified is also searched turned a quarter-turn either way, "
+        "as a photo whose orientation tag was lost stands to its original; what those views find counts "
+        "only when it scores like a near-duplicate turned back and geometric verification confirms it. "
+        "Costs two more encoder passes for such queries only; false turns it off.",
+    ),
+    Setting(
         "near_threshold",
         0.50,
         _unit_float,

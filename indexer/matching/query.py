@@ -12,7 +12,7 @@ from pathlib import Path
 from typing import Collection, Iterator, Sequence
 
 import numpy as np
-from PIL import ImageOps
+from PIL import Image, ImageOps
 
 from ..core.errors import ImageReadError, NotFoundError, NotReadyError
 from ..learning.embed import embed_images
@@ -84,6 +84,14 @@ def read_queries(paths: Sequence[str], max_side: int) -> list:
             return exc
 
     return each_on_cores(one, list(paths))
+
+
+def _quarter_turn_left(im: Image.Image) -> Image.Image:
+    return im.transpose(Image.Transpose.ROTATE_90)
+
+
+def _quarter_turn_right(im: Image.Image) -> Image.Image:
+    return im.transpose(Image.Transpose.ROTATE_270)
 
 
 def _better_of(direct: list[tuple[float, int]], other: list[tuple[float, int]],
@@ -180,6 +188,7 @@ class Searcher:
         self.score_norm = float(store.settings.score_norm)
         self.frame_views = bool(store.settings.frame_views)
         self.mirror_view = str(store.settings.mirror_view)
+        self.turned_views = bool(store.settings.turned_views)
         self.verify_more = int(store.settings.verify_more) if self.verify_top else 0
         self.verify_fine = int(store.settings.verify_fine) if self.verify_top else 0
         # The region descriptors' index and grid (indexer/matching/regions.py), searched in the second round.
@@ -207,8 +216,8 @@ class Searcher:
         out, and k more are asked for so that k remain; `excludes` gives each query row its own set
         instead. With the query `images` (one per row of `xq`), the best `verify_top` candidates are
         verified and re-ranked (indexer/matching/rerank.py); a query whose best candidate is still unverified
-        then has its other views searched (its mirror image, itself upside down, the picture inside
-        its frame) and the collection's region descriptors (indexer/matching/regions.py), its mirrored keypoints
+        then has its other views searched (its mirror image, itself upside down, a quarter-turn either
+        way, the picture inside its frame) and the collection's region descriptors (indexer/matching/regions.py), its mirrored keypoints
         tried and `verify_more` more candidates verified (`verify_regions` more for regions), and, when none
         confirms, its first `verify_fine` unconfirmed ones checked at twice the side (`rerank.rerank_fine`).
         `duplicate` follows the query verdict (`judge`) unless a `threshold` is given."""
@@ -270,12 +279,19 @@ class Searcher:
         `verify_more` more (`keys`: the queries' kept keypoints and matches, so nothing matched in the
         first round is matched again)."""
         extra = [[] for _ in rows]
+        turns = []
         if self.mirror_view == "verified":
             # Only what the mirror finds as a near-duplicate on the descriptor's scale: a mirrored copy
             # scores like a copy there, while the other half of a symmetric subject (two wings of one
             # butterfly in two files), which verification would also confirm as mirrored, does not.
+            turns += [ImageOps.mirror, ImageOps.flip]
+        if self.turned_views:
+            # A photo whose orientation tag was lost (or applied twice) stands a quarter-turn off its
+            # original: turned back, it scores like a copy. The same near-duplicate floor applies.
+            turns += [_quarter_turn_left, _quarter_turn_right]
+        if turns:
             extra = [[(d, i) for d, i in found if d >= self.threshold]
-                     for found in self._flipped_rows(images, n, excludes)]
+                     for found in self._turned_rows(images, turns, n, excludes)]
         if self.frame_views:
             extra = self._with_frame_views(images, extra, n, excludes)
         # Another view's candidate takes a place only among those verification checks, and keeps it only
@@ -302,12 +318,17 @@ class Searcher:
         """`_search` of each query image's mirror image."""
         return self._search(self.vectors_for_images([ImageOps.mirror(im) for im in images]), n, excludes)
 
-    def _flipped_rows(self, images, n: int, excludes) -> list[list[tuple[float, int]]]:
-        """Per query image, `_search` of its mirror image and of it turned upside down (flipped top to
-        bottom), in one forward pass, each id with the better of its two similarities."""
-        views = [ImageOps.mirror(im) for im in images] + [ImageOps.flip(im) for im in images]
-        found = self._search(self.vectors_for_images(views), n, list(excludes) * 2)
-        return [[(d, i) for d, _, i in _better_of(a, b)] for a, b in zip(found[: len(images)], found[len(images):])]
+    def _turned_rows(self, images, turns, n: int, excludes) -> list[list[tuple[float, int]]]:
+        """Per query image, `_search` of each of its views `turns` (functions of an image: its mirror
+        image, itself upside down, a quarter-turn), in one forward pass, each id with the best of its
+        similarities."""
+        views = [turn(im) for turn in turns for im in images]
+        found = self._search(self.vectors_for_images(views), n, list(excludes) * len(turns))
+        best = found[: len(images)]
+        for t in range(1, len(turns)):
+            more = found[t * len(images) : (t + 1) * len(images)]
+            best = [[(d, i) for d, _, i in _better_of(a, b)] for a, b in zip(best, more)]
+        return best
 
     def _with_frame_views(self, images, extra: list[list[tuple[float, int]]], n: int,
                           excludes) -> list[list[tuple[float, int]]]:
