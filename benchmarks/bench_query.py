@@ -118,7 +118,7 @@ def main() -> int:
         f"Command: `.venv/bin/python benchmarks/bench_query.py --work {args.work}` ({len(paths)} queries of the "
         f"quality benchmark, batches of {args.batch}, against its store `{args.store}`: top 10, score "
         "normalisation, geometric verification of the best 3 on the small copies; for a query whose best did "
-        "not verify, its mirror image, itself upside down and the picture inside a frame searched too, its "
+        "not verify, its mirror image, itself upside down, a quarter-turn either way and the picture inside a frame searched too, its "
         "mirrored keypoints tried and 12 more candidates verified"
         + (f"; settings changed: {', '.join(args.set)}" if args.set else "") + ").",
         "",
