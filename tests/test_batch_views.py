@@ -41,7 +41,7 @@ def bank():
 
 def no_edits(**overrides) -> ViewRecipe:
     """A recipe that only crops (every probability 0), with chosen overrides."""
-    values = dict(flip_p=0.0, rotate_p=0.0, jitter_p=0.0, grayscale_p=0.0, blur_p=0.0, jpeg_p=0.0, border_p=0.0,
+    values = dict(flip_p=0.0, rotate_p=0.0, perspective_p=0.0, jitter_p=0.0, grayscale_p=0.0, blur_p=0.0, jpeg_p=0.0, border_p=0.0,
                   overlay_p=0.0, gamma_p=0.0, strong_contrast_p=0.0, noise_p=0.0, pixelate_p=0.0)
     values.update(overrides)
     return ViewRecipe(**values)
@@ -50,7 +50,7 @@ def no_edits(**overrides) -> ViewRecipe:
 def identity_params(boxes: torch.Tensor, **overrides) -> ViewParams:
     """Parameters that crop `boxes` and change nothing else."""
     n = len(boxes)
-    values = dict(boxes=boxes, flip=torch.zeros(n, dtype=torch.bool), angle=torch.zeros(n),
+    values = dict(boxes=boxes, flip=torch.zeros(n, dtype=torch.bool), angle=torch.zeros(n), keystone=torch.zeros(n, 2),
                   inner=torch.ones(n, 2), border_colour=torch.zeros(n, 3), brightness=torch.ones(n),
                   contrast=torch.ones(n), saturation=torch.ones(n), hue=torch.zeros(n),
                   grayscale=torch.zeros(n, dtype=torch.bool), gamma=torch.ones(n), blur_sigma=torch.zeros(n),
@@ -65,8 +65,8 @@ def identity_params(boxes: torch.Tensor, **overrides) -> ViewParams:
 
 
 def test_every_view_draws_its_own_parameters_within_the_recipe(bank):
-    recipe = ViewRecipe(flip_p=0.5, rotate_p=1.0, jitter_p=1.0, blur_p=1.0, jpeg_p=1.0, pixelate_p=1.0,
-                        overlay_p=1.0, gamma_p=1.0, border_p=1.0)
+    recipe = ViewRecipe(flip_p=0.5, rotate_p=1.0, perspective_p=1.0, jitter_p=1.0, blur_p=1.0, jpeg_p=1.0,
+                        pixelate_p=1.0, overlay_p=1.0, gamma_p=1.0, border_p=1.0)
     n = 64
     regions = whole_regions(bank.extents[torch.arange(n) % len(bank)])
     scale = torch.tensor([recipe.hard_crop_scale] * n)
@@ -81,6 +81,11 @@ def test_every_view_draws_its_own_parameters_within_the_recipe(bank):
         assert torch.unique(getattr(p, name)).numel() > 1, name
     # Within the recipe's ranges.
     assert p.angle.abs().max() <= recipe.rotate_degrees
+    # One keystone a view, across x or across y, of its own size and side.
+    assert ((p.keystone != 0).sum(dim=1) == 1).all()
+    assert p.keystone.abs().max() <= recipe.perspective_max
+    assert torch.unique(p.keystone.abs().sum(dim=1)).numel() == n
+    assert 0 < int((p.keystone[:, 0] != 0).sum()) < n
     for name, strength in (("brightness", recipe.brightness), ("saturation", recipe.saturation)):
         values = getattr(p, name)
         assert values.min() >= 1 - strength and values.max() <= 1 + strength, name
@@ -392,3 +397,26 @@ def test_bad_recipes_are_refused():
     # An old card's recipe (before the batched fields) still loads, with today's defaults for the rest.
     old = {"crop_scale": [0.2, 1.0], "flip_p": 0.5, "jpeg_quality": [30, 90]}
     assert ViewRecipe.from_dict(old).hard_crop_scale == ViewRecipe().hard_crop_scale
+
+
+@pytest.mark.parametrize("k", [0.25, -0.25])
+def test_a_keystone_narrows_one_edge_by_its_share_and_reads_only_the_box(k):
+    """A horizontal ramp (each pixel's value is its column) warped with a keystone k across x: the
+    row at the narrow edge spans 1 - |k| of the columns the opposite row spans, centred on the same
+    column (the trapezoid the recipe states), and no sample falls outside the crop box. Reference:
+    the ramp itself, computed with NumPy."""
+    side, size = 64, 64
+    ramp = torch.arange(side, dtype=torch.float32).repeat(side, 1) / (side - 1)
+    src = ramp.expand(1, 3, side, side).contiguous()
+    box = torch.tensor([[8.0, 8.0, 48.0, 48.0]])
+    params = identity_params(box, keystone=torch.tensor([[k, 0.0]]))
+    out = warp(src, params, torch.tensor([[0.0, 0.0, side, side]]), size)[0, 0].numpy()
+    plain = warp(src, identity_params(box), torch.tensor([[0.0, 0.0, side, side]]), size)[0, 0].numpy()
+    narrow, wide = (out[-1], out[0]) if k > 0 else (out[0], out[-1])
+    span = lambda row: float(row.max() - row.min())  # noqa: E731
+    assert span(wide) == pytest.approx(span(plain[0]), rel=0.05)
+    # The edge row sits half a pixel in from the edge, so its narrowing is 1 - |k| (1 - 1/size) exactly.
+    assert span(narrow) == pytest.approx((1 - abs(k) * (1 - 1 / size)) * span(plain[0]), rel=0.05)
+    assert float(narrow.mean()) == pytest.approx(float(wide.mean()), abs=0.02)
+    lo, hi = (8 - 0.5) / (side - 1), (48 + 8 + 0.5) / (side - 1)
+    assert out.min() >= lo - 1e-4 and out.max() <= hi + 1e-4

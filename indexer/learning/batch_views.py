@@ -47,6 +47,7 @@ class ViewParams:
     boxes: torch.Tensor  # (n, 4) crop box x0, y0, w, h in source pixels
     flip: torch.Tensor  # (n,) bool, horizontal
     angle: torch.Tensor  # (n,) rotation in degrees
+    keystone: torch.Tensor  # (n, 2) how much narrower one edge is than the opposite, across x / y; sign: which edge
     inner: torch.Tensor  # (n, 2) half width, half height of the picture inside its border (1, 1 = no border)
     border_colour: torch.Tensor  # (n, 3) in [0, 1]
     brightness: torch.Tensor  # (n,) factor
@@ -88,6 +89,9 @@ def _sample_geometry(regions: torch.Tensor, scale: torch.Tensor, r: ViewRecipe,
     boxes = sample_crop_boxes(regions, scale, r.crop_ratio, gen)
     flip = _coin(n, r.flip_p, gen)
     angle = torch.where(_coin(n, r.rotate_p, gen), _uniform(n, (-r.rotate_degrees, r.rotate_degrees), gen), 0.0)
+    tilt = torch.where(_coin(n, r.perspective_p, gen), _uniform(n, (-r.perspective_max, r.perspective_max), gen), 0.0)
+    across_y = _coin(n, 0.5, gen)
+    keystone = torch.stack([torch.where(across_y, 0.0, tilt), torch.where(across_y, tilt, 0.0)], dim=1)
     bordered = _coin(n, r.border_p, gen)
     keep = 1 - 2 * _uniform(n, r.border_frac, gen)
     mode = torch.randint(0, 3, (n,), generator=gen)  # 0: frame, 1: bars top and bottom, 2: bars left and right
@@ -97,7 +101,8 @@ def _sample_geometry(regions: torch.Tensor, scale: torch.Tensor, r: ViewRecipe,
     x0, y0, w, h = boxes.unbind(1)
     new_w, new_h = torch.where(bars_x, w * keep, w), torch.where(bars_y, h * keep, h)
     boxes = torch.stack([x0 + (w - new_w) / 2, y0 + (h - new_h) / 2, new_w, new_h], dim=1)
-    return {"boxes": boxes, "flip": flip, "angle": angle, "inner": torch.stack([inner_x, inner_y], dim=1),
+    return {"boxes": boxes, "flip": flip, "angle": angle, "keystone": keystone,
+            "inner": torch.stack([inner_x, inner_y], dim=1),
             "border_colour": torch.rand(n, 3, generator=gen)}
 
 
@@ -145,6 +150,24 @@ def _output_coords(size: int) -> torch.Tensor:
     return (2 * torch.arange(size, dtype=torch.float32) + 1) / size - 1
 
 
+def _view_coords(params: ViewParams, size: int) -> tuple[torch.Tensor, torch.Tensor]:
+    """Per view, the output pixel centres (x, y) after its keystone, broadcastable to (n, size, size).
+
+    A keystone k across x makes the view's x extent shrink linearly from one edge to the other:
+    x -> x (1 - |k| (1 + sign(k) y) / 2), so the edge at y = sign(k) spans 1 - |k| of the width and
+    the opposite edge all of it; across y likewise with x and y swapped. Every point stays inside
+    the square, so a view still reads only its own crop box (hard-negative regions stay apart)."""
+    o = _output_coords(size)
+    ox, oy = o[None, None, :], o[None, :, None]
+    k = params.keystone
+    if not bool((k != 0).any()):
+        return ox, oy
+    kx, ky = k[:, 0, None, None], k[:, 1, None, None]
+    gx = ox * (1 - kx.abs() * (1 + torch.sign(kx) * oy) / 2)
+    gy = oy * (1 - ky.abs() * (1 + torch.sign(ky) * ox) / 2)
+    return gx, gy
+
+
 def _affine_coefficients(params: ViewParams, side: int) -> list[torch.Tensor]:
     """Per view, (a, b, c) of x and of y: source = a * out_x + b * out_y + c, all in normalised units.
 
@@ -161,15 +184,16 @@ def _affine_coefficients(params: ViewParams, side: int) -> list[torch.Tensor]:
 
 
 def _fill_outside(out: torch.Tensor, coefficients: list[torch.Tensor], params: ViewParams, regions: torch.Tensor,
-                  side: int) -> None:
+                  side: int, coords: tuple[torch.Tensor, torch.Tensor]) -> None:
     """Black where a rotation took a sample point outside its region; the border colour outside the picture."""
     n, _c, size, _ = out.shape
     o = _output_coords(size)
     rotated = torch.nonzero(params.angle != 0).flatten()
     if len(rotated):
         ax, bx, cx, ay, by, cy = (k[rotated, None, None] for k in coefficients)
-        px = (ax * o[None, None, :] + bx * o[None, :, None] + cx + 1) * (side / 2)
-        py = (ay * o[None, None, :] + by * o[None, :, None] + cy + 1) * (side / 2)
+        gx, gy = (g.expand(n, size, size)[rotated] for g in coords)
+        px = (ax * gx + bx * gy + cx + 1) * (side / 2)
+        py = (ay * gx + by * gy + cy + 1) * (side / 2)
         r = regions[rotated, :, None, None]
         outside = (px < r[:, 0]) | (px > r[:, 2]) | (py < r[:, 1]) | (py > r[:, 3])
         out[rotated] = out[rotated].masked_fill_(outside[:, None], 0.0)
@@ -183,7 +207,7 @@ def _fill_outside(out: torch.Tensor, coefficients: list[torch.Tensor], params: V
 
 
 def warp(src: torch.Tensor, params: ViewParams, regions: torch.Tensor, size: int) -> torch.Tensor:
-    """Crop, flip, rotate and border sources (n, 3, S, S) in [0, 1] into views (n, 3, size, size).
+    """Crop, tilt (keystone), flip, rotate and border sources (n, 3, S, S) in [0, 1] into views (n, 3, size, size).
 
     Bilinear sampling reads at most half a pixel beyond a crop box; the bank
     repeats each picture's last row and column there (`build_source_bank`), and
@@ -194,11 +218,10 @@ def warp(src: torch.Tensor, params: ViewParams, regions: torch.Tensor, size: int
     side = src.shape[-1]
     coefficients = _affine_coefficients(params, side)
     ax, bx, cx, ay, by, cy = (c[:, None, None] for c in coefficients)
-    o = _output_coords(size)
-    ox, oy = o[None, None, :], o[None, :, None]
+    ox, oy = coords = _view_coords(params, size)
     grid = torch.stack([ax * ox + bx * oy + cx, ay * ox + by * oy + cy], dim=-1)
     out = F.grid_sample(src, grid, mode="bilinear", padding_mode="border", align_corners=False)
-    _fill_outside(out, coefficients, params, regions, side)
+    _fill_outside(out, coefficients, params, regions, side, coords)
     return out
 
 

@@ -45,6 +45,10 @@ class ViewRecipe:
     flip_p: float = 0.5
     rotate_p: float = 0.2
     rotate_degrees: float = 8.0
+    # A photo of a print or a screen taken at a slant: one edge of the view narrower than the
+    # opposite one (a keystone), by up to perspective_max of the side.
+    perspective_p: float = 0.2
+    perspective_max: float = 0.25
     jitter_p: float = 0.8
     brightness: float = 0.4
     contrast: float = 0.4
@@ -104,6 +108,7 @@ class ViewRecipe:
         checks = [
             (self.crop_ratio[0] > 0, f"crop_ratio must be positive, got {self.crop_ratio}"),
             (self.rotate_degrees >= 0, f"rotate_degrees must be >= 0, got {self.rotate_degrees}"),
+            (0 <= self.perspective_max < 1, f"perspective_max must lie in [0, 1), got {self.perspective_max}"),
             (self.border_frac[1] < 0.5, f"border_frac must stay below 0.5, got {self.border_frac}"),
             (self.blur_sigma[0] > 0, f"blur_sigma must be positive, got {self.blur_sigma}"),
             (self.gamma[0] > 0 and self.shot_photons[0] > 0, "gamma and shot_photons must be positive"),
@@ -200,6 +205,7 @@ def make_views(recipe: ViewRecipe, size: int) -> Callable[[Image.Image], torch.T
             v2.CenterCrop(size),
             v2.RandomHorizontalFlip(r.flip_p),
             v2.RandomApply([v2.RandomRotation(r.rotate_degrees, interpolation=v2.InterpolationMode.BILINEAR)], p=r.rotate_p),
+            v2.RandomPerspective(r.perspective_max, p=r.perspective_p),
             v2.RandomApply([v2.ColorJitter(r.brightness, r.contrast, r.saturation, r.hue)], p=r.jitter_p),
             v2.RandomGrayscale(r.grayscale_p),
             RandomOverlay(r.overlay_p),
