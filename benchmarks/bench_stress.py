@@ -52,10 +52,12 @@ def _hue_half(im, rng):
 
 
 def _perspective(im, rng):
-    """The far edge 12 % narrower on one side, as a photo of a print taken at a slant."""
+    """A photo of a print taken at a slant: the source's top edge 12 % narrower on each side than its
+    bottom edge, stretched back to the full width (Pillow's QUAD transform takes the source's corners
+    in the order upper left, lower left, lower right, upper right)."""
     w, h = im.size
     d = 0.12
-    quad = (w * d, h * d * 0.5, w * (1 - d * 0.3), 0, w, h, 0, h * (1 - d))
+    quad = (w * d, 0, 0, h, w, h, w * (1 - d), 0)
     return im.convert("RGB").transform((w, h), Image.Transform.QUAD, quad, Image.Resampling.BICUBIC)
 
 
