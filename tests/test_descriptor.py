@@ -9,7 +9,7 @@ import torch
 from PIL import Image, ImageEnhance
 
 from nearsight.indexer.learning.classic import THUMB_SIDE, check_classic, classic_descriptor, classic_dim, dct_matrix
-from nearsight.indexer.learning.encoder import create_encoder, pixels, preprocess, standardise, standardise_luma
+from nearsight.indexer.learning.encoder import create_encoder, pixels, preprocess, standardise
 from nearsight.indexer.core.errors import UsageError
 
 
@@ -66,7 +66,7 @@ def test_luma_standardisation_removes_an_affine_brightness_and_contrast_change()
     edited = ImageEnhance.Contrast(ImageEnhance.Brightness(im).enhance(0.8)).enhance(0.7)
     x = preprocess([im, edited], 128)
     raw_gap = float((x[0] - x[1]).abs().mean())
-    s = standardise_luma(x)
+    s = standardise(x, "luma")
     gap = float((s[0] - s[1]).abs().mean())
     assert gap < 0.1 * raw_gap, (gap, raw_gap)
     y = 0.299 * s[:, 0] + 0.587 * s[:, 1] + 0.114 * s[:, 2]  # BT.601 luma of the result

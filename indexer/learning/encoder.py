@@ -163,21 +163,13 @@ def pixels(x: torch.Tensor) -> torch.Tensor:
 MIN_LUMA_STD = 0.02
 
 
-def standardise_luma(x: torch.Tensor) -> torch.Tensor:
-    """Per image: (pixels - mean luma) / std luma, all three channels with the same two numbers.
-
-    Any change p -> a p + b applied to every channel (a brightness or contrast change
-    without clipping, Pillow's ImageEnhance.Contrast included) leaves the result unchanged, while
-    colour ratios survive (a per-channel standardisation would erase colour).
-    """
-    return standardise(x, "luma")
-
-
 def standardise(x: torch.Tensor, how: str) -> torch.Tensor:
     """Per image: (pixels - mean) / std luma, where the mean is the luma's ("luma") or each
     channel's own ("centred"); the spread is always the luma's, so colour contrast keeps its size.
 
-    "luma" cancels p -> a p + b with the same b in every channel. "centred" also cancels a
+    "luma" cancels p -> a p + b with the same b in every channel (a brightness or contrast change
+    without clipping, Pillow's ImageEnhance.Contrast included), while colour ratios survive (a
+    per-channel spread would erase colour). "centred" also cancels a
     different b per channel: a colour cast, and a contrast change towards each channel's own mean,
     p_c -> a p_c + (1 - a) m_c, which is ImageNet-C's contrast corruption (Hendrycks and Dietterich
     2019). Under "luma" that change leaves a per-channel offset of (1 - a)(m_c - M) / (a s) in
