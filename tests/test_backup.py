@@ -202,3 +202,28 @@ def test_a_backup_taken_while_index_and_serve_run_verifies_and_answers_like_its_
     after = answers(store_dir)
     held = answers(tmp_path / "backup")
     assert held in (before, after)
+
+
+def test_a_moved_store_calibrates_on_the_same_held_out_originals(service_store, tmp_path):
+    """The model card lists its held-out originals by the path of their small copies in the store where it
+    was trained. A backup (or a store moved to another folder) must find them under its own thumbs/, or its
+    calibration edits other originals and lands on other thresholds than the store it copies."""
+    import numpy as np
+
+    from nearsight.indexer.calibration.calibrate import _originals
+    from nearsight.indexer.learning.model import read_card
+    from nearsight.indexer.learning.models import current_model_dir
+
+    dest = tmp_path / "backup"
+    with open_plain_store(service_store.copy("moved")) as store:
+        backup_store(store, dest)
+    chosen = {}
+    for where in (service_store.template, dest):
+        with open_plain_store(where) as store:
+            card = read_card(current_model_dir(store))
+            meta = store.catalog.image_meta()
+            ids = np.array(sorted(meta), dtype=np.int64)
+            rows, paths, held = _originals(store, card, ids, meta, 6, np.random.default_rng(0))
+            chosen[where] = (rows, [p.replace(str(where), "") for p in paths], held)
+    assert chosen[dest][2] > 0  # the card's held-out originals are found in the backup too
+    assert chosen[dest] == chosen[service_store.template]

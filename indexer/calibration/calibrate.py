@@ -96,7 +96,8 @@ def _originals(store: Store, card: dict, ids: np.ndarray, meta: dict, count: int
         if i in meta:
             by_path.setdefault(meta[i]["path"], r)
             by_path.setdefault(str(store.thumb_path(meta[i]["content_hash"])), r)
-    held = [by_path[p] for p in card.get("data", {}).get("heldout_paths", []) if p in by_path]
+    held = [by_path[q] for q in (str(store.here(p)) for p in card.get("data", {}).get("heldout_paths", []))
+            if q in by_path]
     held = list(dict.fromkeys(held))[:count]
     held_set = set(held)
     rest = [r for r in rng.permutation(len(ids)).tolist() if r not in held_set]

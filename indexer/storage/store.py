@@ -86,6 +86,17 @@ class Store:
     def thumb_path(self, digest: str) -> Path:
         return self.thumbs_dir / digest[:2] / f"{digest}.jpg"
 
+    def here(self, path: str | Path) -> Path:
+        """`path` as this store sees it: a small copy recorded while the store lived elsewhere (a model card's
+        held-out list, after the store was moved or restored from a backup) is found under this store's
+        `thumbs/` by its content hash; any other path is returned unchanged."""
+        path = Path(path)
+        digest = path.stem
+        if (path.suffix == ".jpg" and path.parent.name == digest[:2] and path.parent.parent.name == "thumbs"
+                and len(digest) == 64 and all(c in "0123456789abcdef" for c in digest)):
+            return self.thumb_path(digest)
+        return path
+
     def pixels_path(self, row) -> Path:
         """Where to read a content's pixels: its cached small copy when there is one, else its file.
 
