@@ -68,7 +68,9 @@ def heldout_recheck(store: Store, model_dir: Path, card: dict, rows: list[dict],
 
     created = _created(card)
     fresh = [store.pixels_path(r) for r in rows if (r.get("first_seen") or 0) > created]
-    baseline = [q for q in (store.here(p) for p in card.get("data", {}).get("heldout_paths", [])) if q.is_file()]
+    # As recorded (a model trained in another store reads that store's copies), else in this store (moved).
+    baseline = [q for q in (Path(p) if Path(p).is_file() else store.here(p)
+                            for p in card.get("data", {}).get("heldout_paths", [])) if q.is_file()]
     n = min(max_images, len(fresh), len(baseline))
     if n < MIN_CHECK_IMAGES:
         return {"skipped": f"{len(fresh)} new and {len(baseline)} held-out images: need {MIN_CHECK_IMAGES} of each",
