@@ -31,7 +31,7 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from benchmarks.common import machine  # noqa: E402
-from nearsight.indexer.building.build import recalibrate  # noqa: E402
+from nearsight.indexer.building.refresh import make_generation  # noqa: E402
 from nearsight.indexer.calibration.calibrate import CalibrationConfig  # noqa: E402
 from nearsight.indexer.demo import demo_pairs, pair_quality, run_demo  # noqa: E402
 from nearsight.indexer.matching.generations import require_current  # noqa: E402
@@ -76,7 +76,7 @@ def main() -> None:
     with Store.open(args.demo / "store", settings=load_settings(environ={})) as store:
         for target in TARGETS:
             started = time.monotonic()
-            recalibrate(store, CalibrationConfig(target_precision=target), keep=len(TARGETS) + 2)
+            make_generation(store, build="recalibrate", calibration=CalibrationConfig(target_precision=target))
             seconds = time.monotonic() - started
             cal = require_current(store).load_calibration()
             near = cal["tiers"]["near"]

@@ -30,7 +30,7 @@ def _recalibrated_copy(store_dir: Path) -> Path:
     """A copy of the store (beside it, named *-rescored), recalibrated by the current code."""
     import shutil
 
-    from nearsight.indexer.building.build import recalibrate
+    from nearsight.indexer.building.refresh import make_generation
     from nearsight.indexer.calibration.calibrate import CalibrationConfig
 
     copy = store_dir.with_name(store_dir.name + "-rescored")
@@ -38,7 +38,7 @@ def _recalibrated_copy(store_dir: Path) -> Path:
     shutil.copytree(store_dir, copy, symlinks=True)
     t0 = time.monotonic()
     with _store(copy, create=False) as store:
-        recalibrate(store, CalibrationConfig.from_settings(store.settings), keep=store.settings.keep_generations)
+        make_generation(store, build="recalibrate", calibration=CalibrationConfig.from_settings(store.settings))
     print(f"recalibrated a copy of {store_dir.name} in {time.monotonic() - t0:.0f} s")
     return copy
 

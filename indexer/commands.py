@@ -88,14 +88,14 @@ def cmd_index(args) -> int:
 
 
 def cmd_calibrate(args) -> int:
-    from .building.build import recalibrate
+    from .building.refresh import make_generation
     from .calibration.calibrate import CalibrationConfig
 
     with open_store(args) as store, store.lock():
         settings = store.settings
         config = CalibrationConfig.from_settings(settings, target_precision=args.target_precision,
                                                  similar_target_precision=args.similar_target_precision)
-        out = recalibrate(store, config, keep=settings.keep_generations)
+        out = make_generation(store, build="recalibrate", calibration=config)
         gen_dir = store.generations_dir / out["generation"]
         calibration = json.loads((gen_dir / "calibration.json").read_text("utf-8"))
     if args.json:

@@ -326,7 +326,7 @@ def _remake_small_copy(store: Store, digest: str) -> str:
 
 
 def _rebuild_generation(store: Store, *, embed: bool) -> list[str]:
-    from .building.build import build_generation
+    from .building.refresh import make_generation
     from .calibration.calibrate import CalibrationConfig
     from .learning.models import current_model_dir
 
@@ -344,8 +344,7 @@ def _rebuild_generation(store: Store, *, embed: bool) -> list[str]:
     # the collection too), not when it was built with --no-calibrate.
     current = store.read_pointer(generations.POINTER)
     calibrated = current is None or (store.generations_dir / current / generations.CALIBRATION_FILE).is_file()
-    built = build_generation(store, model_dir, t_near=settings.near_threshold, t_similar=settings.similar_threshold,
-                             keep=settings.keep_generations, reason="repair",
-                             calibration=CalibrationConfig.from_settings(settings) if calibrated else None)
+    built = make_generation(store, model_dir, build="full", reason="repair",
+                            calibration=CalibrationConfig.from_settings(settings) if calibrated else None)
     done.append(f"published generation {built.get('generation')} by a full build from the catalog's vectors")
     return done

@@ -245,7 +245,7 @@ def test_calibrate_command_summary_precision_flag_and_verdict_import(store_dir, 
 
 
 def test_calibration_refuses_a_store_too_small_to_measure(tmp_path):
-    from nearsight.indexer.building.build import recalibrate
+    from nearsight.indexer.building.refresh import make_generation
     from nearsight.indexer.calibration.calibrate import CalibrationConfig
 
     folder = tmp_path / "few"
@@ -256,4 +256,4 @@ def test_calibration_refuses_a_store_too_small_to_measure(tmp_path):
         summary = run_index(store, [folder], progress=False, train_config=TINY)
         assert "skipped" in summary["calibration"] and summary["thresholds"]["source"] == "default"
         with pytest.raises(NotReadyError, match="at least 20 indexed images"):
-            recalibrate(store, CalibrationConfig())
+            make_generation(store, build="recalibrate", calibration=CalibrationConfig())

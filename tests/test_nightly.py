@@ -247,6 +247,35 @@ def test_incremental_groups_equal_groups_made_from_scratch(models, tmp_path, thr
             assert regrouped["groups_kept"] > 0 and regrouped["files_regrouped"] < second["indexed"]
 
 
+def test_a_regroup_at_a_threshold_equals_grouping_every_exhaustive_pair(models, tmp_path):
+    """`groups --threshold` and the quarantine plan (verdict_groups.current_groups) start from the generation's
+    stored pairs and search only below them. Above and below the generation's similar threshold, the groups
+    equal complete linkage over every pair that exhaustive NumPy search finds at the asked threshold."""
+    from nearsight.indexer.building.verdict_groups import current_groups
+
+    photos, scans = _first_collection(tmp_path)
+    store_dir = _store_with_model(models, tmp_path / "store")
+    with _open(store_dir, near_threshold=0.45, similar_threshold=0.35) as store:
+        run_index(store, [photos, scans], progress=False, calibrate=False)
+        gen = generations.current(store)
+        ids, xb = load_vectors(store, gen.meta["model"])
+        xb = gen.load_whitening().apply(xb)
+        a, b, _ = gen.load_pairs()
+        assert set(zip(a.tolist(), b.tolist())) == _exhaustive_pairs(xb, ids, 0.35)  # no verified pair beyond them
+        row = {int(i): n for n, i in enumerate(ids)}
+        for t in (0.4, 0.3):  # above the stored pairs' floor, and below it (searched)
+            pairs = sorted(_exhaustive_pairs(xb, ids, t))
+            assert len(pairs) >= 8
+            ea = np.array([p[0] for p in pairs], np.int64)
+            eb = np.array([p[1] for p in pairs], np.int64)
+            es = np.einsum("ij,ij->i", xb[[row[i] for i in ea]], xb[[row[i] for i in eb]])
+            scratch = build_groups(ea, eb, es, store.catalog.image_meta(ids.tolist()), t_near=t, t_similar=t,
+                                   vectors=lambda sub: xb[[row[int(i)] for i in sub]])
+            got = current_groups(store, threshold=t).groups
+            assert [(g.keeper, sorted(m.id for m in g.members)) for g in got] == \
+                [(g.keeper, sorted(m.id for m in g.members)) for g in scratch]
+
+
 def test_a_run_with_nothing_changed_publishes_without_rebuilding(models, tmp_path):
     photos, scans = _first_collection(tmp_path)
     store_dir = _store_with_model(models, tmp_path / "store")

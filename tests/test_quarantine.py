@@ -519,7 +519,7 @@ def _skimage(name: str) -> Image.Image:
 def _force_vectors(store: Store, copies: dict[Path, Path]) -> None:
     """Give each file the stored vector of another, as an encoder fooled by a look-alike would, and
     publish a generation grouped from those vectors (cosine 1.0, above any duplicate threshold)."""
-    from nearsight.indexer.building.build import build_generation
+    from nearsight.indexer.building.refresh import make_generation
 
     model = generations.current(store).meta["model"]
     ids = {p: store.catalog.file_id_for_path(p) for pair in copies.items() for p in pair}
@@ -527,8 +527,7 @@ def _force_vectors(store: Store, copies: dict[Path, Path]) -> None:
     stored = store.catalog.file_vectors(ids.values(), model)
     store.catalog.put_vectors(model, [contents[ids[copy]] for copy in copies],
                               [stored[ids[original]] for original in copies.values()])
-    build_generation(store, store.models_dir / model, t_near=EXACT["near_threshold"],
-                     t_similar=EXACT["similar_threshold"])
+    make_generation(store, store.models_dir / model, build="full")  # the store's settings are EXACT
 
 
 def test_look_alike_textures_stay_and_a_verified_crop_moves(tmp_path, trained_models):

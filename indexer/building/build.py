@@ -1,9 +1,10 @@
 """Build and publish a generation from scratch: the index over every embedded file, and its groups.
 
-`build_generation` is the full build (whitening fitted, index built and tuned,
-calibration, every pair, every group); `refresh.py` updates a previous generation
-instead when that is cheaper, and shares the calibration, grouping and publishing
-steps defined here.
+`full_build` is the full build (whitening fitted, index built and tuned, calibration,
+every pair, every group) and `recalibrated` the current generation calibrated again;
+each returns a `publish.Built` that `refresh.make_generation`, the one entry, publishes.
+`refresh.py` updates a previous generation instead when that is cheaper, and shares the
+calibration (`calibrate_thresholds`) and grouping (`regroup`) steps defined here.
 """
 
 from __future__ import annotations
@@ -12,6 +13,8 @@ import hashlib
 import json
 import logging
 import time
+from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
@@ -22,13 +25,13 @@ from ..learning.model import read_card
 from ..matching import generations
 from ..matching import index as faiss_index
 from ..matching.fusion import fit_classic_weight
-from ..matching.groups import build_groups, summarize
+from ..matching.groups import build_groups
 from ..matching.index_spec import choose_spec
 from ..matching.regions import regions_extra, regions_for_generation
 from ..matching.whiten import fit_whitening
 from ..reading.images import read_image
 from ..storage.store import Store
-from .publish import npz_bytes, publish
+from .publish import Built
 
 log = logging.getLogger(__name__)
 
@@ -47,11 +50,18 @@ def load_vectors(store: Store, model: str) -> tuple[np.ndarray, np.ndarray]:
     return np.concatenate(ids_blocks), np.ascontiguousarray(np.concatenate(xb_blocks))
 
 
-def whitened_vectors(store: Store, model: str, whitening) -> tuple[np.ndarray, np.ndarray]:
-    """(ids, xb) of `load_vectors` in a generation's descriptor space (`whitening`, whiten.Whitening): the one
-    way every stage that searches or groups gets a generation's vectors."""
-    ids, xb = load_vectors(store, model)
-    return ids, (whitening.apply(xb) if len(ids) else xb)
+def whitened_vectors(store: Store, model: str, whitening, ids: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """(ids, xb) in a generation's descriptor space (`whitening`, whiten.Whitening): every present readable
+    file embedded under `model` (`load_vectors`), or the files `ids` in that order. The one way every stage
+    that searches or groups gets a generation's vectors."""
+    if ids is None:
+        ids, xb = load_vectors(store, model)
+        return ids, (whitening.apply(xb) if len(ids) else xb)
+    ids = np.asarray(ids, np.int64)
+    if len(ids) == 0:
+        return ids, np.zeros((0, 0), np.float32)  # no row to say the width from: callers that search pass index.d
+    stored = store.catalog.file_vectors(ids.tolist(), model)
+    return ids, whitening.apply(np.stack([stored[int(i)] for i in ids]))
 
 
 def pixel_hash(path: str) -> str:
@@ -134,10 +144,45 @@ def groups_from_pairs(store: Store, ids: np.ndarray, xb: np.ndarray, a, b, sims,
     return build_groups(a, b, sims, meta, t_near=t_near, t_similar=t_similar, vectors=vectors)
 
 
-def compute_groups(store: Store, index, ids: np.ndarray, xb: np.ndarray, *, t_near: float, t_similar: float) -> list:
-    """Candidate pairs from FAISS range search above the looser threshold, then groups that do not chain."""
-    a, b, sims = compute_pairs(index, ids, xb, t_similar)
-    return groups_from_pairs(store, ids, xb, a, b, sims, t_near=t_near, t_similar=t_similar)
+@dataclass
+class Space:
+    """A generation's descriptor space as a build sees it: the FAISS `index` over the files `ids`, their
+    whitened vectors `xb` (row i is file ids[i]), the `whitening` that made them and the region index
+    (matching/regions.py: (index, grid))."""
+
+    index: Any
+    ids: np.ndarray
+    xb: np.ndarray
+    whitening: Any
+    regions: tuple = (None, 0)
+
+
+def regroup(store: Store, space: Space, thresholds: dict, *, known: tuple | None = None) -> tuple[tuple, list]:
+    """Every pair at or above the similar threshold, joined by the verified pairs, and the groups that do not
+    chain: ((a, b, sims), groups). The one regroup of the full build, a recalibration, an incremental build
+    whose thresholds moved, and `groups`/quarantine at a threshold of the user's (verdict_groups.current_groups).
+
+    `known` = (a, b, sims, floor): a published generation's pairs, every pair at or above `floor` with its
+    verified pairs among them. They are taken instead of verifying every file's neighbours again (seconds
+    per thousand files), and only the pairs below `floor`, when the threshold asks for them, are searched."""
+    if len(space.ids) == 0:
+        empty = (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0, np.float32))
+        return empty, []
+    t = thresholds["similar"]
+    if known is None:
+        pairs = with_verified_pairs(store, space.index, space.ids, space.xb,
+                                    compute_pairs(space.index, space.ids, space.xb, t), thresholds)
+    else:
+        a, b, sims, floor = known
+        keep = (sims >= t) & np.isin(a, space.ids) & np.isin(b, space.ids)  # files quarantined since: out
+        pairs = (a[keep], b[keep], sims[keep].astype(np.float32))
+        if t < floor:
+            more = compute_pairs(space.index, space.ids, space.xb, t)
+            pairs = faiss_index.canonical_pairs(np.r_[pairs[0], more[0]], np.r_[pairs[1], more[1]],
+                                                np.r_[pairs[2], more[2]].astype(np.float32))
+    groups = groups_from_pairs(store, space.ids, space.xb, *pairs, t_near=thresholds["near"],
+                               t_similar=thresholds["similar"], verify_floor=verify_floor_of(thresholds))
+    return pairs, groups
 
 
 def indexed_items(store: Store, index) -> tuple[np.ndarray, np.ndarray]:
@@ -147,17 +192,73 @@ def indexed_items(store: Store, index) -> tuple[np.ndarray, np.ndarray]:
     return ids, np.array([contents.get(int(i), -1) for i in ids], np.int64)
 
 
-def build_generation(store: Store, model_dir, *, t_near: float, t_similar: float, index_spec: str | None = None,
-                     keep: int = 3, threshold_source: str = "default", calibration=None,
-                     reason: str = "full build") -> dict:
-    """Index every embedded file, calibrate (when `calibration` is a CalibrationConfig), group, publish."""
+@dataclass
+class Calibrated:
+    """What `calibrate_thresholds` decided: the thresholds, the generation's calibration record
+    (meta["calibration"]; None when no calibration was asked for), its files and the seconds it took."""
+
+    thresholds: dict
+    record: dict | None = None
+    files: dict[str, bytes] = field(default_factory=dict)
+    seconds: float | None = None
+
+    def into(self, built: Built, indexed: int) -> None:
+        """Record the outcome in `built`: thresholds, files, meta["calibration"] and, when a calibration
+        ran, the nightly reuse rule's starting point (build.since_calibration)."""
+        built.thresholds = self.thresholds
+        built.files.update(self.files)
+        if self.record is not None:
+            built.meta["calibration"] = self.record
+            built.meta.setdefault("build", {})["since_calibration"] = {"indexed": int(indexed), "changes": 0}
+        if self.seconds is not None:
+            built.stages["calibrate"] = self.seconds
+
+
+def calibrate_thresholds(store: Store, model_dir, space: Space, *, fallback: dict, calibration,
+                         required: bool = False) -> Calibrated:
+    """The generation's thresholds: calibrated when `calibration` (a CalibrationConfig) is given and the
+    collection allows, else `fallback` ({"near", "similar", "source"}). A collection that cannot be
+    calibrated keeps the fallback with the reason recorded, unless `required` (then NotReadyError)."""
+    if calibration is None:
+        return Calibrated(dict(fallback))
+    from ..calibration.calibrate import calibrate
+    from ..calibration.calibration_report import plot_png
+
+    started = time.monotonic()
+    try:
+        result = calibrate(store, model_dir=model_dir, index=space.index, ids=space.ids, xb=space.xb,
+                           whitening=space.whitening, config=calibration, regions=space.regions)
+    except NotReadyError as exc:
+        if required:
+            raise
+        log.warning("not calibrated: %s", exc)
+        return Calibrated(dict(fallback), {"skipped": str(exc)}, seconds=round(time.monotonic() - started, 3))
+    thresholds = {"near": result["tiers"]["near"]["threshold"], "similar": result["tiers"]["similar"]["threshold"],
+                  "source": "calibrated",
+                  "verify_floor": result["negatives"]["floor"]}  # where verified neighbours count (pair_verify.py)
+    files = {generations.CALIBRATION_FILE: json.dumps(result, sort_keys=True).encode(),
+             "calibration.png": plot_png(result),
+             "calibration.txt": ("\n".join(result["summary"]["lines"]) + "\n").encode()}
+    return Calibrated(thresholds, {"summary": result["summary"]["headline"]}, files,
+                      round(time.monotonic() - started, 3))
+
+
+def default_thresholds(settings) -> dict:
+    """The settings' thresholds, for a generation built without calibration."""
+    return {"near": settings.near_threshold, "similar": settings.similar_threshold, "source": "default"}
+
+
+def full_build(store: Store, model_dir, *, index_spec: str | None = None, calibration=None,
+               reason: str = "full build") -> Built | None:
+    """Index every embedded file, calibrate (when `calibration` is a CalibrationConfig) and group; None when
+    nothing is embedded."""
     card = read_card(model_dir)
     model = card["version"]
     started = time.monotonic()
     ids, xb = load_vectors(store, model)
     if len(ids) == 0:
         log.warning("nothing to index: no embedded readable files")
-        return {"generation": None, "indexed": 0}
+        return None
     # The classical part's weight is fitted with the calibration (both adapt scoring to this collection);
     # `--no-calibrate` keeps the default.
     fusion = fit_classic_weight(store, model_dir, ids, xb) if calibration is not None else None
@@ -168,11 +269,9 @@ def build_generation(store: Store, model_dir, *, t_near: float, t_similar: float
     rng = np.random.default_rng(0)
     sample = xb[rng.choice(len(xb), min(TUNE_QUERIES, len(xb)), replace=False)]
     tuning = faiss_index.tune_search(index, sample, xb=xb, ids=ids)
-    regions = regions_for_generation(store, model, whitening)
-    stages = {"index": round(time.monotonic() - started, 3)}
-    pause_at("index")
+    space = Space(index, ids, xb, whitening, regions_for_generation(store, model, whitening))
     n = int(len(ids))
-    meta = {
+    built = Built("full", index=index, thresholds={}, items=indexed_items(store, index), meta={
         "model": model,
         "indexed": n,
         "dim": int(xb.shape[1]),
@@ -182,101 +281,39 @@ def build_generation(store: Store, model_dir, *, t_near: float, t_similar: float
         "index_spec": index_spec or choose_spec(len(ids), xb.shape[1]),
         "search_params": tuning["params"],
         "recall_at_10": tuning["recall"],
-        "build": {"kind": "full", "reason": reason, "since_full": {"indexed": n, "changes": 0}},
-    }
-    thresholds, extra = calibrate_thresholds(store, model_dir, index, ids, xb, whitening, meta, stages,
-                                             t_near=t_near, t_similar=t_similar, threshold_source=threshold_source,
-                                             calibration=calibration, regions=regions)
-    extra[generations.WHITENING_FILE] = whitening.to_bytes()
-    regions_extra(*regions, meta, extra)
+        "build": {"reason": reason, "since_full": {"indexed": n, "changes": 0}},
+    }, files={generations.WHITENING_FILE: whitening.to_bytes()}, stages={"index": round(time.monotonic() - started, 3)})
+    pause_at("index")
+    calibrate_thresholds(store, model_dir, space, fallback=default_thresholds(store.settings),
+                         calibration=calibration).into(built, n)
+    regions_extra(*space.regions, built.meta, built.files)
     started = time.monotonic()
-    a, b, sims = with_verified_pairs(store, index, ids, xb, compute_pairs(index, ids, xb, thresholds["similar"]),
-                                     thresholds)
-    groups = groups_from_pairs(store, ids, xb, a, b, sims, t_near=thresholds["near"], t_similar=thresholds["similar"],
-                               verify_floor=verify_floor_of(thresholds))
-    stages["groups"] = round(time.monotonic() - started, 3)
-    return publish_generation(store, index, meta, thresholds, groups, items=indexed_items(store, index),
-                              pairs=(a, b, sims), extra=extra, stages=stages, keep=keep)
+    built.pairs, built.groups = regroup(store, space, built.thresholds)
+    built.stages["groups"] = round(time.monotonic() - started, 3)
+    return built
 
 
-def calibrate_thresholds(store, model_dir, index, ids, xb, whitening, meta, stages, *, t_near, t_similar,
-                         threshold_source, calibration, required: bool = False, regions=(None, 0)) -> tuple[dict, dict]:
-    """The generation's thresholds: calibrated when `calibration` is given and the collection allows,
-    else those given. Returns (thresholds, calibration files for the generation); records the outcome
-    in `meta` (``calibration``, and ``build.since_calibration`` for the nightly reuse rule)."""
-    extra: dict[str, bytes] = {}
-    verify_floor = None
-    if calibration is not None:
-        from ..calibration.calibrate import calibrate
-        from ..calibration.calibration_report import plot_png
-
-        started = time.monotonic()
-        meta.setdefault("build", {})["since_calibration"] = {"indexed": int(len(ids)), "changes": 0}
-        try:
-            result = calibrate(store, model_dir=model_dir, index=index, ids=ids, xb=xb, whitening=whitening,
-                               config=calibration, regions=regions)
-        except NotReadyError as exc:
-            if required:
-                raise
-            log.warning("not calibrated: %s", exc)
-            meta["calibration"] = {"skipped": str(exc)}
-        else:
-            t_near, t_similar = result["tiers"]["near"]["threshold"], result["tiers"]["similar"]["threshold"]
-            verify_floor = result["negatives"]["floor"]
-            threshold_source = "calibrated"
-            meta["calibration"] = {"summary": result["summary"]["headline"]}
-            extra[generations.CALIBRATION_FILE] = json.dumps(result, sort_keys=True).encode()
-            extra["calibration.png"] = plot_png(result)
-            extra["calibration.txt"] = ("\n".join(result["summary"]["lines"]) + "\n").encode()
-        stages["calibrate"] = round(time.monotonic() - started, 3)
-    thresholds = {"near": t_near, "similar": t_similar, "source": threshold_source}
-    if verify_floor is not None:  # where verified neighbours start to count (pair_verify.py)
-        thresholds["verify_floor"] = verify_floor
-    return thresholds, extra
-
-
-def publish_generation(store: Store, index, meta: dict, thresholds: dict, groups: list, *, items, pairs,
-                       extra: dict, stages: dict, keep: int, links: dict | None = None) -> dict:
-    """Publish the generation with its groups, item list and pairs; the run summary's part."""
-    started = time.monotonic()
-    group_summary = summarize(groups)
-    meta = {**meta, "thresholds": thresholds, "groups": group_summary}
-    extra = {**extra,
-             generations.ITEMS_FILE: npz_bytes(ids=items[0], contents=items[1]),
-             generations.PAIRS_FILE: npz_bytes(a=pairs[0], b=pairs[1], sims=pairs[2])}
-    gen = publish(store, index, meta, {"summary": group_summary, "groups": [g.to_dict() for g in groups]},
-                              keep=keep, extra=extra, links=links)
-    stages["publish"] = round(time.monotonic() - started, 3)
-    return {"generation": gen.name, "indexed": int(meta["indexed"]), "groups": group_summary,
-            "thresholds": thresholds, "calibration": meta.get("calibration"), "build": meta.get("build"),
-            "stages": stages}
-
-
-def recalibrate(store: Store, config, *, keep: int = 3) -> dict:
-    """Calibrate the current generation's index and publish it again with the calibrated thresholds and groups."""
+def recalibrated(store: Store, config) -> Built:
+    """The current generation calibrated again (with `config`, a CalibrationConfig), its groups made anew at
+    the calibrated thresholds; its index, whitening and regions shared by hard links."""
     gen = generations.require_current(store)
     model_dir = store.models_dir / gen.meta["model"]
     index = gen.load_index()
     whitening = gen.load_whitening()
     ids, xb = whitened_vectors(store, gen.meta["model"], whitening)
     indexed = np.isin(ids, faiss_index.stored_ids(index))
-    ids, xb = ids[indexed], xb[indexed]
+    space = Space(index, ids[indexed], xb[indexed], whitening, gen.load_regions())
     meta = {k: v for k, v in gen.meta.items()
             if k not in ("thresholds", "groups", "calibration", "generation", "published_at")}
-    meta["indexed"] = int(len(ids))
-    meta["calibrated_from"] = gen.name
-    meta["build"] = {**gen.meta.get("build", {}), "kind": "recalibrated", "reason": "nearsight calibrate"}
-    stages: dict = {}
-    regions = gen.load_regions()
-    thresholds, extra = calibrate_thresholds(
-        store, model_dir, index, ids, xb, whitening, meta, stages, t_near=gen.meta["thresholds"]["near"],
-        t_similar=gen.meta["thresholds"]["similar"], threshold_source=gen.meta["thresholds"].get("source", "default"),
-        calibration=config, required=True, regions=regions)
-    extra[generations.WHITENING_FILE] = whitening.to_bytes()
-    regions_extra(*regions, meta, extra)
-    a, b, sims = with_verified_pairs(store, index, ids, xb, compute_pairs(index, ids, xb, thresholds["similar"]),
-                                     thresholds)
-    groups = groups_from_pairs(store, ids, xb, a, b, sims, t_near=thresholds["near"], t_similar=thresholds["similar"],
-                               verify_floor=verify_floor_of(thresholds))
-    return publish_generation(store, index, meta, thresholds, groups, items=indexed_items(store, index),
-                              pairs=(a, b, sims), extra=extra, stages=stages, keep=keep)
+    meta.update(indexed=int(len(space.ids)), calibrated_from=gen.name,
+                build={**gen.meta.get("build", {}), "reason": "nearsight calibrate"})
+    built = Built("recalibrated", meta, {}, index=index, items=indexed_items(store, index),
+                  files={generations.WHITENING_FILE: whitening.to_bytes()})
+    fallback = {**gen.meta["thresholds"], "source": gen.meta["thresholds"].get("source", "default")}
+    calibrate_thresholds(store, model_dir, space, fallback=fallback, calibration=config,
+                         required=True).into(built, len(space.ids))
+    regions_extra(*space.regions, built.meta, built.files)
+    started = time.monotonic()
+    built.pairs, built.groups = regroup(store, space, built.thresholds)
+    built.stages["groups"] = round(time.monotonic() - started, 3)
+    return built

@@ -119,7 +119,7 @@ def _build(store: Store, stages: dict, progress, train_config, index_spec, calib
     from ..learning.train import TrainConfig
     from ..matching.regions import embed_missing_regions
     from ..matching.vectors import embed_missing
-    from .refresh import group_changes, refresh_generation
+    from .refresh import group_changes, make_generation
 
     settings = store.settings
     out: dict = {}
@@ -150,10 +150,8 @@ def _build(store: Store, stages: dict, progress, train_config, index_spec, calib
     out.update(model=embedded["model"], embedded=embedded["embedded"], embed_failed=len(embedded["embed_failed"]))
     prev = generations.current(store)
     before = prev.load_groups()["groups"] if prev is not None else []
-    built = refresh_generation(
-        store, model_dir, settings=settings, index_spec=index_spec,
-        calibration=CalibrationConfig.from_settings(settings) if calibrate else None,
-    )
+    built = make_generation(store, model_dir, index_spec=index_spec,
+                            calibration=CalibrationConfig.from_settings(settings) if calibrate else None)
     stages.update(built.pop("stages", {}))
     out.update(built)
     if built.get("generation"):

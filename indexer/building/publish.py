@@ -16,15 +16,26 @@ import logging
 import os
 import shutil
 import time
+from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from ..core.errors import StoreError
 from ..core.fsutil import atomic_write_bytes, atomic_write_text, fsync_dir
 from ..core.pause import pause_at
-from ..matching.generations import CHECKSUMS_FILE, GROUPS_FILE, INDEX_FILE, META_FILE, POINTER, Generation
+from ..matching.generations import (
+    CHECKSUMS_FILE,
+    GROUPS_FILE,
+    INDEX_FILE,
+    ITEMS_FILE,
+    META_FILE,
+    PAIRS_FILE,
+    POINTER,
+    Generation,
+)
+from ..matching.groups import summarize
 from ..storage.store import Store
 
 if TYPE_CHECKING:
@@ -113,6 +124,43 @@ def publish(store: Store, index: faiss.Index | None, meta: dict, groups: dict | 
     log.info("published generation %s (%s vectors)", name, meta.get("indexed", "?"))
     prune(store, keep)
     return Generation(name, root / name, meta)
+
+
+@dataclass
+class Built:
+    """A generation made and not yet published: what every kind of build returns (full, incremental,
+    unchanged, recalibrated; indexer/building/refresh.py says which runs when), and `publish_built` the one
+    place that writes it. `groups` None means nothing was regrouped: every file comes from `links` (the
+    previous generation's, shared by hard links) and `meta` already holds the thresholds and groups summary."""
+
+    kind: str
+    meta: dict
+    thresholds: dict
+    index: Any = None                                  # a FAISS index, or None to link the previous one
+    groups: list | None = None                         # matching.groups.Group
+    pairs: tuple | None = None                         # (a, b, sims) at or above the similar threshold
+    items: tuple | None = None                         # (file ids, content ids) the index holds
+    files: dict[str, bytes] = field(default_factory=dict)  # calibration, whitening, regions ...
+    links: dict[str, Path] = field(default_factory=dict)   # file name -> an earlier generation's file
+    stages: dict[str, float] = field(default_factory=dict)  # seconds per stage, for the run summary
+
+
+def publish_built(store: Store, built: Built, *, keep: int) -> dict:
+    """Publish `built` and return the run summary's part: the one way a generation reaches the store."""
+    started = time.monotonic()
+    meta, files, groups = dict(built.meta), dict(built.files), None
+    meta["build"] = {**meta.get("build", {}), "kind": built.kind}
+    if built.groups is not None:
+        summary = summarize(built.groups)
+        meta.update(thresholds=built.thresholds, groups=summary)
+        groups = {"summary": summary, "groups": [g.to_dict() for g in built.groups]}
+        files[ITEMS_FILE] = npz_bytes(ids=built.items[0], contents=built.items[1])
+        files[PAIRS_FILE] = npz_bytes(a=built.pairs[0], b=built.pairs[1], sims=built.pairs[2])
+    gen = publish(store, built.index, meta, groups, keep=keep, extra=files, links=built.links)
+    stages = {**built.stages, "publish": round(time.monotonic() - started, 3)}
+    return {"generation": gen.name, "indexed": int(meta["indexed"]), "groups": meta["groups"],
+            "thresholds": meta["thresholds"], "calibration": meta.get("calibration"), "build": meta["build"],
+            "stages": stages}
 
 
 def remove_incomplete(store: Store) -> int:

@@ -5,7 +5,7 @@ The previous generation stores the file ids it indexed with their content ids
 the catalog's present readable files they give *added* ids, *removed* ids and *replaced*
 ids (same file, new bytes). Then one of three builds:
 
-* **full** (`build.build_generation`): no previous generation or one without those
+* **full** (`build.full_build`): no previous generation or one without those
   files; another model; another index spec (given, or chosen for the new size); an
   HNSW index that would have to drop vectors (it cannot); or more files added, removed
   or replaced since the last full build than ``rebuild_fraction`` of the collection at
@@ -23,6 +23,10 @@ ids (same file, new bytes). Then one of three builds:
 The calibration is reused (same model, thresholds kept) until the changes since it
 exceed ``recalibrate_change`` of the collection it measured; then it is run again, and
 new thresholds regroup everything.
+
+`make_generation` is the one entry: it chooses the build (or takes the one asked for: a full
+rebuild, or a recalibration of the current generation by `nearsight calibrate`), each kind
+returns a `publish.Built`, and `publish.publish_built` writes it.
 """
 
 from __future__ import annotations
@@ -44,16 +48,18 @@ from ..matching.index_spec import choose_spec
 from ..matching.regions import regions_extra, regions_for_generation
 from ..storage.store import Store
 from .build import (
-    build_generation,
+    Space,
     calibrate_thresholds,
-    compute_pairs,
+    default_thresholds,
+    full_build,
     groups_from_pairs,
-    publish_generation,
+    recalibrated,
+    regroup,
     verify_floor_of,
     whitened_vectors,
     with_verified_pairs,
 )
-from .publish import publish
+from .publish import Built, publish_built
 
 log = logging.getLogger(__name__)
 
@@ -139,8 +145,7 @@ def _calibration_plan(prev, change: Change, calibration, settings) -> tuple[str,
 
 
 def _whitened(store: Store, ids: np.ndarray, model: str, whitening) -> np.ndarray:
-    stored = store.catalog.file_vectors(ids.tolist(), model)
-    return whitening.apply(np.stack([stored[int(i)] for i in ids]))
+    return whitened_vectors(store, model, whitening, ids)[1]
 
 
 def pairs_of(store: Store, index, q_ids: np.ndarray, xq: np.ndarray, t: float, model: str, whitening):
@@ -206,24 +211,17 @@ def regroup_touched(store: Store, prev, index, whitening, model: str, change: Ch
     return (a, b, sims), groups, {"files_regrouped": int(len(touched)), "groups_kept": len(kept)}
 
 
-def _unchanged(store: Store, prev, settings, stages: dict) -> dict:
+def _unchanged(prev) -> Built:
     """A new generation that is the previous one: every file shared by a hard link."""
-    started = time.monotonic()
     meta = {k: v for k, v in prev.meta.items() if k not in ("generation", "published_at")}
-    meta["build"] = {**prev.meta.get("build", {}), "kind": "unchanged", "reason": "nothing changed",
-                     "from": prev.name}
+    meta["build"] = {**prev.meta.get("build", {}), "reason": "nothing changed", "from": prev.name}
     links = {p.name: p for p in prev.path.iterdir() if p.is_file() and p.name != generations.META_FILE}
-    gen = publish(store, None, meta, None, keep=settings.keep_generations, links=links)
-    stages["publish"] = round(time.monotonic() - started, 3)
-    return {"generation": gen.name, "indexed": int(meta["indexed"]), "groups": meta["groups"],
-            "thresholds": meta["thresholds"], "calibration": meta.get("calibration"), "build": meta["build"],
-            "stages": stages}
+    return Built("unchanged", meta, dict(meta["thresholds"]), links=links)
 
 
-def _update(store: Store, prev, model_dir, change: Change, reason: str, *, settings, calibration) -> dict:
+def _update(store: Store, prev, model_dir, change: Change, reason: str, *, settings, calibration) -> Built:
     """The incremental build (module docstring)."""
     model = prev.meta["model"]
-    stages: dict = {}
     started = time.monotonic()
     whitening = prev.load_whitening()
     index = prev.load_index()
@@ -233,84 +231,101 @@ def _update(store: Store, prev, model_dir, change: Change, reason: str, *, setti
         faiss_index.add(index, _whitened(store, fresh, model, whitening), fresh)
     regions = regions_for_generation(store, model, whitening, prev=prev,
                                      removed=np.union1d(change.removed, change.replaced), added=fresh)
-    stages["index"] = round(time.monotonic() - started, 3)
-    pause_at("index")
     since_full = prev.meta.get("build", {}).get("since_full", {"indexed": prev.meta["indexed"], "changes": 0})
     meta = {k: v for k, v in prev.meta.items() if k not in DROPPED_META}
     meta.update(indexed=int(len(change.ids)), build={
-        "kind": "incremental", "reason": reason, "from": prev.name, "change": change.to_dict(),
+        "reason": reason, "from": prev.name, "change": change.to_dict(),
         "since_full": {"indexed": since_full["indexed"], "changes": since_full["changes"] + change.count}})
+    built = Built("incremental", meta, {}, index=index, items=(change.ids, change.contents),
+                  links={generations.WHITENING_FILE: prev.path / generations.WHITENING_FILE},
+                  stages={"index": round(time.monotonic() - started, 3)})
+    pause_at("index")
     plan, since_calibration = _calibration_plan(prev, change, calibration, settings)
-    links: dict = {}
     if plan == "reuse":
-        thresholds, extra = _kept_thresholds(prev, settings), {}
+        built.thresholds = _kept_thresholds(prev, settings)
         meta["calibration"] = {**prev.meta["calibration"], "reused_from": prev.name}
         meta["build"]["since_calibration"] = since_calibration
-        links = {f: prev.path / f for f in (generations.CALIBRATION_FILE, *generations.CALIBRATION_EXTRAS)
-                 if (prev.path / f).is_file()}
+        built.links.update({f: prev.path / f for f in (generations.CALIBRATION_FILE, *generations.CALIBRATION_EXTRAS)
+                            if (prev.path / f).is_file()})
         log.info("calibration of generation %s reused: %s", prev.name,
                  prev.meta["calibration"].get("summary") or "no summary recorded")
     else:
-        ids = xb = None
-        if plan == "calibrate":
-            ids, xb = whitened_vectors(store, model, whitening)
-        thresholds, extra = calibrate_thresholds(
-            store, model_dir, index, ids, xb, whitening, meta, stages, t_near=settings.near_threshold,
-            t_similar=settings.similar_threshold, threshold_source="default",
-            calibration=calibration if plan == "calibrate" else None, regions=regions)
-    links[generations.WHITENING_FILE] = prev.path / generations.WHITENING_FILE
-    regions_extra(*regions, meta, extra)
+        ids, xb = whitened_vectors(store, model, whitening) if plan == "calibrate" else (None, None)
+        calibrate_thresholds(store, model_dir, Space(index, ids, xb, whitening, regions),
+                             fallback=default_thresholds(settings),
+                             calibration=calibration if plan == "calibrate" else None).into(built, len(change.ids))
+    regions_extra(*regions, meta, built.files)
     started = time.monotonic()
-    same = all(thresholds[k] == prev.meta["thresholds"][k] for k in ("near", "similar"))
-    if same:
-        pairs, groups, regrouped = regroup_touched(store, prev, index, whitening, model, change, thresholds)
+    if all(built.thresholds[k] == prev.meta["thresholds"][k] for k in ("near", "similar")):
+        built.pairs, built.groups, regrouped = regroup_touched(store, prev, index, whitening, model, change,
+                                                               built.thresholds)
     else:  # other thresholds: every pair and group anew, in the same space
         ids, xb = whitened_vectors(store, model, whitening)
-        pairs = with_verified_pairs(store, index, ids, xb, compute_pairs(index, ids, xb, thresholds["similar"]),
-                                    thresholds)
-        groups = groups_from_pairs(store, ids, xb, *pairs, t_near=thresholds["near"], t_similar=thresholds["similar"],
-                                   verify_floor=verify_floor_of(thresholds))
+        built.pairs, built.groups = regroup(store, Space(index, ids, xb, whitening), built.thresholds)
         regrouped = {"files_regrouped": int(len(ids)), "groups_kept": 0}
     meta["build"]["regrouped"] = regrouped
-    stages["groups"] = round(time.monotonic() - started, 3)
-    return publish_generation(store, index, meta, thresholds, groups, items=(change.ids, change.contents),
-                              pairs=pairs, extra=extra, stages=stages, keep=settings.keep_generations, links=links)
+    built.stages["groups"] = round(time.monotonic() - started, 3)
+    return built
 
 
-def refresh_generation(store: Store, model_dir, *, settings, index_spec: str | None = None, calibration=None) -> dict:
-    """The generation for the catalog as it is now: full, incremental or unchanged (module docstring)."""
+BUILDS = ("auto", "full", "recalibrate")
+
+
+def make_generation(store: Store, model_dir=None, *, build: str = "auto", index_spec: str | None = None,
+                    calibration=None, reason: str | None = None) -> dict:
+    """Make the store's next generation and publish it; returns the run summary's part (`publish_built`).
+
+    `build`: "auto" chooses full, incremental or unchanged for the catalog as it is now (module docstring);
+    "full" rebuilds from every vector (a repair); "recalibrate" calibrates the current generation again with
+    `calibration` and regroups. `model_dir` defaults to the store's current model; `calibration` (a
+    CalibrationConfig) or None for the settings' thresholds. Returns {"generation": None, "indexed": 0}
+    when nothing is embedded yet."""
+    from ..learning.models import require_model_dir
+
+    if build not in BUILDS:
+        raise ValueError(f"build must be one of {', '.join(BUILDS)}, not {build!r}")
+    settings = store.settings
+    if build == "recalibrate":
+        built = recalibrated(store, calibration)
+    else:
+        model_dir = model_dir or require_model_dir(store)
+        built = _chosen(store, model_dir, settings, index_spec, calibration, reason) if build == "auto" else \
+            full_build(store, model_dir, index_spec=index_spec, calibration=calibration, reason=reason or "full build")
+    if built is None:
+        return {"generation": None, "indexed": 0}
+    return publish_built(store, built, keep=settings.keep_generations)
+
+
+def _chosen(store: Store, model_dir, settings, index_spec, calibration, reason) -> Built | None:
+    """The build the module docstring's rule chooses for the catalog as it is now."""
     model = read_card(model_dir)["version"]
     prev = generations.current(store)
     ids, contents = store.catalog.indexable_items(model)
     if len(ids) == 0:
         log.warning("nothing to index: no embedded readable files")
-        return {"generation": None, "indexed": 0}
+        return None
     items = prev.load_items() if prev is not None else None
     change = diff_items(*items, ids, contents) if items is not None else None
     dim = int(prev.meta.get("dim", 0)) if prev is not None else 0
-    kind, reason = choose_build(prev, change, model, index_spec, dim or 1, settings.rebuild_fraction)
-    log.info("%s build: %s", kind, reason)
+    kind, why = choose_build(prev, change, model, index_spec, dim or 1, settings.rebuild_fraction)
+    log.info("%s build: %s", kind, why)
     if kind == "full":
-        built = build_generation(store, model_dir, t_near=settings.near_threshold,
-                                 t_similar=settings.similar_threshold, index_spec=index_spec,
-                                 keep=settings.keep_generations, calibration=calibration, reason=reason)
-        if change is not None:
-            built["build"]["change"] = change.to_dict()
+        built = full_build(store, model_dir, index_spec=index_spec, calibration=calibration, reason=reason or why)
+        if built is not None and change is not None:
+            built.meta["build"]["change"] = change.to_dict()
         return built
     if change.count == 0 and _calibration_plan(prev, change, calibration, settings)[0] != "calibrate" \
             and not _stale_groups(store, prev.load_groups()["groups"]) \
             and _thresholds_kept(prev, calibration, settings) \
             and int((prev.meta.get("regions") or {}).get("grid", 0)) == int(settings.region_grid):
-        return _unchanged(store, prev, settings, {})
-    return _update(store, prev, model_dir, change, reason, settings=settings, calibration=calibration)
+        return _unchanged(prev)
+    return _update(store, prev, model_dir, change, reason or why, settings=settings, calibration=calibration)
 
 
 def _kept_thresholds(prev, settings) -> dict:
     """The thresholds while a calibration is reused: its own, or the settings' if it was skipped."""
     t = prev.meta["thresholds"]
-    if t.get("source") == "calibrated":
-        return dict(t)
-    return {"near": settings.near_threshold, "similar": settings.similar_threshold, "source": "default"}
+    return dict(t) if t.get("source") == "calibrated" else default_thresholds(settings)
 
 
 def _thresholds_kept(prev, calibration, settings) -> bool:

@@ -295,11 +295,17 @@ def current_groups(store, *, threshold: float | None = None, precision: float | 
         if threshold < float(gen.meta["thresholds"]["near"]):
             log.warning("threshold %.3f is below the generation's duplicate threshold %.3f: check the groups "
                         "before acting on them", threshold, gen.meta["thresholds"]["near"])
-        from .build import compute_groups, whitened_vectors  # regrouping needs the index; listing does not
+        from .build import Space, regroup, whitened_vectors  # regrouping needs the index; listing does not
 
         ids, xb = whitened_vectors(store, gen.meta["model"], whitening)
-        groups = [] if len(ids) == 0 else compute_groups(store, gen.load_index(), ids, xb,
-                                                         t_near=threshold, t_similar=threshold)
+        # Both tiers at the asked threshold; verified neighbours count from the generation's own floor, as in
+        # the nightly build, so that an edited copy the build joined on geometric evidence stays joined.
+        asked = {"near": threshold, "similar": threshold}
+        if "verify_floor" in gen.meta["thresholds"]:
+            asked["verify_floor"] = min(threshold, float(gen.meta["thresholds"]["verify_floor"]))
+        stored = gen.load_pairs()  # None for a generation from before pairs were kept: searched and verified anew
+        known = None if stored is None else (*stored, float(gen.meta["thresholds"]["similar"]))
+        _pairs, groups = regroup(store, Space(gen.load_index(), ids, xb, whitening), asked, known=known)
         t_near = t_similar = threshold
     groups = judged_groups(store.catalog, groups, model=gen.meta["model"], whitening=whitening, t_near=t_near,
                            t_similar=t_similar, verdicts=verdicts)
