@@ -144,10 +144,6 @@ def _calibration_plan(prev, change: Change, calibration, settings) -> tuple[str,
     return "reuse", {"indexed": since["indexed"], "changes": total}
 
 
-def _whitened(store: Store, ids: np.ndarray, model: str, whitening) -> np.ndarray:
-    return whitened_vectors(store, model, whitening, ids)[1]
-
-
 def pairs_of(store: Store, index, q_ids: np.ndarray, xq: np.ndarray, t: float, model: str, whitening):
     """Every pair (a < b) with a query among `q_ids` and cosine >= t against the index, rescored exactly."""
     if len(q_ids) == 0:
@@ -157,7 +153,7 @@ def pairs_of(store: Store, index, q_ids: np.ndarray, xq: np.ndarray, t: float, m
     vec = {int(i): x for i, x in zip(q_ids, xq)}
     others = np.setdiff1d(np.r_[a, b], q_ids)
     if len(others):
-        vec.update(zip(others.tolist(), _whitened(store, others, model, whitening)))
+        vec.update(zip(others.tolist(), whitened_vectors(store, model, whitening, others)[1]))
     sims = np.array([float(vec[int(i)] @ vec[int(j)]) for i, j in zip(a, b)], np.float32)
     keep = sims >= t
     return a[keep], b[keep], sims[keep]
@@ -190,7 +186,7 @@ def regroup_touched(store: Store, prev, index, whitening, model: str, change: Ch
     gone = np.union1d(change.removed, change.replaced)
     dropped = np.isin(pa, gone) | np.isin(pb, gone)
     fresh = np.union1d(change.added, change.replaced)
-    xq = _whitened(store, fresh, model, whitening) if len(fresh) else np.zeros((0, index.d), np.float32)
+    xq = whitened_vectors(store, model, whitening, fresh)[1] if len(fresh) else np.zeros((0, index.d), np.float32)
     na, nb, ns = with_verified_pairs(store, index, fresh, xq, pairs_of(store, index, fresh, xq, t_similar, model,
                                                                       whitening), thresholds)
     a, b, sims = faiss_index.canonical_pairs(np.r_[pa[~dropped], na], np.r_[pb[~dropped], nb],
@@ -201,7 +197,7 @@ def regroup_touched(store: Store, prev, index, whitening, model: str, change: Ch
     seeds = seeds[np.isin(seeds, change.ids)].astype(np.int64)
     touched = _components_of(seeds, a, b)
     inside = np.isin(a, touched)
-    xs = _whitened(store, touched, model, whitening) if len(touched) else np.zeros((0, index.d), np.float32)
+    xs = whitened_vectors(store, model, whitening, touched)[1] if len(touched) else np.zeros((0, index.d), np.float32)
     regrouped = groups_from_pairs(store, touched, xs, a[inside], b[inside], sims[inside], t_near=t_near,
                                   t_similar=t_similar, verify_floor=verify_floor_of(thresholds)) if len(touched) else []
     stale_gids = {g["gid"] for g in stale}
@@ -228,7 +224,7 @@ def _update(store: Store, prev, model_dir, change: Change, reason: str, *, setti
     faiss_index.remove_ids(index, np.union1d(change.removed, change.replaced))
     fresh = np.union1d(change.added, change.replaced)
     if len(fresh):
-        faiss_index.add(index, _whitened(store, fresh, model, whitening), fresh)
+        faiss_index.add(index, whitened_vectors(store, model, whitening, fresh)[1], fresh)
     regions = regions_for_generation(store, model, whitening, prev=prev,
                                      removed=np.union1d(change.removed, change.replaced), added=fresh)
     since_full = prev.meta.get("build", {}).get("since_full", {"indexed": prev.meta["indexed"], "changes": 0})
