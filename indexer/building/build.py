@@ -295,7 +295,7 @@ def full_build(store: Store, model_dir, *, index_spec: str | None = None, calibr
 
 def recalibrated(store: Store, config) -> Built:
     """The current generation calibrated again (with `config`, a CalibrationConfig), its groups made anew at
-    the calibrated thresholds; its index, whitening and regions shared by hard links."""
+    the calibrated thresholds; its index, whitening and regions carried over unchanged."""
     gen = generations.require_current(store)
     model_dir = store.models_dir / gen.meta["model"]
     index = gen.load_index()
@@ -309,9 +309,8 @@ def recalibrated(store: Store, config) -> Built:
                 build={**gen.meta.get("build", {}), "reason": "nearsight calibrate"})
     built = Built("recalibrated", meta, {}, index=index, items=indexed_items(store, index),
                   files={generations.WHITENING_FILE: whitening.to_bytes()})
-    fallback = {**gen.meta["thresholds"], "source": gen.meta["thresholds"].get("source", "default")}
-    calibrate_thresholds(store, model_dir, space, fallback=fallback, calibration=config,
-                         required=True).into(built, len(space.ids))
+    calibrate_thresholds(store, model_dir, space, fallback=gen.meta["thresholds"], calibration=config,
+                         required=True).into(built, len(space.ids))  # required: never the fallback
     regions_extra(*space.regions, built.meta, built.files)
     started = time.monotonic()
     built.pairs, built.groups = regroup(store, space, built.thresholds)
