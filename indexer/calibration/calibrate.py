@@ -105,17 +105,25 @@ def _originals(store: Store, card: dict, ids: np.ndarray, meta: dict, count: int
     return rows, [paths[int(ids[r])] for r in rows], len(held)
 
 
-def positive_scores(encoder, size: int, whitening, xb: np.ndarray, rows: list[int], paths: list[str],
-                    strengths: EditStrengths, kinds: tuple[str, ...], per_original: int, rng) -> tuple:
-    """Cosine between each edited copy and its original's indexed vector; the edit kind of each,
-    the copies themselves, the row of each one's original and the copies' vectors."""
-    edited, targets, edit_kinds = [], [], []
+def read_originals(rows: list[int], paths: list[str], size: int) -> list[tuple[int, object]]:
+    """(row, image) of each original to edit, decoded once for every tier at DECODE_FACTOR times the model's
+    input; one that cannot be read any more (changed or gone since the scan) is left out with a warning."""
+    out = []
     for row, path in zip(rows, paths):
         try:
-            original, _info = read_image(path, max_side=DECODE_FACTOR * size)
-        except (ImageReadError, OSError) as exc:  # changed or gone since the scan
+            out.append((row, read_image(path, max_side=DECODE_FACTOR * size)[0]))
+        except (ImageReadError, OSError) as exc:
             log.warning("calibration skips %s: %s", path, exc)
-            continue
+    return out
+
+
+def positive_scores(encoder, size: int, whitening, xb: np.ndarray, originals: list[tuple[int, object]],
+                    strengths: EditStrengths, kinds: tuple[str, ...], per_original: int, rng) -> tuple:
+    """Cosine between each edited copy of `originals` ((row, image), `read_originals`) and its original's
+    indexed vector; the edit kind of each, the copies themselves, the row of each one's original and the
+    copies' vectors."""
+    edited, targets, edit_kinds = [], [], []
+    for row, original in originals:
         for _ in range(per_original):
             kind = str(rng.choice(list(kinds)))
             edited.append(apply_edit(original, kind, rng, strengths))
@@ -317,9 +325,10 @@ def calibrate(store: Store, *, model_dir: Path, index, ids: np.ndarray, xb: np.n
 
     meta = store.catalog.image_meta(ids.tolist())
     rows, paths, n_held = _originals(store, card, ids, meta, min(config.originals, n), rng)
+    originals = read_originals(rows, paths, size)
     positives = {}
     for tier, (strengths, kinds) in TIER_EDITS.items():
-        positives[tier] = positive_scores(encoder, size, whitening, xb, rows, paths, strengths, kinds,
+        positives[tier] = positive_scores(encoder, size, whitening, xb, originals, strengths, kinds,
                                           config.edits_per_original, rng)
     near_copies = positives["near"][2:]
     positives = {tier: scores_kinds[:2] for tier, scores_kinds in positives.items()}
