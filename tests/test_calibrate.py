@@ -202,9 +202,15 @@ def test_negatives_leave_out_planted_duplicates(store_dir):
 
 
 def test_calibrate_command_summary_precision_flag_and_verdict_import(store_dir, run_cli, tmp_path):
+    before = (store_dir / "generations" / (store_dir / "generations" / "CURRENT").read_text().strip())
     proc = run_cli("calibrate", "--store", store_dir, "--target-precision", "0.95", check_exit=0)
     assert re.search(r"threshold -?\d\.\d{3} for precision 0\.95 \(\S+-\S+\): about [\d,]+ wrong pairs expected "
                      r"among [\d,]+ called duplicates; recall \d\.\d\d", proc.stdout), proc.stdout
+    # The recalibrated generation shares its index with the one it recalibrates (a hard link: the same inode),
+    # and `verify` finds it whole (checksums in its checksums.json).
+    after = (store_dir / "generations" / (store_dir / "generations" / "CURRENT").read_text().strip())
+    assert after != before and (after / "index.faiss").stat().st_ino == (before / "index.faiss").stat().st_ino
+    run_cli("verify", "--store", store_dir, check_exit=0)
     # --precision picks a threshold from the stored curve; both flags at once is a usage error.
     proc = run_cli("similar", str(store_dir.parent / "photos" / "scene03.png"), "--store", store_dir,
                    "--precision", "0.9", "--json", "-k", "2", check_exit=None)

@@ -295,7 +295,7 @@ def full_build(store: Store, model_dir, *, index_spec: str | None = None, calibr
 
 def recalibrated(store: Store, config) -> Built:
     """The current generation calibrated again (with `config`, a CalibrationConfig), its groups made anew at
-    the calibrated thresholds; its index, whitening and regions carried over unchanged."""
+    the calibrated thresholds; its index, whitening and region index shared unchanged by hard links."""
     gen = generations.require_current(store)
     model_dir = store.models_dir / gen.meta["model"]
     index = gen.load_index()
@@ -307,11 +307,11 @@ def recalibrated(store: Store, config) -> Built:
             if k not in ("thresholds", "groups", "calibration", "generation", "published_at")}
     meta.update(indexed=int(len(space.ids)), calibrated_from=gen.name,
                 build={**gen.meta.get("build", {}), "reason": "nearsight calibrate"})
-    built = Built("recalibrated", meta, {}, index=index, items=indexed_items(store, index),
-                  files={generations.WHITENING_FILE: whitening.to_bytes()})
+    shared = (generations.INDEX_FILE, generations.WHITENING_FILE, generations.REGIONS_FILE)
+    built = Built("recalibrated", meta, {}, items=indexed_items(store, index),
+                  links={f: gen.path / f for f in shared if (gen.path / f).is_file()})
     calibrate_thresholds(store, model_dir, space, fallback=gen.meta["thresholds"], calibration=config,
                          required=True).into(built, len(space.ids))  # required: never the fallback
-    regions_extra(*space.regions, built.meta, built.files)
     started = time.monotonic()
     built.pairs, built.groups = regroup(store, space, built.thresholds)
     built.stages["groups"] = round(time.monotonic() - started, 3)

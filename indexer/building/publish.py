@@ -136,7 +136,7 @@ class Built:
     kind: str
     meta: dict
     thresholds: dict
-    index: Any = None                                  # a FAISS index, or None to link the previous one
+    index: Any = None                                  # a FAISS index, or None when `links` holds one
     groups: list | None = None                         # matching.groups.Group
     pairs: tuple | None = None                         # (a, b, sims) at or above the similar threshold
     items: tuple | None = None                         # (file ids, content ids) the index holds
