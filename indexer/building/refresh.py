@@ -237,6 +237,7 @@ def _update(store: Store, prev, model_dir, change: Change, reason: str, *, setti
                   stages={"index": round(time.monotonic() - started, 3)})
     pause_at("index")
     plan, since_calibration = _calibration_plan(prev, change, calibration, settings)
+    ids = xb = None  # every vector, read once when the calibration or a full regroup needs them
     if plan == "reuse":
         built.thresholds = _kept_thresholds(prev, settings)
         meta["calibration"] = {**prev.meta["calibration"], "reused_from": prev.name}
@@ -246,7 +247,8 @@ def _update(store: Store, prev, model_dir, change: Change, reason: str, *, setti
         log.info("calibration of generation %s reused: %s", prev.name,
                  prev.meta["calibration"].get("summary") or "no summary recorded")
     else:
-        ids, xb = whitened_vectors(store, model, whitening) if plan == "calibrate" else (None, None)
+        if plan == "calibrate":
+            ids, xb = whitened_vectors(store, model, whitening)
         calibrate_thresholds(store, model_dir, Space(index, ids, xb, whitening, regions),
                              fallback=default_thresholds(settings),
                              calibration=calibration if plan == "calibrate" else None).into(built, len(change.ids))
@@ -256,7 +258,8 @@ def _update(store: Store, prev, model_dir, change: Change, reason: str, *, setti
         built.pairs, built.groups, regrouped = regroup_touched(store, prev, index, whitening, model, change,
                                                                built.thresholds)
     else:  # other thresholds: every pair and group anew, in the same space
-        ids, xb = whitened_vectors(store, model, whitening)
+        if ids is None:
+            ids, xb = whitened_vectors(store, model, whitening)
         built.pairs, built.groups = regroup(store, Space(index, ids, xb, whitening), built.thresholds)
         regrouped = {"files_regrouped": int(len(ids)), "groups_kept": 0}
     meta["build"]["regrouped"] = regrouped
