@@ -146,7 +146,8 @@ def groups_from_pairs(store: Store, ids: np.ndarray, xb: np.ndarray, a, b, sims,
 
 @dataclass
 class Space:
-    """A generation's descriptor space as a build sees it: the FAISS `index` over the files `ids`, their
+    """A generation's descriptor space as a build sees it: the FAISS `index` over the files `ids` (None where
+    nothing is searched: `regroup` from known pairs above their floor), their
     whitened vectors `xb` (row i is file ids[i]), the `whitening` that made them and the region index
     (matching/regions.py: (index, grid))."""
 

@@ -305,7 +305,10 @@ def current_groups(store, *, threshold: float | None = None, precision: float | 
             asked["verify_floor"] = min(threshold, float(gen.meta["thresholds"]["verify_floor"]))
         stored = gen.load_pairs()  # None for a generation from before pairs were kept: searched and verified anew
         known = None if stored is None else (*stored, float(gen.meta["thresholds"]["similar"]))
-        _pairs, groups = regroup(store, Space(gen.load_index(), ids, xb, whitening), asked, known=known)
+        # The index is read only when pairs must be searched: above the stored pairs' floor they are all known.
+        searched = known is None or threshold < known[3]
+        _pairs, groups = regroup(store, Space(gen.load_index() if searched else None, ids, xb, whitening), asked,
+                                 known=known)
         t_near = t_similar = threshold
     groups = judged_groups(store.catalog, groups, model=gen.meta["model"], whitening=whitening, t_near=t_near,
                            t_similar=t_similar, verdicts=verdicts)
