@@ -274,6 +274,15 @@ SETTINGS: tuple[Setting, ...] = (
         "inside it, and each candidate keeps the better score (indexer/matching/frames.py). false turns it off.",
     ),
     Setting(
+        "query_regions",
+        True,
+        _parse_bool,
+        "A query whose best candidate did not verify is also cut into the same grid of parts as the indexed "
+        "images' region descriptors (region_grid), and each part searched among them, so that a copy with a "
+        "large part covered or cut away meets its original part to part (indexer/matching/regions.py). A "
+        "candidate found so keeps its place only when verified. false turns it off.",
+    ),
+    Setting(
         "mirror_view",
         "verified",
         _mirror_mode,
