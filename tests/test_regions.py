@@ -45,6 +45,20 @@ def test_cut_regions_are_the_arrays_slices():
         np.testing.assert_array_equal(np.asarray(region), pixels[y0:y1, x0:x1])
 
 
+@pytest.mark.parametrize("size", [(1, 1), (2, 1), (1, 3), (3, 3)])
+def test_an_image_a_few_pixels_wide_still_has_parts_of_at_least_one_pixel(size):
+    """Rounding the halves of a 1-pixel side gives empty boxes; an empty part cannot be embedded (the
+    input code divides by its side), so each part keeps at least one pixel, inside the image."""
+    photo = Image.fromarray(data.astronaut()).resize(size)
+    pixels = np.asarray(photo)
+    for region in cut_regions(photo, 3):
+        w, h = region.size
+        assert w >= 1 and h >= 1
+        # every pixel of a part is a pixel of the image (NumPy's view of the same array)
+        assert any((pixels[y:y + h, x:x + w] == np.asarray(region)).all()
+                   for y in range(size[1] - h + 1) for x in range(size[0] - w + 1))
+
+
 def test_region_scoring_equals_brute_force_over_every_region():
     rng = np.random.default_rng(0)
     files, cells, dim = 300, 9, 24
@@ -171,6 +185,9 @@ def test_the_query_s_own_parts_find_a_photo_a_third_covered(photos, tmp_path):
                        for name, r in zip(names, answers))
 
         with_parts = found()
+        # A query a pixel or two wide verifies nothing, so it is cut into parts too, and still answers.
+        tiny = [Image.new("RGB", (1, 1), (200, 30, 30)), Image.new("RGB", (2, 1), (10, 200, 30))]
+        assert all(len(r) == 3 for r in searcher.neighbours(searcher.vectors_for_images(tiny), 3, images=tiny))
         searcher.query_regions = False
         without = found()
     print(f"a photo a third covered, verified at rank 1: {with_parts} with the query's parts, {without} without")

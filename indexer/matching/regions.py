@@ -57,8 +57,18 @@ def region_boxes(grid: int) -> list[tuple[float, float, float, float]]:
 def cut_regions(image: Image.Image, grid: int) -> list[Image.Image]:
     """The image's regions (`region_boxes`) as images, at the image's own resolution."""
     w, h = image.size
-    return [image.crop((round(l * w), round(t * h), round(r * w), round(b * h)))
-            for l, t, r, b in region_boxes(grid)]
+
+    def span(lo: float, hi: float, side: int) -> tuple[int, int]:
+        # At least one pixel: an image a few pixels wide would otherwise give empty parts, which no
+        # encoder can take.
+        a = min(round(lo * side), max(side - 1, 0))
+        return a, max(round(hi * side), a + 1)
+
+    out = []
+    for l, t, r, b in region_boxes(grid):
+        (x0, x1), (y0, y1) = span(l, r, w), span(t, b, h)
+        out.append(image.crop((x0, y0, x1, y1)))
+    return out
 
 
 def region_key(model: str, grid: int) -> str:
