@@ -54,7 +54,7 @@ def test_an_image_a_few_pixels_wide_still_has_parts_of_at_least_one_pixel(size):
     for region in cut_regions(photo, 3):
         w, h = region.size
         assert w >= 1 and h >= 1
-        # every pixel of a part is a pixel of the image (NumPy's view of the same array)
+        # the part is some window of the image's pixels (NumPy slices of the image's array as the reference)
         assert any((pixels[y:y + h, x:x + w] == np.asarray(region)).all()
                    for y in range(size[1] - h + 1) for x in range(size[0] - w + 1))
 
