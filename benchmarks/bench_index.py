@@ -145,6 +145,24 @@ def query_specs(n: int, dim: int) -> dict[str, str]:
             "HNSW32": "IDMap2,HNSW32"}
 
 
+def single_queries(index, xq: np.ndarray, k: int = 10) -> tuple[np.ndarray, np.ndarray]:
+    """(ids found, ms per query) of one search call per query row on one FAISS thread, after a warm-up.
+    One thread per query, as a server answers one request per thread: with shared cores, OpenMP's
+    waiting threads can cost 100x on a single query."""
+    threads = faiss.omp_get_max_threads()
+    faiss.omp_set_num_threads(1)
+    try:
+        ix.search(index, xq[:10], k)  # warm up
+        found, times = [], []
+        for i in range(xq.shape[0]):
+            start = time.perf_counter()
+            found.append(ix.search(index, xq[i:i + 1], k)[1])
+            times.append(time.perf_counter() - start)
+    finally:
+        faiss.omp_set_num_threads(threads)
+    return np.vstack(found), np.array(times) * 1000
+
+
 def bench_queries(xb, ids, seed, nq=300):
     rng = np.random.default_rng(seed)
     tune_q, xq = near_queries(rng, xb, 500), near_queries(rng, xb, nq)
@@ -156,19 +174,9 @@ def bench_queries(xb, ids, seed, nq=300):
         index = ix.build_index(xb, ids, spec)
         t_build = time.perf_counter() - t0
         tuned = ix.tune_search(index, tune_q, 0.95, 10, xb=xb, ids=ids)
-        # One thread per query, as a server answers one request per thread: with
-        # shared cores, OpenMP's waiting threads can cost 100x on a single query.
-        threads = faiss.omp_get_max_threads()
-        faiss.omp_set_num_threads(1)
-        try:
-            ix.search(index, xq[:10], 10)  # warm up
-            start = time.perf_counter()
-            I = np.vstack([ix.search(index, xq[i:i + 1], 10)[1] for i in range(nq)])
-            latency = (time.perf_counter() - start) / nq * 1000
-        finally:
-            faiss.omp_set_num_threads(threads)
+        I, times = single_queries(index, xq)
         rows.append({"n": xb.shape[0], "index": name, "spec": spec, "params": tuned["params"],
-                     "t_build": t_build, "latency_ms": latency, "recall": ix.knn_recall(I, I_ref),
+                     "t_build": t_build, "latency_ms": float(times.mean()), "recall": ix.knn_recall(I, I_ref),
                      "bytes": disk_bytes(index) / xb.shape[0]})
         logging.info("%s", rows[-1])
         del index
@@ -197,22 +205,10 @@ def bench_large(n: int, dim: int, seed: int, nq: int = 300, refine: bool = False
         if sp.endswith("RFlat"):
             faiss.downcast_index(faiss.downcast_index(index).index).k_factor = 4
         tuned = ix.tune_search(index, tune_q, 0.95, 10, xb=xb, ids=ids)
-        threads = faiss.omp_get_max_threads()
-        faiss.omp_set_num_threads(1)
-        try:
-            ix.search(index, xq[:10], 10)
-            times = []
-            found = []
-            for i in range(nq):
-                start = time.perf_counter()
-                found.append(ix.search(index, xq[i:i + 1], 10)[1])
-                times.append(time.perf_counter() - start)
-        finally:
-            faiss.omp_set_num_threads(threads)
-        times = np.array(times) * 1000
+        I, times = single_queries(index, xq)
         rows.append({"n": n, "index": name, "spec": sp, "params": tuned["params"], "t_build": t_build,
                      "latency_ms": float(times.mean()), "p50": float(np.median(times)),
-                     "p99": float(np.percentile(times, 99)), "recall": ix.knn_recall(np.vstack(found), I_ref),
+                     "p99": float(np.percentile(times, 99)), "recall": ix.knn_recall(I, I_ref),
                      "bytes": disk_bytes(index) / n, "rss": peak_mib()})
         logging.info("%s", rows[-1])
         del index

@@ -312,11 +312,10 @@ class Searcher:
 
             found = region_candidates(self.regions, xq, self.verify_regions + self.verify_top, excludes,
                                       self.region_grid)
-            places = self.verify_regions
+            added = self.verify_regions
             if self.query_regions:
-                found, places = self._with_query_regions(images, found, excludes)
-            merged = [_with_regions(m, f, self.verify_top, places) for m, f in zip(merged, found)]
-            added = places
+                found, added = self._with_query_regions(images, found, excludes)
+            merged = [_with_regions(m, f, self.verify_top, added) for m, f in zip(merged, found)]
         out = self._answers([m[:reach + added] for m in merged], shifts, catalog)
         return self._verified(keys, out, catalog, more=True, added=added)
 
