@@ -5,7 +5,7 @@ from __future__ import annotations
 import math
 
 from benchmarks.collection import KINDS
-from benchmarks.protocol import FAMILIES, SEVERITY_LEVELS
+from benchmarks.protocol import ADDED_FAMILIES, EARLIER, FAMILIES, SEVERITY_LEVELS
 
 METRICS = (("uap", "µAP"), ("r1", "recall@1"), ("r_p90", "recall at precision 0.90"),
            ("r_p99", "recall at precision 0.99"))
@@ -62,12 +62,24 @@ def _runs_table(results: dict) -> list[str]:
     return lines
 
 
-def _overall_table(results: dict) -> list[str]:
+def _overall_table(results: dict, scope: str | None = None) -> list[str]:
+    """The overall figures of every system; with `scope`, over that label of the "scope" grouping only."""
     lines = ["| system | " + " | ".join(label for _k, label in METRICS) + " |", "|---|" + "---:|" * len(METRICS)]
     for name, entry in results["systems"].items():
-        m = entry["metrics"]["overall"]
+        m = entry["metrics"]["overall"] if scope is None else entry["metrics"]["scope"][scope]
         lines.append(f"| {name} | " + " | ".join(_f(m[k]) for k, _label in METRICS) + " |")
     return lines
+
+
+def _earlier_scope(results: dict) -> list[str]:
+    """The overall table over the families reports had before families were added, when some were."""
+    first = next(iter(results["systems"].values()))["metrics"]
+    scopes = first.get("scope", {})
+    if EARLIER not in scopes or len(scopes) < 2:
+        return []
+    return ["", f"Without the families added on 2026-12-04 ({', '.join(ADDED_FAMILIES)}; "
+            f"{scopes[EARLIER]['queries']} queries), comparable with earlier reports:", "",
+            *_overall_table(results, EARLIER)]
 
 
 def _per_group_table(results: dict, key: str, groups: list[str], metric: str, labels: dict | None = None,
@@ -181,6 +193,7 @@ def render(results: dict, command: str) -> str:
         "## Overall",
         "",
         *_overall_table(results),
+        *_earlier_scope(results),
         "",
         "## µAP per kind of photograph",
         "",

@@ -22,7 +22,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from benchmarks import bench_quality  # noqa: E402
+from benchmarks import bench_quality, protocol  # noqa: E402
 from benchmarks.bench_quality import _nearsight_predictions, _store, evaluate, query_groups, verdicts  # noqa: E402
 
 
@@ -72,6 +72,10 @@ def main() -> None:
     o = figures["overall"]
     print(f"{args.store}: µAP {o['uap']:.3f}  R@1 {o['r1']:.3f}  R@P90 {o['r_p90']:.3f}  R@P99 {o['r_p99']:.3f}"
           f"  ({len(records)} queries in {wall:.0f} s)")
+    earlier = figures["scope"].get(protocol.EARLIER)
+    if earlier is not None and len(figures["scope"]) > 1:
+        print(f"  without {', '.join(protocol.ADDED_FAMILIES)}: µAP {earlier['uap']:.3f}  R@1 {earlier['r1']:.3f}"
+              f"  R@P90 {earlier['r_p90']:.3f}  R@P99 {earlier['r_p99']:.3f}")
     print(f"verdict at {threshold:.3f}: precision {verdict['precision']:.3f}  recall {verdict['recall']:.3f}"
           f"  no-match flagged {verdict['no_match_flagged']['flagged']}"
           f" of {verdict['no_match_flagged']['queries']}")

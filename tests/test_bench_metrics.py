@@ -167,3 +167,36 @@ def test_every_protocol_transform_makes_a_decodable_query_of_the_stated_family()
         with Image.open(io.BytesIO(data)) as out:
             assert out.format == ("JPEG" if ext == ".jpg" else "PNG")
             assert min(out.size) >= 8
+
+
+def test_speckle_corruption_matches_scikit_image_speckle_noise():
+    # ImageNet-C's extra speckle noise, x + x * N(0, c) with c = 0.15 at severity 1 (constant from memory of its
+    # code), is scikit-image's random_noise(mode="speckle", var=c**2): same formula, same generator stream.
+    import skimage.data
+    import skimage.util
+
+    im = Image.fromarray(skimage.data.coffee())
+    x = np.asarray(im, np.float64) / 255
+    expected = skimage.util.random_noise(x, mode="speckle", var=0.15**2, rng=5, clip=True) * 255
+    out = np.asarray(protocol.speckle_noise(im, 1, np.random.default_rng(5)), np.float64)
+    assert np.abs(out - expected).max() <= 1.0
+
+
+@pytest.mark.parametrize("angle", [0.0, 90.0, 30.0])
+def test_motion_blur_kernel_is_a_one_sided_gaussian_line_at_its_angle(angle):
+    # ImageMagick's motion blur (what ImageNet-C's motion_blur calls): Gaussian weights (scipy.stats.norm) along
+    # a line from the pixel towards `angle`, on one side only.
+    from scipy import stats
+
+    radius, sigma = 10, 3.0
+    kernel = protocol._motion_kernel(radius, sigma, angle)
+    assert kernel.sum() == pytest.approx(1.0)
+    weights = stats.norm.pdf(np.arange(radius + 1), scale=sigma)
+    a = np.radians(angle)
+    # Each step t lands on the rounded point t (cos a, -sin a) from the centre (image rows grow downwards).
+    along = np.zeros_like(kernel)
+    for t, w in enumerate(weights):
+        along[radius + round(-t * np.sin(a)), radius + round(t * np.cos(a))] += w
+    np.testing.assert_allclose(kernel, along / along.sum(), atol=1e-12)
+    if angle == 0.0:
+        assert kernel[:, :radius].sum() == 0 and kernel[radius, radius:].sum() == pytest.approx(1.0)
