@@ -16,8 +16,9 @@ from torchvision.transforms.v2 import functional as TF
 
 from nearsight.indexer.learning.batch_views import (ViewParams, make_view_pairs, render_views, sample_view_params, warp)
 from nearsight.indexer.core.errors import UsageError
-from nearsight.indexer.learning.pixel_ops import (OVERLAY_BANK_SIZE, add_noise, adjust_colour, adjust_gamma, composite_overlays,
-                               gaussian_blur, jpeg_round_trip, overlay_bank, pixelate)
+from nearsight.indexer.learning.pixel_ops import (OVERLAY_BANK_SIZE, SNOW_BANK_SIZE, add_haze, add_noise, add_snow,
+                                                  adjust_colour, adjust_gamma, composite_overlays, gaussian_blur,
+                                                  jpeg_round_trip, overlay_bank, pixelate, snow_bank)
 from nearsight.indexer.learning.view_sources import (REGION_GAP, build_source_bank, plan_entries, sample_crop_boxes,
                                   split_regions, whole_regions)
 from nearsight.indexer.learning.views import ViewRecipe
@@ -42,7 +43,7 @@ def bank():
 def no_edits(**overrides) -> ViewRecipe:
     """A recipe that only crops (every probability 0), with chosen overrides."""
     values = dict(flip_p=0.0, rotate_p=0.0, perspective_p=0.0, jitter_p=0.0, grayscale_p=0.0, blur_p=0.0, jpeg_p=0.0, border_p=0.0,
-                  overlay_p=0.0, gamma_p=0.0, strong_contrast_p=0.0, noise_p=0.0, pixelate_p=0.0)
+                  overlay_p=0.0, gamma_p=0.0, strong_contrast_p=0.0, noise_p=0.0, pixelate_p=0.0, haze_p=0.0, snow_p=0.0)
     values.update(overrides)
     return ViewRecipe(**values)
 
@@ -56,7 +57,8 @@ def identity_params(boxes: torch.Tensor, **overrides) -> ViewParams:
                   grayscale=torch.zeros(n, dtype=torch.bool), gamma=torch.ones(n), blur_sigma=torch.zeros(n),
                   pixelate=torch.ones(n, dtype=torch.int64), noise_sigma=torch.zeros(n), shot=torch.zeros(n),
                   impulse=torch.zeros(n), overlay=torch.full((n,), -1), overlay_place=torch.zeros(n, 2),
-                  jpeg_quality=torch.zeros(n, dtype=torch.int64))
+                  jpeg_quality=torch.zeros(n, dtype=torch.int64), haze=torch.zeros(n), haze_decay=torch.full((n,), 2.0),
+                  snow=torch.full((n,), -1), snow_keep=torch.ones(n), snow_flip=torch.zeros(n, dtype=torch.bool))
     values.update(overrides)
     return ViewParams(**values)
 
@@ -66,18 +68,19 @@ def identity_params(boxes: torch.Tensor, **overrides) -> ViewParams:
 
 def test_every_view_draws_its_own_parameters_within_the_recipe(bank):
     recipe = ViewRecipe(flip_p=0.5, rotate_p=1.0, perspective_p=1.0, jitter_p=1.0, blur_p=1.0, jpeg_p=1.0,
-                        pixelate_p=1.0, overlay_p=1.0, gamma_p=1.0, border_p=1.0)
+                        pixelate_p=1.0, overlay_p=1.0, gamma_p=1.0, border_p=1.0, haze_p=1.0, snow_p=1.0)
     n = 64
     regions = whole_regions(bank.extents[torch.arange(n) % len(bank)])
     scale = torch.tensor([recipe.hard_crop_scale] * n)
     p = sample_view_params(regions, scale, recipe, torch.Generator().manual_seed(0))
     # Distinct values across one batch: one draw per sample, not one per batch (as a transforms.v2
     # call on a batch would give).
-    for name in ("angle", "brightness", "contrast", "saturation", "hue", "gamma", "blur_sigma"):
+    for name in ("angle", "brightness", "contrast", "saturation", "hue", "gamma", "blur_sigma", "haze", "haze_decay",
+                 "snow_keep"):
         assert torch.unique(getattr(p, name)).numel() == n, name
     assert torch.unique(p.boxes, dim=0).shape[0] == n
     assert 0 < int(p.flip.sum()) < n
-    for name in ("pixelate", "jpeg_quality", "overlay"):
+    for name in ("pixelate", "jpeg_quality", "overlay", "snow"):
         assert torch.unique(getattr(p, name)).numel() > 1, name
     # Within the recipe's ranges.
     assert p.angle.abs().max() <= recipe.rotate_degrees
@@ -95,6 +98,9 @@ def test_every_view_draws_its_own_parameters_within_the_recipe(bank):
     assert recipe.pixelate_factor[0] <= p.pixelate.min() and p.pixelate.max() <= recipe.pixelate_factor[1]
     assert recipe.jpeg_quality[0] <= p.jpeg_quality.min() and p.jpeg_quality.max() <= recipe.jpeg_quality[1]
     assert 0 <= p.overlay.min() and p.overlay.max() < OVERLAY_BANK_SIZE
+    assert recipe.haze_strength[0] <= p.haze.min() and p.haze.max() <= recipe.haze_strength[1]
+    assert 0 <= p.snow.min() and p.snow.max() < SNOW_BANK_SIZE
+    assert recipe.snow_keep[0] <= p.snow_keep.min() and p.snow_keep.max() <= recipe.snow_keep[1]
     hidden = 1 - p.inner.min(dim=1).values  # the border takes 2 x frac of one side or both
     assert (hidden >= 2 * recipe.border_frac[0] - 1e-6).all() and (hidden <= 2 * recipe.border_frac[1] + 1e-6).all()
 
@@ -372,6 +378,41 @@ def test_noise_strengths_are_as_asked():
     assert abs(float(changed) - 0.1) < 0.015  # binomial, 4 096 pixels: 3 standard errors is 0.014
 
 
+def test_haze_takes_contrast_away_as_asked_and_adds_a_smooth_veil(photos):
+    gen = torch.Generator().manual_seed(3)
+    strength = torch.tensor([0.0, 0.5, 1.5, 2.5])
+    out = add_haze(photos.clone(), strength, torch.full((4,), 2.0), gen)
+    assert torch.equal(out[0], photos[0])
+    for i in (1, 2, 3):
+        s = float(strength[i])
+        # ImageNet-C's fog (from memory): (x + s * veil) / (1 + s) with the veil in [0, 1]; so the veil is recovered
+        # exactly, spans [0, 1], and is the same on every channel.
+        veil = (out[i] * (1 + s) - photos[i]) / s
+        assert float(veil.min()) == pytest.approx(0.0, abs=1e-5) and float(veil.max()) == pytest.approx(1.0, abs=1e-5)
+        assert torch.allclose(veil[0], veil[1], atol=1e-5) and torch.allclose(veil[0], veil[2], atol=1e-5)
+        # Smooth: most of its variance below a quarter of the frequencies a side (numpy's FFT as the reference).
+        power = np.abs(np.fft.fft2(veil[0].numpy() - veil[0].numpy().mean())) ** 2
+        f = np.abs(np.fft.fftfreq(veil.shape[-1]))
+        low = (f[:, None] < 0.125) & (f[None, :] < 0.125)
+        assert power[low].sum() > 0.9 * power.sum()
+
+
+def test_snow_whitens_and_adds_flakes_only_where_asked(photos):
+    bank = snow_bank(48)
+    assert bank.shape == (SNOW_BANK_SIZE, 1, 48, 48) and 0 <= float(bank.min()) and float(bank.max()) <= 1
+    assert 0.02 < float((bank > 0.05).float().mean()) < 0.6  # flakes, not a white sheet
+    which, keep = torch.tensor([-1, 0, 1, 2]), torch.tensor([1.0, 1.0, 0.7, 0.55])
+    out = add_snow(photos.clone(), which, keep, bank, torch.tensor([False, False, True, False]))
+    assert torch.equal(out[0], photos[0])
+    # keep 1: only the layer is added (ImageNet-C's snow, from memory: x + flakes, clipped to [0, 1]).
+    assert torch.allclose(out[1], (photos[1] + bank[0]).clamp(0, 1))
+    # Otherwise the picture is first blended towards max(x, 1.5 luma + 0.5): never darker anywhere.
+    assert (out[2:] >= photos[2:] - 1e-6).all() and float((out[2:] - photos[2:]).mean()) > 0.05
+    luma = torch.einsum("chw,c->hw", photos[3], torch.tensor([0.299, 0.587, 0.114]))
+    whitened = 0.55 * photos[3] + 0.45 * torch.maximum(photos[3], luma * 1.5 + 0.5)
+    assert torch.allclose(out[3], (whitened + bank[2]).clamp(0, 1), atol=1e-6)
+
+
 def test_jpeg_reencodes_only_the_chosen_samples(photos):
     out = jpeg_round_trip(photos.clone(), torch.tensor([0, 30, 0, 90]))
     assert torch.equal(out[0], photos[0]) and torch.equal(out[2], photos[2])
@@ -420,3 +461,4 @@ def test_a_keystone_narrows_one_edge_by_its_share_and_reads_only_the_box(k):
     assert float(narrow.mean()) == pytest.approx(float(wide.mean()), abs=0.02)
     lo, hi = (8 - 0.5) / (side - 1), (48 + 8 + 0.5) / (side - 1)
     assert out.min() >= lo - 1e-4 and out.max() <= hi + 1e-4
+

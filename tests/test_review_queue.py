@@ -34,7 +34,9 @@ def store_dir(tmp_path_factory):
     folder = root / "photos"
     write_scenes_with_copies(folder)
     Image.open(folder / "scene08.png").save(folder / "scene08-pixels.png", compress_level=1)
-    blends = [(7, 9, 0.3)] + [(10 + k, 20 + k, 0.15 + 0.7 * k / 11) for k in range(12)]
+    # blend07-09 is 85 % scene07: a pair of it whatever the 3-step encoder learned (at 70 %, a change in the
+    # training views' random draws once left it below the stored pairs).
+    blends = [(7, 9, 0.15)] + [(10 + k, 20 + k, 0.15 + 0.7 * k / 11) for k in range(12)]
     for i, j, share in blends:
         Image.blend(Image.open(folder / f"scene{i:02d}.png"), Image.open(folder / f"scene{j:02d}.png"), share).save(
             folder / f"blend{i:02d}-{j:02d}.png")
@@ -127,10 +129,12 @@ def test_the_queue_follows_the_rule_and_judged_pairs_leave_it(store_dir, window,
         assert len(first_round) == len(set(first_round))  # no image twice in the first round
 
         # Verdicts act by content: one on scene07 also settles its byte-for-byte copy's pair.
-        top = queue.pairs[0]
         seven, copy = by_name["scene07.png"], by_name["scene07-copy.png"]
         partners = [b if a == seven else a for a, b in zip(pairs[0].tolist(), pairs[1].tolist()) if seven in (a, b)]
-        other = next(o for o in partners if o != copy and o not in (top.a["id"], top.b["id"]))
+        other = next(o for o in partners if o != copy)
+        # And a "same" on the first offered pair that involves none of them (which pair comes first
+        # depends on the trained encoder).
+        top = next(p for p in queue.pairs if not {p.a["id"], p.b["id"]} & {seven, copy, other})
         verdicts = [(paths[seven], paths[other]), (top.a["path"], top.b["path"])]
         store.catalog.add_verdicts([{"file_a": seven, "file_b": other, "verdict": "different"},
                                     {"file_a": top.a["id"], "file_b": top.b["id"], "verdict": "same"}],

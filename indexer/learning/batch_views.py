@@ -2,7 +2,7 @@
 
 A torchvision.transforms.v2 call on a batch draws one set of parameters for
 the whole batch; here every view draws its own crop box, flip, rotation,
-border, colour change, blur, noise, pixelation, overlay and JPEG quality
+border, colour change, fog, snow, blur, noise, pixelation, overlay and JPEG quality
 (`sample_view_params`), then the whole batch is edited at once: one affine
 map per sample (the grid `affine_grid` would build) and one `grid_sample` for
 the geometry (crop, flip, rotation, border), then the per-sample edits of
@@ -27,7 +27,10 @@ import torch.nn.functional as F
 from .encoder import IMAGENET_MEAN, IMAGENET_STD
 from .pixel_ops import (
     OVERLAY_BANK_SIZE,
+    SNOW_BANK_SIZE,
+    add_haze,
     add_noise,
+    add_snow,
     adjust_colour,
     adjust_gamma,
     composite_overlays,
@@ -35,6 +38,7 @@ from .pixel_ops import (
     jpeg_round_trip,
     overlay_bank,
     pixelate,
+    snow_bank,
 )
 from .view_sources import SourceBank, plan_entries, sample_crop_boxes
 from .views import ViewRecipe
@@ -64,6 +68,11 @@ class ViewParams:
     overlay: torch.Tensor  # (n,) index into the overlay bank, -1 = none
     overlay_place: torch.Tensor  # (n, 2) position as a fraction of the free room
     jpeg_quality: torch.Tensor  # (n,) 0 = no re-encoding
+    haze: torch.Tensor  # (n,) the fog veil's weight, 0 = none
+    haze_decay: torch.Tensor  # (n,) how smooth the veil is
+    snow: torch.Tensor  # (n,) index into the snow bank, -1 = none
+    snow_keep: torch.Tensor  # (n,) share of the picture kept under the snow
+    snow_flip: torch.Tensor  # (n,) bool, the snow layer mirrored
 
     def select(self, rows: torch.Tensor) -> "ViewParams":
         """The parameters of the given rows only."""
@@ -137,12 +146,20 @@ def _sample_degradations(n: int, r: ViewRecipe, gen: torch.Generator) -> dict[st
     }
 
 
+def _sample_weather(n: int, r: ViewRecipe, gen: torch.Generator) -> dict[str, torch.Tensor]:
+    return {"haze": torch.where(_coin(n, r.haze_p, gen), _uniform(n, r.haze_strength, gen), 0.0),
+            "haze_decay": _uniform(n, r.haze_decay, gen),
+            "snow": torch.where(_coin(n, r.snow_p, gen), torch.randint(0, SNOW_BANK_SIZE, (n,), generator=gen), -1),
+            "snow_keep": _uniform(n, r.snow_keep, gen),
+            "snow_flip": _coin(n, 0.5, gen)}
+
+
 def sample_view_params(regions: torch.Tensor, scale: torch.Tensor, recipe: ViewRecipe,
                        gen: torch.Generator) -> ViewParams:
     """Independent parameters for n views: view i crops inside regions[i] with area fraction in scale[i]."""
     n = len(regions)
     return ViewParams(**_sample_geometry(regions, scale, recipe, gen), **_sample_colour(n, recipe, gen),
-                      **_sample_degradations(n, recipe, gen))
+                      **_sample_degradations(n, recipe, gen), **_sample_weather(n, recipe, gen))
 
 
 def _output_coords(size: int) -> torch.Tensor:
@@ -236,6 +253,8 @@ def render_views(bank: SourceBank, picture_ids: torch.Tensor, regions: torch.Ten
     x = warp(bank.pixels[picture_ids].float().div_(255.0), params, regions, size)
     x = adjust_colour(x, params.brightness, params.contrast, params.saturation, params.hue, params.grayscale)
     x = adjust_gamma(x, params.gamma)
+    x = add_haze(x, params.haze, params.haze_decay, gen)
+    x = add_snow(x, params.snow, params.snow_keep, snow_bank(size), params.snow_flip)
     x = composite_overlays(x, overlay_bank(size, tuple(recipe.overlay_scale)), params.overlay, params.overlay_place)
     x = gaussian_blur(x, params.blur_sigma, blur_radius(recipe))
     x = pixelate(x, params.pixelate)

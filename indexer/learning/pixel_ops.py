@@ -25,6 +25,8 @@ from PIL import Image, ImageDraw, ImageFont
 LUMA = (0.299, 0.587, 0.114)
 OVERLAY_BANK_SIZE = 64
 _OVERLAY_SEED = 20240917  # any fixed number: the bank is the same in every run
+SNOW_BANK_SIZE = 32
+_SNOW_SEED = 20261204
 
 
 def _luma(x: torch.Tensor) -> torch.Tensor:
@@ -123,6 +125,77 @@ def add_noise(x: torch.Tensor, sigma: torch.Tensor, shot: torch.Tensor, impulse:
         u = torch.rand((len(salted), 1) + sub.shape[2:], generator=gen)
         amount = impulse[salted, None, None, None]
         x[salted] = torch.where(u < amount / 2, 1.0, torch.where(u > 1 - amount / 2, 0.0, sub))
+    return x
+
+
+def fractal_noise(n: int, size: int, decay: torch.Tensor, gen: torch.Generator, octaves: int = 6) -> torch.Tensor:
+    """(n, 1, size, size) smooth random fields in [0, 1]: uniform noise on grids of 2, 4, 8 ... cells a side,
+    each enlarged bilinearly to `size` and weighted by decay**-k for the k-th finer grid (per sample), then
+    stretched to [0, 1]. A stand-in for the plasma fractal of fog: most of its energy at low frequencies."""
+    field = torch.zeros(n, 1, size, size)
+    for k in range(octaves):
+        cells = min(2 ** (k + 1), size)
+        grid = torch.rand(n, 1, cells, cells, generator=gen)
+        field += F.interpolate(grid, size=(size, size), mode="bilinear", align_corners=False) \
+            * decay.pow(-k)[:, None, None, None]
+    low = field.amin(dim=(1, 2, 3), keepdim=True)
+    high = field.amax(dim=(1, 2, 3), keepdim=True)
+    return (field - low) / (high - low).clamp(min=1e-6)
+
+
+def add_haze(x: torch.Tensor, strength: torch.Tensor, decay: torch.Tensor, gen: torch.Generator) -> torch.Tensor:
+    """Fog: a smooth bright veil (`fractal_noise`) added with weight `strength` (0 = none), the sum brought back
+    to [0, 1] by 1 / (1 + strength), as ImageNet-C's fog does (from memory). Contrast falls to 1 / (1 + strength)
+    and the veil's brightness varies across the picture. In place."""
+    chosen = torch.nonzero(strength > 0).flatten()
+    if len(chosen) == 0:
+        return x
+    s = strength[chosen, None, None, None]
+    veil = fractal_noise(len(chosen), x.shape[-1], decay[chosen], gen)
+    x[chosen] = (x[chosen] + s * veil) / (1 + s)
+    return x
+
+
+def _snow_layer(rng: np.random.Generator, size: int) -> np.ndarray:
+    """One layer of falling snow (size x size, [0, 1]): sparse bright flakes from thresholded Gaussian noise on a
+    coarser grid, streaked by a motion blur at a random slant (ImageNet-C's snow, from memory, simplified)."""
+    from scipy import ndimage
+
+    zoom = rng.uniform(2.0, 4.0)
+    coarse = max(2, round(size / zoom))
+    loc = rng.uniform(0.1, 0.55)
+    flakes = np.clip(rng.normal(loc=loc, scale=0.3, size=(coarse, coarse)), 0, 1)
+    flakes = np.asarray(Image.fromarray(np.uint8(flakes * 255)).resize((size, size), Image.Resampling.BICUBIC),
+                        dtype=np.float32) / 255.0
+    flakes[flakes < loc + 0.3 * rng.uniform(1.0, 1.6)] = 0  # 5-16 % of the noise's values are flakes
+    length, angle = max(2, round(size * rng.uniform(0.03, 0.1))), math.radians(rng.uniform(-135, -45))
+    kernel = np.zeros((2 * length + 1, 2 * length + 1), np.float32)
+    for t in range(length + 1):
+        kernel[length + round(-t * math.sin(angle)), length + round(t * math.cos(angle))] += math.exp(-t * t / (2 * (length / 3) ** 2))
+    streaked = ndimage.convolve(flakes, kernel / kernel.sum(), mode="wrap")
+    return np.clip(streaked + np.rot90(streaked, 2), 0, 1)
+
+
+@lru_cache(maxsize=4)
+def snow_bank(size: int) -> torch.Tensor:
+    """SNOW_BANK_SIZE snow layers (k, 1, size, size) in [0, 1]; made once per size, the same in every run."""
+    rng = np.random.default_rng(_SNOW_SEED)
+    return torch.from_numpy(np.stack([_snow_layer(rng, size) for _ in range(SNOW_BANK_SIZE)]))[:, None]
+
+
+def add_snow(x: torch.Tensor, which: torch.Tensor, keep: torch.Tensor, bank: torch.Tensor,
+             flip: torch.Tensor) -> torch.Tensor:
+    """Snow: the picture whitened towards its luma (keep of it stays, as ImageNet-C's snow does, from memory),
+    then layer bank[which[i]] (mirrored where `flip`) added; -1 = none. In place."""
+    chosen = torch.nonzero(which >= 0).flatten()
+    if len(chosen) == 0:
+        return x
+    sub = x[chosen]
+    k = keep[chosen, None, None, None]
+    sub = k * sub + (1 - k) * torch.maximum(sub, _luma(sub) * 1.5 + 0.5)
+    layers = bank[which[chosen]]
+    layers = torch.where(flip[chosen, None, None, None], layers.flip(-1), layers)
+    x[chosen] = (sub + layers).clamp_(0.0, 1.0)
     return x
 
 
