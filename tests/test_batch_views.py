@@ -462,3 +462,18 @@ def test_a_keystone_narrows_one_edge_by_its_share_and_reads_only_the_box(k):
     lo, hi = (8 - 0.5) / (side - 1), (48 + 8 + 0.5) / (side - 1)
     assert out.min() >= lo - 1e-4 and out.max() <= hi + 1e-4
 
+
+def test_views_made_a_step_ahead_are_the_batches_made_in_step(bank):
+    # With two threads the next step's views are made while the model trains on this step's
+    # (train_batches._batched): the batches must be exactly those made one after the other.
+    from nearsight.indexer.learning.train_batches import plan_batches, view_batches
+
+    plan = plan_batches(len(bank), 4, 0.5, "batched")
+    sequences = []
+    for threads in (1, 2):
+        batches, _ = view_batches(bank, plan, ViewRecipe(), 48, seed=3, start_step=2, workers=0, threads=threads)
+        sequences.append([next(batches) for _ in range(4)])
+        batches.close()
+    for (a1, a2), (b1, b2) in zip(*sequences):
+        assert torch.equal(a1, b1) and torch.equal(a2, b2)
+    assert not torch.equal(sequences[0][0][0], sequences[0][1][0])

@@ -152,15 +152,29 @@ def view_batches(cache: ImageCache | SourceBank, plan: BatchPlan, recipe: ViewRe
 
 def _batched(bank: SourceBank, sampler: EpochBatches, plan: BatchPlan, recipe: ViewRecipe, size: int,
              seed: int, threads: int) -> Iterator[tuple[torch.Tensor, torch.Tensor]]:
+    """With `threads` > 1, the next step's views are made in a thread while the caller trains on this
+    step's: the model's threads leave a core idle in the head, the loss and the optimizer step."""
     pool = ThreadPoolExecutor(2, thread_name_prefix="views") if threads > 1 else None
+    ahead = ThreadPoolExecutor(1, thread_name_prefix="next-views") if threads > 1 else None
+
+    def make(step: int, batch: list[tuple[int, int]]) -> tuple[torch.Tensor, torch.Tensor]:
+        picture_ids = torch.tensor([i for _epoch, i in batch], dtype=torch.int64)
+        gen = torch.Generator().manual_seed(_item_seed(seed, step, -1))
+        return make_view_pairs(bank, picture_ids, plan.split, recipe, size, gen, pool)
+
+    steps = enumerate(sampler, start=sampler.start_step)
     try:
-        for step, batch in enumerate(sampler, start=sampler.start_step):
-            picture_ids = torch.tensor([i for _epoch, i in batch], dtype=torch.int64)
-            gen = torch.Generator().manual_seed(_item_seed(seed, step, -1))
-            yield make_view_pairs(bank, picture_ids, plan.split, recipe, size, gen, pool)
+        if ahead is None:
+            for step, batch in steps:
+                yield make(step, batch)
+        pending = ahead.submit(make, *next(steps))
+        for step, batch in steps:
+            done, pending = pending, ahead.submit(make, step, batch)
+            yield done.result()
     finally:
-        if pool is not None:
-            pool.shutdown(wait=True)
+        for executor in (ahead, pool):
+            if executor is not None:
+                executor.shutdown(wait=True, cancel_futures=True)
 
 
 def _closing(loader: DataLoader) -> Iterator[tuple[torch.Tensor, torch.Tensor]]:
