@@ -95,8 +95,8 @@ def head_comparison(paths: list[Path], out_dir: Path, config: TrainConfig) -> di
     # The same held-out originals as train() used: same seeded split, same decoding.
     _train_paths, held_paths = split_heldout(paths, config)
     held, _skipped = train_module._decode_heldout(held_paths, config)
-    return {"before_head": heldout_check(encoder, held, config.seed, config.size),
-            "after_head": heldout_check(after, held, config.seed, config.size)}
+    return {"before_head": heldout_check(encoder, held, config.seed, config.input_size),
+            "after_head": heldout_check(after, held, config.seed, config.input_size)}
 
 
 def run(name: str, paths: list[Path], config: TrainConfig, work: Path, results: Path, extra=None) -> dict:

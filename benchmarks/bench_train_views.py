@@ -106,8 +106,8 @@ def _learned_heldout(paths: list[Path], out_dir: Path, config: TrainConfig) -> t
     _train_paths, held_paths = split_heldout(paths, config)
     held, _skipped = train_module._decode_heldout(held_paths, config)
     random_init, _ = train_module._init_modules(config)
-    return (heldout_check(_Learned(encoder), held, config.seed, config.size),
-            heldout_check(_Learned(random_init), held, config.seed, config.size))
+    return (heldout_check(_Learned(encoder), held, config.seed, config.input_size),
+            heldout_check(_Learned(random_init), held, config.seed, config.input_size))
 
 
 def _append(results: Path, row: dict) -> None:

@@ -40,7 +40,7 @@ def _train_config():
     # tests: 3 steps already rank a 70%-resized JPEG (quality 60) of each of the 13 uncopied photos
     # first, and so did 150 steps; the mild edit is what makes this dependable, not the training.
     # Heavier edits need the minutes of training that tests/test_quality.py spends (marked slow).
-    return TrainConfig(arch="tiny", dim=32, size=64, batch_size=16, steps=20, minutes=None, heldout=8,
+    return TrainConfig(arch="tiny", dim=32, size=64, embed_size=None, batch_size=16, steps=20, minutes=None, heldout=8,
                        workers=0, checkpoint_every_s=3600, seed=0)
 
 

@@ -23,7 +23,7 @@ from nearsight.indexer.learning.train import TrainConfig
 ARCHIVE = ("astronaut", "coffee", "chelsea", "rocket", "camera", "brick", "immunohistochemistry", "hubble_deep_field",
            "retina", "coins")
 NEW = ("grass", "gravel", "moon")  # never catalogued
-TINY = TrainConfig(arch="tiny", size=64, dim=16, batch_size=8, steps=3, minutes=None)
+TINY = TrainConfig(arch="tiny", size=64, embed_size=None, dim=16, batch_size=8, steps=3, minutes=None)
 
 
 def _photo(name):

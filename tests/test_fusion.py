@@ -70,7 +70,7 @@ def test_the_fit_reads_only_the_store_s_own_images(tmp_path, monkeypatch):
     outside = tmp_path / "benchmark"  # a folder the store was never told about
     outside.mkdir()
     Image.new("RGB", (64, 64), "red").save(outside / "query.png")
-    tiny = TrainConfig(arch="tiny", dim=16, size=32, batch_size=8, steps=2, minutes=None, heldout=4, workers=0,
+    tiny = TrainConfig(arch="tiny", dim=16, size=32, embed_size=None, batch_size=8, steps=2, minutes=None, heldout=4, workers=0,
                        checkpoint_every_s=3600)
     settings = load_settings(environ={}, overrides={"workers": 1})
     with Store.open(tmp_path / "store", create=True, settings=settings) as store:

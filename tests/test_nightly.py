@@ -37,7 +37,7 @@ from .conftest import ROOT
 
 # Three training steps (the tiny encoder of tests/test_pipeline.py), with 16 originals held out
 # so that the retraining rule's held-out comparison has something to compare against.
-TINY = TrainConfig(arch="tiny", dim=16, size=32, batch_size=8, steps=3, minutes=None, heldout=16, workers=0,
+TINY = TrainConfig(arch="tiny", dim=16, size=32, embed_size=None, batch_size=8, steps=3, minutes=None, heldout=16, workers=0,
                    checkpoint_every_s=3600)
 # Only identical pictures group at these thresholds, whatever the tiny encoder learned.
 EXACT = {"near_threshold": 0.9999, "similar_threshold": 0.9999}

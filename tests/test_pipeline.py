@@ -16,7 +16,7 @@ from nearsight.indexer.storage.store import Store
 from nearsight.indexer.learning.train import TrainConfig
 
 # A training run of a few steps: these tests check the plumbing, not the encoder's quality.
-TINY = TrainConfig(arch="tiny", dim=16, size=32, batch_size=8, steps=3, minutes=None, heldout=4, workers=0,
+TINY = TrainConfig(arch="tiny", dim=16, size=32, embed_size=None, batch_size=8, steps=3, minutes=None, heldout=4, workers=0,
                    checkpoint_every_s=3600)
 
 

@@ -37,7 +37,7 @@ from nearsight.indexer.storage.store import Store
 from nearsight.indexer.learning.train import TrainConfig
 
 ROOT = Path(__file__).resolve().parent.parent
-TINY = TrainConfig(arch="tiny", dim=16, size=32, batch_size=8, steps=3, minutes=None, heldout=4, workers=0,
+TINY = TrainConfig(arch="tiny", dim=16, size=32, embed_size=None, batch_size=8, steps=3, minutes=None, heldout=4, workers=0,
                    checkpoint_every_s=3600)
 # Thresholds so high that only identical pictures group, whatever the tiny encoder learned:
 # same-bytes and same-pixels groups do not depend on the model.

@@ -109,7 +109,7 @@ def test_a_region_counts_only_when_confirmed_without_mirroring():
 # scikit-image's bundled photos (skimage.data); `cat` is left out, being chelsea again.
 PHOTOS = ("astronaut", "coffee", "chelsea", "rocket", "camera", "brick", "grass", "gravel", "immunohistochemistry",
           "hubble_deep_field", "retina", "page", "text", "moon", "coins", "clock")
-TINY = dict(arch="tiny", size=64, dim=32, batch_size=8, steps=3, minutes=None)
+TINY = dict(arch="tiny", size=64, embed_size=None, dim=32, batch_size=8, steps=3, minutes=None)
 
 
 @pytest.fixture(scope="module")

@@ -64,7 +64,7 @@ def broken_file(tmp_path_factory):
 
 def tiny_config(**overrides) -> TrainConfig:
     # Pinned rather than defaults, so the margins measured for these settings stay valid.
-    values = dict(arch="tiny", size=64, batch_size=16, steps=60, minutes=None, workers=0, threads=1,
+    values = dict(arch="tiny", size=64, embed_size=None, batch_size=16, steps=60, minutes=None, workers=0, threads=1,
                   heldout_fraction=0.5, lr=3e-3, warmup_steps=5, seed=0, temperature=0.1, views="batched",
                   hard_negative_share=0.25)
     values.update(overrides)
