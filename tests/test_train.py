@@ -249,6 +249,10 @@ def test_an_epoch_budget_given_alone_replaces_the_default_minutes():
     both = TrainConfig.from_options(epochs=8, minutes=2.5)
     assert (both.minutes, both.epochs) == (2.5, 8)
     assert TrainConfig.from_options(minutes=None) == default
+    # Views smaller than the side the model embeds at by default; a side given alone is both.
+    assert (default.size, default.input_size) == (96, 128)
+    assert (TrainConfig.from_options(size=64).size, TrainConfig.from_options(size=64).input_size) == (64, 64)
+    assert TrainConfig.from_options(size=64, embed_size=80).input_size == 80
 
 
 def test_views_shape_and_recipe_round_trip():
