@@ -167,6 +167,7 @@ def _batched(bank: SourceBank, sampler: EpochBatches, plan: BatchPlan, recipe: V
         if ahead is None:
             for step, batch in steps:
                 yield make(step, batch)
+            return
         pending = ahead.submit(make, *next(steps))
         for step, batch in steps:
             done, pending = pending, ahead.submit(make, step, batch)
