@@ -5,7 +5,8 @@ per sample, with a neutral value (factor 1, sigma 0, quality 0 ...) for samples
 the edit skips, so one call serves a whole batch whose samples differ. Edits
 that touch a few samples write them into x in place (a copy of the whole batch
 per edit would cost more than most edits) and return x. None draws random
-numbers except `add_noise`, which takes the generator that drew the parameters.
+numbers except `add_noise` and `add_haze`, which take the generator that drew
+the parameters.
 """
 
 from __future__ import annotations
@@ -170,8 +171,9 @@ def _snow_layer(rng: np.random.Generator, size: int) -> np.ndarray:
     flakes[flakes < loc + 0.3 * rng.uniform(1.0, 1.6)] = 0  # 5-16 % of the noise's values are flakes
     length, angle = max(2, round(size * rng.uniform(0.03, 0.1))), math.radians(rng.uniform(-135, -45))
     kernel = np.zeros((2 * length + 1, 2 * length + 1), np.float32)
-    for t in range(length + 1):
-        kernel[length + round(-t * math.sin(angle)), length + round(t * math.cos(angle))] += math.exp(-t * t / (2 * (length / 3) ** 2))
+    for t in range(length + 1):  # one-sided, Gaussian weights along the streak
+        weight = math.exp(-t * t / (2 * (length / 3) ** 2))
+        kernel[length + round(-t * math.sin(angle)), length + round(t * math.cos(angle))] += weight
     streaked = ndimage.convolve(flakes, kernel / kernel.sum(), mode="wrap")
     return np.clip(streaked + np.rot90(streaked, 2), 0, 1)
 
