@@ -79,8 +79,8 @@ class ViewRecipe:
     pixelate_factor: tuple[int, int] = (2, 6)  # block side in pixels, inclusive
     overlay_scale: tuple[float, float] = (0.15, 0.5)  # overlay width as a fraction of the view side
     # Weather: fog (a smooth bright veil that takes contrast away) and falling snow.
-    haze_p: float = 0.1
-    haze_strength: tuple[float, float] = (0.5, 2.5)  # the veil's weight; contrast falls to 1 / (1 + strength)
+    haze_p: float = 0.2
+    haze_strength: tuple[float, float] = (1.0, 3.0)  # the veil's weight; contrast falls to 1 / (1 + strength)
     haze_decay: tuple[float, float] = (1.4, 2.0)  # how fast the veil's finer detail fades (higher: smoother)
     snow_p: float = 0.1
     snow_keep: tuple[float, float] = (0.55, 0.85)  # share of the picture kept as it is under the snow
