@@ -104,10 +104,12 @@ def test_transformed_scikit_image_photos_find_their_original_first(photo_store, 
 
 
 # Floors below 16 of 16, measured 2026-12-02 after 120 steps (15 of 16 each):
-# - crop-50%: colorwheel's centre crop finds its centre tile first, which lies wholly inside the crop;
+# - crop-50%: colorwheel's centre crop finds its centre tile first, which lies wholly inside the crop (the
+#   tile's pixels are all in the query, so verification confirms it). Since 2026-12-04 (training views at
+#   96 px, with fog and snow) grass's centre crop does the same with its centre tile: 14 of 16;
 # - framed: hubble_deep_field's dark sky meets the black frame on every side, so no frame is found
 #   (tests/test_query_views.py states that case) and the descriptor alone does not find it first.
-ALLOWED_MISSES = {"crop-50%": 1, "framed": 1}
+ALLOWED_MISSES = {"crop-50%": 2, "framed": 1}
 
 
 @pytest.mark.slow
