@@ -65,9 +65,9 @@ class TrainConfig:
     # Side the trained model embeds at (the card's image_size); None = `size`. Training on smaller views
     # than the model later sees is cheaper per step, and a network trained on random crops tends to do
     # better tested at a somewhat larger side than it was trained at (Touvron et al. 2019, "Fixing the
-    # train-test resolution discrepancy"). Measured on the quality benchmark (benchmarks/results/quality.md,
-    # quality-train96.md): views at 96 px gave 1.55x the steps of 128 px in the same 10 minutes (260
-    # against 168 images/s in one session) at the same µAP (0.983 against 0.980) and held-out recall@1
+    # train-test resolution discrepancy"). Measured on the quality benchmark (benchmarks/results/
+    # train96-weather.md, runs A and B): views at 96 px gave 1.55x the steps of 128 px in the same 10 minutes
+    # (260 against 168 images/s in one session) at the same µAP (0.983 against 0.980) and held-out recall@1
     # (0.964 against 0.968, within one standard error). A person who gives `size` alone (the CLI's --size)
     # gets views and model at that side (`from_options`).
     embed_size: int | None = 128
