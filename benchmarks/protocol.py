@@ -206,11 +206,14 @@ def _disk(radius: float, alias_blur: float) -> np.ndarray:
     return ndimage.gaussian_filter(disk, sigma=alias_blur, radius=1 if radius <= 8 else 2, mode="mirror")
 
 
+def _convolve_rgb(x: np.ndarray, kernel: np.ndarray, mode: str = "nearest") -> np.ndarray:
+    """Each channel of an (h, w, 3) image convolved with one 2-D kernel."""
+    return np.stack([ndimage.convolve(x[..., ch], kernel, mode=mode) for ch in range(3)], axis=-1)
+
+
 def defocus_blur(im, severity, rng):
     radius, alias = [(3, 0.1), (4, 0.5), (6, 0.5), (8, 0.5), (10, 0.5)][severity - 1]
-    x = _float(im)
-    kernel = _disk(radius, alias)
-    return _image(np.stack([ndimage.convolve(x[..., ch], kernel, mode="mirror") for ch in range(3)], axis=-1))
+    return _image(_convolve_rgb(_float(im), _disk(radius, alias), mode="mirror"))
 
 
 def _hsv_edit(im, edit):
@@ -282,8 +285,6 @@ def _motion_kernel(radius: int, sigma: float, angle: float) -> np.ndarray:
     return kernel / kernel.sum()
 
 
-def _convolve_rgb(x: np.ndarray, kernel: np.ndarray) -> np.ndarray:
-    return np.stack([ndimage.convolve(x[..., ch], kernel, mode="nearest") for ch in range(3)], axis=-1)
 
 
 def motion_blur(im, severity, rng):
@@ -292,7 +293,7 @@ def motion_blur(im, severity, rng):
 
 
 def _zoomed(x: np.ndarray, factor: float) -> np.ndarray:
-    """`x` enlarged `factor` times about its centre, cut back to its own size."""
+    """`x` (h, w) or (h, w, 3) in [0, 1] enlarged `factor` times about its centre, cut back to its own size."""
     h, w = x.shape[:2]
     ch, cw = int(math.ceil(h / factor)), int(math.ceil(w / factor))
     top, left = (h - ch) // 2, (w - cw) // 2
@@ -362,7 +363,7 @@ def snow(im, severity, rng):
     x = _float(im)
     h, w = x.shape[:2]
     flakes = rng.normal(size=(h, w), loc=loc, scale=scale)
-    flakes = _zoomed(np.repeat(np.clip(flakes, 0, 1)[..., None], 3, axis=2), zoom)[..., 0]
+    flakes = _zoomed(flakes, zoom)
     flakes[flakes < cut] = 0
     flakes = ndimage.convolve(flakes, _motion_kernel(radius, sigma, float(rng.uniform(-135, -45))), mode="nearest")
     grey = x @ np.array([0.299, 0.587, 0.114])
