@@ -92,6 +92,18 @@ def test_region_candidates_take_places_right_after_the_head_without_repeats():
                    (0.7, True, 3)]
 
 
+def test_a_file_found_twice_through_regions_takes_one_place():
+    # The whole query's region candidates followed by its parts': a file both found takes one place, at its
+    # first, and the next file gets the place it left (a result list that named a file twice once counted
+    # one copy twice in the benchmark's pooled precision).
+    merged = [(0.9, False, 1), (0.6, False, 4), (0.5, False, 5)]
+    found = [(0.7, 6), (0.65, 7), (0.62, 6), (0.55, 4), (0.3, 8)]
+    out = _with_regions(merged, found, head=1, places=3)
+    ids = [i for _, _, i in out]
+    assert len(ids) == len(set(ids))
+    assert out == [(0.9, False, 1), (0.7, "region", 6), (0.65, "region", 7), (0.6, False, 4), (0.5, False, 5)]
+
+
 def test_a_region_counts_only_when_confirmed_without_mirroring():
     direct = {1: 0.6}
     results = [{"id": 7, "similarity": 0.8, "descriptor_similarity": 0.8, "_other_view": "region",

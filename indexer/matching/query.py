@@ -123,12 +123,18 @@ def _with_regions(merged: list[tuple[float, object, int]], found: list[tuple[flo
                   places: int) -> list[tuple[float, object, int]]:
     """`merged` (similarity, other view, id) with up to `places` files found through region descriptors
     (`found`, best first) put right after its first `head`, each with the better of its region score
-    (then marked "region") and the score it had; files already among the first `head` are not repeated."""
+    (then marked "region") and the score it had; no file is listed twice (one `found` through the whole
+    query and through one of its parts takes one place, at its first)."""
     first = merged[:head]
     have = {i for _, _, i in first}
     rest = {i: (d, m) for d, m, i in merged[head:]}
-    regions = [(d, "region", i) if d > rest.get(i, (-np.inf, False))[0] else (*rest[i], i)
-               for d, i in found if i not in have][:places]
+    regions = []
+    for d, i in found:
+        if len(regions) == places:
+            break
+        if i not in have:
+            have.add(i)
+            regions.append((d, "region", i) if d > rest.get(i, (-np.inf, False))[0] else (*rest[i], i))
     moved = {i for _, _, i in regions}
     return first + regions + [t for t in merged[head:] if t[2] not in moved]
 
@@ -339,7 +345,8 @@ class Searcher:
             have = {i for _, i in head}
             by_part = _better_of([], [t for part in hits[q * cells:(q + 1) * cells] for t in part])
             extra = [(d, i) for d, _, i in by_part if i not in have][:QUERY_PART_PLACES]
-            out.append(head + extra + whole[self.verify_regions:])
+            have.update(i for _, i in extra)
+            out.append(head + extra + [(d, i) for d, i in whole[self.verify_regions:] if i not in have])
         return out, self.verify_regions + QUERY_PART_PLACES
 
     def _search(self, xq: np.ndarray, n: int, excludes: Sequence[Collection[int]]) -> list[list[tuple[float, int]]]:
