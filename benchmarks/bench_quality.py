@@ -170,6 +170,8 @@ def _nearsight_predictions(store_dir: Path, records: list[dict], col: dict[str, 
             answers = searcher.neighbours(searcher.vectors_for_images(images), k, images=images)
             q, r, s = [], [], []
             for offset, results in enumerate(answers):
+                if len({hit["id"] for hit in results}) != len(results):  # pooled precision would count it twice
+                    raise AssertionError(f"{block[offset]['path']}: a result list names a file twice: {results}")
                 for hit in results:
                     q.append(start + offset)
                     r.append(col[Path(hit["path"]).name])
