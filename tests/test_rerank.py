@@ -185,6 +185,29 @@ def test_the_fine_check_runs_only_when_the_best_is_still_unconfirmed(fifths):
     assert copy_first[1]["evidence"] is None
 
 
+def test_the_fine_check_reaches_the_querys_own_candidates_behind_other_views_ones(fifths, monkeypatch):
+    """Candidates found through another view (here marked as regions, scoring higher) fill the `count` places;
+    the query's own best candidates (FINE_DIRECT of them) are checked too, so the original of a hard crop that
+    the image as given found second still confirms."""
+    from nearsight.indexer.matching import rerank as rerank_module
+    from nearsight.indexer.matching.rerank import FINE_DIRECT, rerank_fine
+
+    small, crop, _cut, strip = fifths["rocket"]
+    others = {10 + j: fifths[name][0] for j, name in enumerate(("coffee", "chelsea", "camera", "brick"))}
+    results = [{"id": i, "similarity": 0.9 - 0.01 * j, "_other_view": "region"} for j, i in enumerate(others)]
+    results += [{"id": 1, "similarity": 0.5}, {"id": 2, "similarity": 0.45}]  # the strip beside it, then the copy
+    candidates = {**others, 1: strip, 2: small}
+    out = rerank_fine(crop, [dict(r) for r in results], candidates, count=2)
+    assert FINE_DIRECT >= 2
+    copy = next(r for r in out if r["id"] == 2)
+    assert copy["evidence"]["verified"] and copy["similarity"] == pytest.approx(boosted(0.45), abs=1e-6)
+    assert [r["id"] for r in out if (r.get("evidence") or {}).get("verified")] == [2]
+    # Without those places, the copy behind the other views' candidates is never checked.
+    monkeypatch.setattr(rerank_module, "FINE_DIRECT", 0)
+    out = rerank_fine(crop, [dict(r) for r in results], candidates, count=2)
+    assert not any((r.get("evidence") or {}).get("verified") for r in out)
+
+
 def test_the_fine_check_leaves_a_query_without_keypoints_as_it_was(fifths):
     """A flat grey query has no ORB keypoints (nothing for FAST to find): no candidate is read or changed."""
     from nearsight.indexer.matching.rerank import rerank_fine
