@@ -20,7 +20,10 @@ their released code):
   wobble. The `imagecorruptions` package no longer imports with current setuptools, NumPy and
   scikit-image, hence this reimplementation.
 * Our own additions: overlays (captions, text, shapes), borders, flips, small rotations,
-  grayscale and a hue shift.
+  grayscale and a hue shift; since 2026-12-04 also a family of photo-editor adjustments,
+  "edit" (white balance, vignette, sharpening, auto-contrast, sepia, a faded look,
+  posterisation, histogram equalisation, dramatic black and white, local contrast, cross
+  processing).
 
 A transform maps an RGB image and a seeded `numpy.random.Generator` to an RGB image and
 the encoding the query file is saved with: ("JPEG", quality) or ("PNG", None).
@@ -39,6 +42,7 @@ mapping is ours (a judgement of how much of the original survives, not a publish
 | border | white, 5 % a side | black, 15 % a side | letterbox to 16:9 (bars fill 44 % of a square tile's frame) |
 | flip | - | mirror (left-right) | upside down |
 | rotate | 2 degrees | 5 degrees (cropped or filled) | 10 degrees |
+| edit (ours) | warm or cool cast, vignette, sharpen, auto-contrast | vivid, sepia, faded, posterize to 3 bits, equalize | dramatic black and white, local contrast, cross-processed |
 """
 
 from __future__ import annotations
@@ -390,6 +394,81 @@ def elastic(im, severity, rng):
 MORE_CORRUPTIONS = (speckle_noise, motion_blur, zoom_blur, glass_blur, fog, snow, elastic)
 
 
+# -- Photo-editor adjustments ("edit"): what an owner's photo application does to a copy (tone, tint, filters).
+# Ours, not from a published benchmark; each states its formula. Added on 2026-12-04, after the others, so that
+# every earlier transform keeps its seeded sample of tiles.
+SEPIA = np.array([[0.393, 0.769, 0.189], [0.349, 0.686, 0.168], [0.272, 0.534, 0.131]])
+"""The sepia toning matrix (rows: output R, G, B from input R, G, B), common practice in image editors (from
+memory of the coefficients usually published for it)."""
+
+
+def _gains(im, gains):
+    """White balance moved: each channel times its gain (a warm or cool cast)."""
+    return _image(_float(im) * np.asarray(gains))
+
+
+def vignette(im, strength: float = 0.5):
+    """Corners darkened: each pixel times 1 - strength * (its distance from the centre / the corner's)^2."""
+    x = _float(im)
+    h, w = x.shape[:2]
+    yy, xx = np.mgrid[0:h, 0:w]
+    r2 = ((xx - (w - 1) / 2) / (w / 2)) ** 2 + ((yy - (h - 1) / 2) / (h / 2)) ** 2
+    return _image(x * (1 - strength * r2 / 2)[..., None])
+
+
+def sepia(im):
+    return _image(_float(im) @ SEPIA.T)
+
+
+def faded(im):
+    """A faded, warm "vintage" look: saturation down to 0.6, blacks lifted to 0.15 and whites lowered to 0.9
+    (x * 0.75 + 0.15), a warm cast and a vignette."""
+    x = ImageEnhance.Color(im.convert("RGB")).enhance(0.6)
+    return vignette(_gains(_image(_float(x) * 0.75 + 0.15), (1.06, 1.0, 0.88)), 0.35)
+
+
+def vivid(im):
+    """Saturation 1.6, then contrast 1.3 (Pillow's ImageEnhance)."""
+    return ImageEnhance.Contrast(ImageEnhance.Color(im.convert("RGB")).enhance(1.6)).enhance(1.3)
+
+
+def dramatic_mono(im):
+    """Black and white with contrast 1.8 about the mean grey (Pillow's ImageEnhance.Contrast)."""
+    return ImageEnhance.Contrast(im.convert("L")).enhance(1.8).convert("RGB")
+
+
+def local_contrast(im):
+    """An "HDR look": contrast-limited adaptive histogram equalisation of each channel (scikit-image's
+    equalize_adapthist, clip limit 0.03)."""
+    from skimage import exposure
+
+    return _image(exposure.equalize_adapthist(_float(im), clip_limit=0.03))
+
+
+def cross_process(im):
+    """Cross-processed film: red and green through an S-curve (a smoothstep), blue compressed into 0.2-0.8."""
+    x = _float(im)
+    s = x * x * (3 - 2 * x)
+    return _image(np.stack([s[..., 0], 0.5 * (x[..., 1] + s[..., 1]), 0.2 + 0.6 * x[..., 2]], axis=-1))
+
+
+EDITS = (
+    ("warm", MILD, lambda im: _gains(im, (1.12, 1.0, 0.85))),
+    ("cool", MILD, lambda im: _gains(im, (0.88, 1.0, 1.15))),
+    ("vignette", MILD, vignette),
+    ("sharpen", MILD, lambda im: im.filter(ImageFilter.UnsharpMask(radius=2, percent=200, threshold=0))),
+    ("autocontrast", MILD, lambda im: ImageOps.autocontrast(im, cutoff=2)),
+    ("vivid", MODERATE, vivid),
+    ("sepia", MODERATE, sepia),
+    ("faded", MODERATE, faded),
+    ("posterize", MODERATE, lambda im: ImageOps.posterize(im, 3)),
+    ("equalize", MODERATE, ImageOps.equalize),
+    ("mono-dramatic", STRONG, dramatic_mono),
+    ("local-contrast", STRONG, local_contrast),
+    ("cross-process", STRONG, cross_process),
+)
+
+
 # -- Copydays-style "strong" combinations (ours, seeded) ------------------------------------
 def strong_print_scan(im, rng):
     x = rotate_crop(im.convert("RGB"), float(rng.choice([-3.0, 3.0])))
@@ -473,6 +552,8 @@ def build_transforms() -> list[Transform]:
     # Last, so that adding them left every earlier transform's seeded sample of tiles as it was.
     out += [Transform(f"{fn.__name__}-{s}", "corruption", _corruption(fn, s), IMAGENET_C_SEVERITY[s])
             for fn in MORE_CORRUPTIONS for s in SEVERITIES]
+    out += [Transform(name, "edit", (lambda fn: _png(lambda im, rng: fn(im)))(fn), severity)
+            for name, severity, fn in EDITS]
     return out
 
 
@@ -481,10 +562,10 @@ def _shift_hue(hsv):
 
 
 FAMILIES = ("jpeg", "crop", "strong", "noise", "blur", "colour", "digital", "overlay", "border", "flip", "rotate",
-            "corruption")
+            "corruption", "edit")
 # Families added to the protocol on 2026-12-04; reports also give the overall figures without them (EARLIER),
 # which stay comparable with reports made before.
-ADDED_FAMILIES = ("corruption",)
+ADDED_FAMILIES = ("corruption", "edit")
 EARLIER, ADDED = "earlier families", "added families"
 
 

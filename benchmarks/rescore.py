@@ -50,6 +50,12 @@ def main() -> None:
     parser.add_argument("--k", type=int, default=10)
     parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
                         help="a setting for this scoring (e.g. mirror_view=off); repeatable")
+    parser.add_argument("--add-queries", action="store_true",
+                        help="first make the queries of transforms the protocol has gained since the quality run "
+                             "(each keeps the seeded sample of tiles a full run would give it) and add them to "
+                             "WORK/queries.json")
+    parser.add_argument("--baselines", action="store_true",
+                        help="also score pHash and the 16x16 thumbnail on the same queries (about a minute more)")
     parser.add_argument("--recalibrate", action="store_true",
                         help="calibrate a copy of the store with the current code (and --set) first, "
                              "as `nearsight calibrate` would; the trained store is left as it is")
@@ -59,6 +65,8 @@ def main() -> None:
     store_dir = args.work / "stores" / args.store
     if args.recalibrate:
         store_dir = _recalibrated_copy(store_dir)
+    if args.add_queries:
+        add_queries(args.work)
     saved = json.loads((args.work / "queries.json").read_text())
     names, records = saved["names"], saved["records"]
     col = {name: i for i, name in enumerate(names)}
@@ -79,13 +87,49 @@ def main() -> None:
     print(f"verdict at {threshold:.3f}: precision {verdict['precision']:.3f}  recall {verdict['recall']:.3f}"
           f"  no-match flagged {verdict['no_match_flagged']['flagged']}"
           f" of {verdict['no_match_flagged']['queries']}")
-    print("family      µAP    R@1")
+    others = baseline_figures(args.work, names, records, gt, groups, args.k) if args.baselines else {}
+    head = "".join(f"  {name[:9]:>9s} µAP / R@1" for name in others)
+    print(f"family      µAP    R@1{head}")
     for family, f in figures["family"].items():
-        print(f"{family:10s} {f['uap']:.3f}  {f['r1']:.3f}")
-    print("transform            µAP    R@1")
+        more = "".join(f"  {o['family'][family]['uap']:.3f} / {o['family'][family]['r1']:.3f}  "
+                       for o in others.values())
+        print(f"{family:10s} {f['uap']:.3f}  {f['r1']:.3f}{more}")
+    print(f"transform            µAP    R@1{head}")
     for name, f in figures["transform"].items():
-        if f["r1"] < 0.95:
-            print(f"{name:20s} {f['uap']:.3f}  {f['r1']:.3f}")
+        if f["r1"] < 0.95 or others:
+            more = "".join(f"  {o['transform'][name]['uap']:.3f} / {o['transform'][name]['r1']:.3f}  "
+                           for o in others.values())
+            print(f"{name:20s} {f['uap']:.3f}  {f['r1']:.3f}{more}")
+
+
+def add_queries(work: Path) -> None:
+    """Make the queries of the protocol's transforms that WORK/queries.json lacks (new ones are appended to the
+    protocol, so `query_plan` gives each the tiles a full run would) and add them to it."""
+    from benchmarks import collection
+
+    saved = json.loads((work / "queries.json").read_text())
+    have = {r["transform"] for r in saved["records"]}
+    transforms = protocol.build_transforms()
+    if all(t.name in have for t in transforms):
+        return
+    refs = collection.references(0)
+    plan = bench_quality.query_plan(refs, len(transforms), bench_quality.QUERIES_PER_TRANSFORM, 0)
+    plan = [(i, j) for i, j in plan if transforms[j].name not in have]
+    records = bench_quality.make_queries(work, refs, transforms, plan, saved["names"], 0)
+    saved["records"] += records
+    (work / "queries.json").write_text(json.dumps(saved, default=str))
+    print(f"added {len(records)} queries of {len({r['transform'] for r in records})} transforms")
+
+
+def baseline_figures(work: Path, names: list[str], records: list[dict], gt: np.ndarray, groups: dict,
+                     k: int) -> dict[str, dict]:
+    """pHash's and the thumbnail's figures on the same queries (`evaluate`)."""
+    from benchmarks import baselines
+
+    xb = baselines.describe_files([work / "collection" / n for n in names])
+    xq = baselines.describe_files([Path(r["path"]) for r in records])
+    return {name: evaluate(baselines.search(name, xq[name], xb[name], k), gt, groups)
+            for name in ("phash", "thumbnail")}
 
 
 if __name__ == "__main__":

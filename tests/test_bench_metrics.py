@@ -200,3 +200,27 @@ def test_motion_blur_kernel_is_a_one_sided_gaussian_line_at_its_angle(angle):
     np.testing.assert_allclose(kernel, along / along.sum(), atol=1e-12)
     if angle == 0.0:
         assert kernel[:, :radius].sum() == 0 and kernel[radius, radius:].sum() == pytest.approx(1.0)
+
+
+def test_sepia_edit_applies_the_usual_sepia_toning_coefficients():
+    # The sepia matrix image editors commonly publish (common practice; coefficients from memory):
+    # R' = .393 R + .769 G + .189 B, G' = .349 R + .686 G + .168 B, B' = .272 R + .534 G + .131 B, clipped.
+    import skimage.data
+
+    im = Image.fromarray(skimage.data.coffee())
+    r, g, b = np.moveaxis(np.asarray(im, np.float64), -1, 0)
+    expected = np.clip(np.stack([.393 * r + .769 * g + .189 * b, .349 * r + .686 * g + .168 * b,
+                                 .272 * r + .534 * g + .131 * b], axis=-1), 0, 255)
+    out = np.asarray(protocol.sepia(im), np.float64)
+    assert np.abs(out - expected).max() <= 1.0
+
+
+def test_vignette_keeps_the_centre_and_darkens_the_corners_by_the_strength():
+    # The vignette's stated formula: each pixel times 1 - strength * (its distance from the centre over the
+    # corner's)^2, so the centre keeps its value and the corners drop to 1 - strength.
+    im = Image.new("RGB", (201, 101), (200, 160, 120))
+    out = np.asarray(protocol.vignette(im, 0.5), np.float64)
+    np.testing.assert_allclose(out[50, 100], [200, 160, 120], atol=0.5)
+    corner = 1 - 0.5 * ((100 / 100.5) ** 2 + (50 / 50.5) ** 2) / 2  # the corner pixel's centre is half a pixel in
+    np.testing.assert_allclose(out[0, 0], np.array([200, 160, 120]) * corner, atol=0.6)
+    assert (out[50, :, 0] <= out[50, 100, 0] + 0.5).all()
