@@ -87,9 +87,9 @@ class ViewRecipe:
     # Recolourings that editors make: the hue turned anywhere round the circle (instead of the jitter's small
     # shift), the colour channels put in another order (red swapped with blue ...), tones above a threshold
     # inverted (solarised).
-    recolour_p: float = 0.1
-    channel_swap_p: float = 0.05
-    solarize_p: float = 0.05
+    recolour_p: float = 0.05
+    channel_swap_p: float = 0.0
+    solarize_p: float = 0.0
     solarize_threshold: tuple[float, float] = (0.4, 0.8)
 
     def to_dict(self) -> dict[str, Any]:
