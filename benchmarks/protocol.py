@@ -23,7 +23,7 @@ their released code):
   grayscale and a hue shift; since 2026-12-04 also a family of photo-editor adjustments,
   "edit" (white balance, vignette, sharpening, auto-contrast, sepia, a faded look,
   posterisation, histogram equalisation, dramatic black and white, local contrast, cross
-  processing).
+  processing, recolouring, solarisation).
 
 A transform maps an RGB image and a seeded `numpy.random.Generator` to an RGB image and
 the encoding the query file is saved with: ("JPEG", quality) or ("PNG", None).
@@ -42,7 +42,7 @@ mapping is ours (a judgement of how much of the original survives, not a publish
 | border | white, 5 % a side | black, 15 % a side | letterbox to 16:9 (bars fill 44 % of a square tile's frame) |
 | flip | - | mirror (left-right) | upside down |
 | rotate | 2 degrees | 5 degrees (cropped or filled) | 10 degrees |
-| edit (ours) | warm or cool cast, vignette, sharpen, auto-contrast | vivid, sepia, faded, posterize to 3 bits, equalize | dramatic black and white, local contrast, cross-processed |
+| edit (ours) | warm or cool cast, vignette, sharpen, auto-contrast | vivid, sepia, faded, posterize to 3 bits, equalize | dramatic black and white, local contrast, cross-processed, hue turned 180 degrees, red and blue swapped, solarised |
 """
 
 from __future__ import annotations
@@ -466,6 +466,11 @@ EDITS = (
     ("mono-dramatic", STRONG, dramatic_mono),
     ("local-contrast", STRONG, local_contrast),
     ("cross-process", STRONG, cross_process),
+    # Recolourings: the hue turned half way round (a product shot offered in another colour) and red swapped with
+    # blue; solarised (tones above the middle inverted, Pillow's ImageOps.solarize at 128).
+    ("hue-180", STRONG, lambda im: _hsv_edit(im, _half_turn_hue)),
+    ("swap-red-blue", STRONG, lambda im: Image.merge("RGB", im.split()[::-1])),
+    ("solarize", STRONG, lambda im: ImageOps.solarize(im, 128)),
 )
 
 
@@ -555,6 +560,10 @@ def build_transforms() -> list[Transform]:
     out += [Transform(name, "edit", (lambda fn: _png(lambda im, rng: fn(im)))(fn), severity)
             for name, severity, fn in EDITS]
     return out
+
+
+def _half_turn_hue(hsv):
+    hsv[..., 0] = (hsv[..., 0] + 0.5) % 1.0
 
 
 def _shift_hue(hsv):

@@ -16,9 +16,10 @@ from torchvision.transforms.v2 import functional as TF
 
 from nearsight.indexer.learning.batch_views import (ViewParams, make_view_pairs, render_views, sample_view_params, warp)
 from nearsight.indexer.core.errors import UsageError
-from nearsight.indexer.learning.pixel_ops import (OVERLAY_BANK_SIZE, SNOW_BANK_SIZE, add_haze, add_noise, add_snow,
-                                                  adjust_colour, adjust_gamma, composite_overlays, gaussian_blur,
-                                                  jpeg_round_trip, overlay_bank, pixelate, snow_bank)
+from nearsight.indexer.learning.pixel_ops import (CHANNEL_ORDERS, OVERLAY_BANK_SIZE, SNOW_BANK_SIZE, add_haze,
+                                                  add_noise, add_snow, adjust_colour, adjust_gamma, composite_overlays,
+                                                  gaussian_blur, jpeg_round_trip, overlay_bank, pixelate, snow_bank,
+                                                  solarize)
 from nearsight.indexer.learning.view_sources import (REGION_GAP, build_source_bank, plan_entries, sample_crop_boxes,
                                   split_regions, whole_regions)
 from nearsight.indexer.learning.views import ViewRecipe
@@ -43,7 +44,8 @@ def bank():
 def no_edits(**overrides) -> ViewRecipe:
     """A recipe that only crops (every probability 0), with chosen overrides."""
     values = dict(flip_p=0.0, rotate_p=0.0, perspective_p=0.0, jitter_p=0.0, grayscale_p=0.0, blur_p=0.0, jpeg_p=0.0, border_p=0.0,
-                  overlay_p=0.0, gamma_p=0.0, strong_contrast_p=0.0, noise_p=0.0, pixelate_p=0.0, haze_p=0.0, snow_p=0.0)
+                  overlay_p=0.0, gamma_p=0.0, strong_contrast_p=0.0, noise_p=0.0, pixelate_p=0.0, haze_p=0.0, snow_p=0.0,
+                  recolour_p=0.0, channel_swap_p=0.0, solarize_p=0.0)
     values.update(overrides)
     return ViewRecipe(**values)
 
@@ -54,7 +56,8 @@ def identity_params(boxes: torch.Tensor, **overrides) -> ViewParams:
     values = dict(boxes=boxes, flip=torch.zeros(n, dtype=torch.bool), angle=torch.zeros(n), keystone=torch.zeros(n, 2),
                   inner=torch.ones(n, 2), border_colour=torch.zeros(n, 3), brightness=torch.ones(n),
                   contrast=torch.ones(n), saturation=torch.ones(n), hue=torch.zeros(n),
-                  grayscale=torch.zeros(n, dtype=torch.bool), gamma=torch.ones(n), blur_sigma=torch.zeros(n),
+                  grayscale=torch.zeros(n, dtype=torch.bool), channels=torch.zeros(n, dtype=torch.int64),
+                  solarize=torch.full((n,), 2.0), gamma=torch.ones(n), blur_sigma=torch.zeros(n),
                   pixelate=torch.ones(n, dtype=torch.int64), noise_sigma=torch.zeros(n), shot=torch.zeros(n),
                   impulse=torch.zeros(n), overlay=torch.full((n,), -1), overlay_place=torch.zeros(n, 2),
                   jpeg_quality=torch.zeros(n, dtype=torch.int64), haze=torch.zeros(n), haze_decay=torch.full((n,), 2.0),
@@ -68,7 +71,7 @@ def identity_params(boxes: torch.Tensor, **overrides) -> ViewParams:
 
 def test_every_view_draws_its_own_parameters_within_the_recipe(bank):
     recipe = ViewRecipe(flip_p=0.5, rotate_p=1.0, perspective_p=1.0, jitter_p=1.0, blur_p=1.0, jpeg_p=1.0,
-                        pixelate_p=1.0, overlay_p=1.0, gamma_p=1.0, border_p=1.0, haze_p=1.0, snow_p=1.0)
+                        pixelate_p=1.0, overlay_p=1.0, gamma_p=1.0, border_p=1.0, haze_p=1.0, snow_p=1.0, recolour_p=0.0)
     n = 64
     regions = whole_regions(bank.extents[torch.arange(n) % len(bank)])
     scale = torch.tensor([recipe.hard_crop_scale] * n)
@@ -312,6 +315,44 @@ def test_colour_edits_match_torchvision_one_at_a_time(photos):
         assert (ours - expected).abs().max() < 2e-3, reference.__name__
     grey = adjust_colour(photos, ones, ones, ones, zeros, torch.ones(n, dtype=torch.bool))
     assert (grey - TF.rgb_to_grayscale(photos, num_output_channels=3)).abs().max() < 2e-3
+
+
+def test_recolouring_draws_hues_round_the_whole_circle_and_channel_orders_and_solarising_per_view(bank):
+    recipe = ViewRecipe(jitter_p=1.0, recolour_p=0.5, channel_swap_p=0.5, solarize_p=0.5)
+    n = 256
+    regions = whole_regions(bank.extents[torch.arange(n) % len(bank)])
+    p = sample_view_params(regions, torch.tensor([recipe.hard_crop_scale] * n), recipe,
+                           torch.Generator().manual_seed(1))
+    wide = p.hue.abs() > recipe.hue
+    assert 0 < int(wide.sum()) < n and p.hue.abs().max() <= 0.5 and p.hue.abs().max() > 0.4
+    assert set(p.channels.tolist()) == set(range(len(CHANNEL_ORDERS)))  # every order, none for about half
+    chosen = p.solarize <= 1
+    assert 0 < int(chosen.sum()) < n and torch.unique(p.solarize[chosen]).numel() == int(chosen.sum())
+    low, high = recipe.solarize_threshold
+    assert (p.solarize[chosen] >= low).all() and (p.solarize[chosen] <= high).all()
+    assert (p.solarize[~chosen] == 2.0).all()
+
+
+def test_channel_orders_and_solarising_match_pillow(photos):
+    # Pillow's Image.merge of the split bands in another order, and ImageOps.solarize (tones at or above the
+    # threshold inverted), on the same 8-bit pixels.
+    from PIL import Image, ImageOps
+
+    n = len(photos)
+    ones, zeros, no = torch.ones(n), torch.zeros(n), torch.zeros(n, dtype=torch.bool)
+    order = torch.tensor([5, 3, 0, 1])
+    ours = adjust_colour(photos, ones, ones, ones, zeros, no, order)
+    threshold = torch.tensor([0.5, 2.0, 0.3, 0.8])
+    sunned = solarize(photos.clone(), threshold)
+    for i in range(n):
+        im = Image.fromarray((photos[i].permute(1, 2, 0).numpy() * 255).round().astype("uint8"))
+        bands = im.split()
+        expected = Image.merge("RGB", [bands[c] for c in CHANNEL_ORDERS[int(order[i])]])
+        got = (ours[i].permute(1, 2, 0).numpy() * 255).round()
+        assert abs(got - np.asarray(expected, np.float64)).max() <= 1, i
+        expected = ImageOps.solarize(im, threshold=round(float(threshold[i]) * 255)) if threshold[i] <= 1 else im
+        got = (sunned[i].permute(1, 2, 0).numpy() * 255).round()
+        assert abs(got - np.asarray(expected, np.float64)).max() <= 1, i
 
 
 def test_hue_shift_is_a_rotation_about_the_grey_axis():

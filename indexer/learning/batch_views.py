@@ -2,7 +2,7 @@
 
 A torchvision.transforms.v2 call on a batch draws one set of parameters for
 the whole batch; here every view draws its own crop box, flip, rotation,
-border, colour change, fog, snow, blur, noise, pixelation, overlay and JPEG quality
+border, colour change, recolouring, solarisation, fog, snow, blur, noise, pixelation, overlay and JPEG quality
 (`sample_view_params`), then the whole batch is edited at once: one affine
 map per sample (the grid `affine_grid` would build) and one `grid_sample` for
 the geometry (crop, flip, rotation, border), then the per-sample edits of
@@ -31,6 +31,7 @@ from .pixel_ops import (
     add_haze,
     add_noise,
     add_snow,
+    CHANNEL_ORDERS,
     adjust_colour,
     adjust_gamma,
     composite_overlays,
@@ -39,6 +40,7 @@ from .pixel_ops import (
     overlay_bank,
     pixelate,
     snow_bank,
+    solarize,
 )
 from .view_sources import SourceBank, plan_entries, sample_crop_boxes
 from .views import ViewRecipe
@@ -59,6 +61,8 @@ class ViewParams:
     saturation: torch.Tensor  # (n,) factor
     hue: torch.Tensor  # (n,) fraction of a turn
     grayscale: torch.Tensor  # (n,) bool
+    channels: torch.Tensor  # (n,) index into pixel_ops.CHANNEL_ORDERS, 0 = as they are
+    solarize: torch.Tensor  # (n,) tones at or above it inverted, 2 = none
     gamma: torch.Tensor  # (n,) exponent
     blur_sigma: torch.Tensor  # (n,) pixels, 0 = no blur
     pixelate: torch.Tensor  # (n,) block side, 1 = none
@@ -123,10 +127,14 @@ def _sample_colour(n: int, r: ViewRecipe, gen: torch.Generator) -> dict[str, tor
 
     brightness, contrast, saturation = factor(r.brightness), factor(r.contrast), factor(r.saturation)
     contrast = contrast * torch.where(_coin(n, r.strong_contrast_p, gen), _uniform(n, r.strong_contrast, gen), 1.0)
-    return {"brightness": brightness, "contrast": contrast, "saturation": saturation,
-            "hue": torch.where(jitter, _uniform(n, (-r.hue, r.hue), gen), 0.0),
+    hue = torch.where(jitter, _uniform(n, (-r.hue, r.hue), gen), 0.0)
+    hue = torch.where(_coin(n, r.recolour_p, gen), _uniform(n, (-0.5, 0.5), gen), hue)
+    swapped = _coin(n, r.channel_swap_p, gen)
+    return {"brightness": brightness, "contrast": contrast, "saturation": saturation, "hue": hue,
             "grayscale": _coin(n, r.grayscale_p, gen),
-            "gamma": torch.where(_coin(n, r.gamma_p, gen), _log_uniform(n, r.gamma, gen), 1.0)}
+            "gamma": torch.where(_coin(n, r.gamma_p, gen), _log_uniform(n, r.gamma, gen), 1.0),
+            "channels": torch.where(swapped, torch.randint(1, len(CHANNEL_ORDERS), (n,), generator=gen), 0),
+            "solarize": torch.where(_coin(n, r.solarize_p, gen), _uniform(n, r.solarize_threshold, gen), 2.0)}
 
 
 def _sample_degradations(n: int, r: ViewRecipe, gen: torch.Generator) -> dict[str, torch.Tensor]:
@@ -251,8 +259,10 @@ def render_views(bank: SourceBank, picture_ids: torch.Tensor, regions: torch.Ten
                  recipe: ViewRecipe, size: int, gen: torch.Generator) -> torch.Tensor:
     """Views (n, 3, size, size) in [0, 1] of pictures `picture_ids` with their regions and parameters."""
     x = warp(bank.pixels[picture_ids].float().div_(255.0), params, regions, size)
-    x = adjust_colour(x, params.brightness, params.contrast, params.saturation, params.hue, params.grayscale)
+    x = adjust_colour(x, params.brightness, params.contrast, params.saturation, params.hue, params.grayscale,
+                      params.channels)
     x = adjust_gamma(x, params.gamma)
+    x = solarize(x, params.solarize)
     x = add_haze(x, params.haze, params.haze_decay, gen)
     x = add_snow(x, params.snow, params.snow_keep, snow_bank(size), params.snow_flip)
     x = composite_overlays(x, overlay_bank(size, tuple(recipe.overlay_scale)), params.overlay, params.overlay_place)

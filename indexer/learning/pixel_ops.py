@@ -42,9 +42,14 @@ def _hue_rotation(angle: torch.Tensor) -> torch.Tensor:
     return eye + torch.sin(angle)[:, None, None] * k + (1 - torch.cos(angle))[:, None, None] * kk
 
 
+# The orders of the three colour channels: index 0 leaves them as they are; 5 swaps red and blue.
+CHANNEL_ORDERS = ((0, 1, 2), (0, 2, 1), (1, 0, 2), (1, 2, 0), (2, 0, 1), (2, 1, 0))
+
+
 def adjust_colour(x: torch.Tensor, brightness: torch.Tensor, contrast: torch.Tensor, saturation: torch.Tensor,
-                  hue: torch.Tensor, grayscale: torch.Tensor) -> torch.Tensor:
-    """Brightness, contrast, saturation, hue (in that order, as ColorJitter's fixed order), then grayscale.
+                  hue: torch.Tensor, grayscale: torch.Tensor, channels: torch.Tensor | None = None) -> torch.Tensor:
+    """Brightness, contrast, saturation, hue (in that order, as ColorJitter's fixed order), then grayscale,
+    then the channels put in the order `channels` (an index into CHANNEL_ORDERS, 0 = as they are).
 
     Brightness scales the pixels; contrast blends with the mean luma of the
     brightened image; saturation blends with the pixel's luma; hue rotates the
@@ -60,9 +65,23 @@ def adjust_colour(x: torch.Tensor, brightness: torch.Tensor, contrast: torch.Ten
     matrix = _hue_rotation(2 * math.pi * hue) @ sat
     grey = torch.outer(ones, lum).expand(n, 3, 3)
     matrix = torch.where(grayscale[:, None, None], grey @ matrix, matrix) * (brightness * contrast)[:, None, None]
+    if channels is not None:
+        orders = torch.eye(3)[torch.tensor(CHANNEL_ORDERS)]  # (6, 3, 3): row i of order k picks channel k[i]
+        matrix = orders[channels] @ matrix
     mean = (x.mean(dim=(2, 3)) @ lum) * brightness  # grey is a fixed point of every matrix above
     bias = ((1 - contrast) * mean)[:, None, None].expand(n, 3, 1)
     return torch.baddbmm(bias, matrix, x.reshape(n, c, h * w)).view(n, c, h, w).clamp_(0.0, 1.0)
+
+
+def solarize(x: torch.Tensor, threshold: torch.Tensor) -> torch.Tensor:
+    """Every value at or above the sample's `threshold` inverted (1 - x), as Pillow's ImageOps.solarize does;
+    a threshold above 1 leaves a sample as it is. In place."""
+    chosen = torch.nonzero(threshold <= 1).flatten()
+    if len(chosen) == 0:
+        return x
+    part = x[chosen]
+    x[chosen] = torch.where(part >= threshold[chosen, None, None, None], 1 - part, part)
+    return x
 
 
 def adjust_gamma(x: torch.Tensor, gamma: torch.Tensor) -> torch.Tensor:

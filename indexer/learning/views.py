@@ -84,6 +84,13 @@ class ViewRecipe:
     haze_decay: tuple[float, float] = (1.4, 2.0)  # how fast the veil's finer detail fades (higher: smoother)
     snow_p: float = 0.1
     snow_keep: tuple[float, float] = (0.55, 0.85)  # share of the picture kept as it is under the snow
+    # Recolourings that editors make: the hue turned anywhere round the circle (instead of the jitter's small
+    # shift), the colour channels put in another order (red swapped with blue ...), tones above a threshold
+    # inverted (solarised).
+    recolour_p: float = 0.05
+    channel_swap_p: float = 0.0
+    solarize_p: float = 0.0
+    solarize_threshold: tuple[float, float] = (0.4, 0.8)
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
@@ -123,6 +130,7 @@ class ViewRecipe:
             (self.blur_sigma[0] > 0, f"blur_sigma must be positive, got {self.blur_sigma}"),
             (self.gamma[0] > 0 and self.shot_photons[0] > 0, "gamma and shot_photons must be positive"),
             (self.pixelate_factor[0] >= 1, f"pixelate_factor must be >= 1, got {self.pixelate_factor}"),
+            (self.solarize_threshold[1] <= 1, f"solarize_threshold must lie in [0, 1], got {self.solarize_threshold}"),
             (1 <= self.jpeg_quality[0] and self.jpeg_quality[1] <= 100, "jpeg_quality must lie in 1..100"),
             (0 < self.overlay_scale[1] <= 1, f"overlay_scale must lie in (0, 1], got {self.overlay_scale}"),
             (self.impulse_amount[1] <= 1, f"impulse_amount must be <= 1, got {self.impulse_amount}"),
