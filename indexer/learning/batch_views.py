@@ -26,12 +26,12 @@ import torch.nn.functional as F
 
 from .encoder import IMAGENET_MEAN, IMAGENET_STD
 from .pixel_ops import (
+    CHANNEL_ORDERS,
     OVERLAY_BANK_SIZE,
     SNOW_BANK_SIZE,
     add_haze,
     add_noise,
     add_snow,
-    CHANNEL_ORDERS,
     adjust_colour,
     adjust_gamma,
     composite_overlays,

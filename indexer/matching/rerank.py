@@ -179,8 +179,8 @@ def rerank_fine(query, results: list[dict], candidates: dict[int, str], count: i
     unconfirmed = [r for r in results if r["id"] in candidates and not (r.get("evidence") or {}).get("verified")]
     pending = unconfirmed[:count]
     # Candidates another view found (regions, the mirror) carry that view's higher score until it is settled, and
-    # can fill all `count` places ahead of the query's own best candidates: the first FINE_DIRECT of those are
-    # checked as well.
+    # can fill all `count` places ahead of the query's own best candidates: the first FINE_DIRECT of the query's
+    # own are checked as well.
     direct = [r for r in unconfirmed if not r.get("_other_view")][:FINE_DIRECT]
     pending += [r for r in direct if all(r is not p for p in pending)]
     known = small_features({r["id"]: candidates[r["id"]] for r in pending}, fine=True)
