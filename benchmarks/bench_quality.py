@@ -192,6 +192,13 @@ def _nearsight_predictions(store_dir: Path, records: list[dict], col: dict[str, 
         return metrics.concat(parts), searcher.verdict_threshold, calibration
 
 
+def baseline_predictions(folder: Path, names: list[str], records: list[dict], k: int) -> dict[str, metrics.Predictions]:
+    """pHash's and the thumbnail's top k for every query, over the collection files `names` in `folder`."""
+    xb = baselines.describe_files([folder / n for n in names])
+    xq = baselines.describe_files([Path(r["path"]) for r in records])
+    return {name: baselines.search(name, xq[name], xb[name], k) for name in ("phash", "thumbnail")}
+
+
 def query_groups(records: list[dict]) -> dict[str, np.ndarray]:
     """Per query, the label of each grouping the report breaks results down by."""
     def column(key):
@@ -329,10 +336,8 @@ def run(args) -> dict:
         systems[name] = {"pred": pred, "threshold": threshold, "calibration": calibration}
 
     t0 = time.monotonic()
-    xb = baselines.describe_files([folder / n for n in names])
-    xq = baselines.describe_files([Path(r["path"]) for r in records])
-    for name in ("phash", "thumbnail"):
-        systems[name] = {"pred": baselines.search(name, xq[name], xb[name], args.k)}
+    for name, pred in baseline_predictions(folder, names, records, args.k).items():
+        systems[name] = {"pred": pred}
     systems["phash"]["threshold"] = 1 - PHASH_COMMON_CUT / baselines.PHASH_BITS
     log.info("baselines described and searched in %.1f s", time.monotonic() - t0)
 

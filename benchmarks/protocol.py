@@ -468,7 +468,7 @@ EDITS = (
     ("cross-process", STRONG, cross_process),
     # Recolourings: the hue turned half way round (a product shot offered in another colour) and red swapped with
     # blue; solarised (tones above the middle inverted, Pillow's ImageOps.solarize at 128).
-    ("hue-180", STRONG, lambda im: _hsv_edit(im, _half_turn_hue)),
+    ("hue-180", STRONG, lambda im: _hsv_edit(im, _turn_hue(0.5))),
     ("swap-red-blue", STRONG, lambda im: Image.merge("RGB", im.split()[::-1])),
     ("solarize", STRONG, lambda im: ImageOps.solarize(im, 128)),
 )
@@ -539,7 +539,7 @@ def build_transforms() -> list[Transform]:
         out += [Transform(f"{fn.__name__}-{s}", family, _corruption(fn, s), IMAGENET_C_SEVERITY[s])
                 for fn in fns for s in SEVERITIES]
     out += [Transform("grayscale", "colour", _png(lambda im, rng: im.convert("L").convert("RGB")), MODERATE),
-            Transform("hue-shift", "colour", _png(lambda im, rng: _hsv_edit(im, _shift_hue)), MODERATE)]
+            Transform("hue-shift", "colour", _png(lambda im, rng: _hsv_edit(im, _turn_hue(0.1))), MODERATE)]
     out += [Transform("overlay-caption", "overlay", _png(caption_band), MILD),
             Transform("overlay-text", "overlay", _png(text_overlay), MILD),
             Transform("overlay-shape", "overlay", _png(shape_overlay), MODERATE),
@@ -562,12 +562,11 @@ def build_transforms() -> list[Transform]:
     return out
 
 
-def _half_turn_hue(hsv):
-    hsv[..., 0] = (hsv[..., 0] + 0.5) % 1.0
-
-
-def _shift_hue(hsv):
-    hsv[..., 0] = (hsv[..., 0] + 0.1) % 1.0
+def _turn_hue(turn: float):
+    """An HSV edit turning the hue by `turn` of a full circle."""
+    def edit(hsv):
+        hsv[..., 0] = (hsv[..., 0] + turn) % 1.0
+    return edit
 
 
 FAMILIES = ("jpeg", "crop", "strong", "noise", "blur", "colour", "digital", "overlay", "border", "flip", "rotate",

@@ -112,10 +112,14 @@ def add_queries(work: Path) -> None:
     transforms = protocol.build_transforms()
     if all(t.name in have for t in transforms):
         return
-    refs = collection.references(0)
-    plan = bench_quality.query_plan(refs, len(transforms), bench_quality.QUERIES_PER_TRANSFORM, 0)
+    # The run's seed and tiles per transform, as its results.json recorded them (the defaults otherwise).
+    ran = json.loads((work / "results.json").read_text())["args"] if (work / "results.json").exists() else {}
+    seed = int(ran.get("seed", 0))
+    per_transform = int(ran.get("queries_per_transform", bench_quality.QUERIES_PER_TRANSFORM))
+    refs = collection.references(seed)
+    plan = bench_quality.query_plan(refs, len(transforms), per_transform, seed)
     plan = [(i, j) for i, j in plan if transforms[j].name not in have]
-    records = bench_quality.make_queries(work, refs, transforms, plan, saved["names"], 0)
+    records = bench_quality.make_queries(work, refs, transforms, plan, saved["names"], seed)
     saved["records"] += records
     (work / "queries.json").write_text(json.dumps(saved, default=str))
     print(f"added {len(records)} queries of {len({r['transform'] for r in records})} transforms")
@@ -124,13 +128,8 @@ def add_queries(work: Path) -> None:
 def baseline_figures(work: Path, names: list[str], records: list[dict], gt: np.ndarray, groups: dict,
                      k: int) -> dict[str, dict]:
     """pHash's and the thumbnail's figures on the same queries (`evaluate`)."""
-    from benchmarks import baselines
-
-    xb = baselines.describe_files([work / "collection" / n for n in names])
-    xq = baselines.describe_files([Path(r["path"]) for r in records])
-    return {name: evaluate(baselines.search(name, xq[name], xb[name], k), gt, groups)
-            for name in ("phash", "thumbnail")}
-
+    return {name: evaluate(pred, gt, groups)
+            for name, pred in bench_quality.baseline_predictions(work / "collection", names, records, k).items()}
 
 if __name__ == "__main__":
     main()

@@ -345,8 +345,7 @@ class Searcher:
             have = {i for _, i in head}
             by_part = _better_of([], [t for part in hits[q * cells:(q + 1) * cells] for t in part])
             extra = [(d, i) for d, _, i in by_part if i not in have][:QUERY_PART_PLACES]
-            have.update(i for _, i in extra)
-            out.append(head + extra + [(d, i) for d, i in whole[self.verify_regions:] if i not in have])
+            out.append(head + extra + whole[self.verify_regions:])  # a file in both takes one place (`_with_regions`)
         return out, self.verify_regions + QUERY_PART_PLACES
 
     def _search(self, xq: np.ndarray, n: int, excludes: Sequence[Collection[int]]) -> list[list[tuple[float, int]]]:

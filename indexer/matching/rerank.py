@@ -182,7 +182,8 @@ def rerank_fine(query, results: list[dict], candidates: dict[int, str], count: i
     # can fill all `count` places ahead of the query's own best candidates: the first FINE_DIRECT of the query's
     # own are checked as well.
     direct = [r for r in unconfirmed if not r.get("_other_view")][:FINE_DIRECT]
-    pending += [r for r in direct if all(r is not p for p in pending)]
+    chosen = {r["id"] for r in pending}
+    pending += [r for r in direct if r["id"] not in chosen]
     known = small_features({r["id"]: candidates[r["id"]] for r in pending}, fine=True)
     checked = [r for r in pending if r["id"] in known]
     if not checked:
