@@ -103,3 +103,37 @@ def test_work_started_from_inside_the_pool_runs_where_it_is_without_waiting_for_
     for x, inner in enumerate(results):
         assert [r[:2] for r in inner] == [(x, 0), (x, 1), (x, 2)]
         assert len({r[2] for r in inner}) == 1  # all in the outer item's own thread
+
+
+def test_a_batch_brought_to_the_input_side_on_the_cores_equals_the_pictures_one_at_a_time():
+    # `inputs.square_batch` shares a batch of PARALLEL_BATCH pictures or more among the cores; the reference is
+    # Pillow's resize of each picture on its own (`resize_center_crop`), in order.
+    from nearsight.indexer.learning.inputs import PARALLEL_BATCH, resize_center_crop, square_batch
+
+    photos = [_photo(name) for name in ("astronaut", "coffee", "chelsea", "rocket")]
+    images = [photos[k % 4].rotate(7 * k, expand=True) for k in range(PARALLEL_BATCH + 3)]
+    batch = square_batch(images, 96)
+    assert batch.shape == (len(images), 96, 96, 3) and batch.dtype == np.uint8
+    for row, im in zip(batch, images):
+        assert np.array_equal(row, np.asarray(resize_center_crop(im, 96)))
+
+
+def _in_forked_child(queue):
+    queue.put(cores.each_on_cores(lambda x: x + 1, [1, 2, 3]))
+
+
+def test_a_process_forked_after_the_pool_started_gets_its_own_pool():
+    # The pool's threads do not survive fork(); without `_forget_pool` work handed to them in the child waits
+    # for ever (Python's documentation of os.fork: only the calling thread survives in the child).
+    import multiprocessing
+
+    cores.each_on_cores(lambda x: x, [0, 1])  # the pool exists in this process
+    context = multiprocessing.get_context("fork")
+    queue = context.Queue()
+    child = context.Process(target=_in_forked_child, args=(queue,))
+    child.start()
+    child.join(60)
+    if child.is_alive():
+        child.kill()
+    assert child.exitcode == 0
+    assert queue.get(timeout=5) == [2, 3, 4]

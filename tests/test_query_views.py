@@ -133,3 +133,25 @@ def test_a_captioned_band_at_the_foot_is_a_frame_and_its_caption_stays_outside()
     assert box is not None
     assert box[:3] == (0, 0, w)
     assert h - band - 4 <= box[3] <= h - band  # the caption's band is cut off, at most 4 lines of picture with it
+
+
+TURNS = {"mirror": ImageOps.mirror, "flip": ImageOps.flip,
+         "left": lambda im: im.transpose(Image.Transpose.ROTATE_90),
+         "right": lambda im: im.transpose(Image.Transpose.ROTATE_270)}
+
+
+@pytest.mark.parametrize("name", ["astronaut", "coffee", "chelsea", "rocket"])
+@pytest.mark.parametrize("turn", sorted(TURNS))
+def test_a_turned_view_made_from_the_encoder_s_square_is_what_the_turned_picture_gives(name, turn):
+    # `Searcher._squares`: the other views turn the query's square at the model's input side instead of bringing
+    # each turned large picture down again. Reference: Pillow's resize of the turned picture itself
+    # (`resize_center_crop` of it). A mirror or flip is exact; a quarter turn swaps the order of Pillow's two
+    # separable passes, which can round one grey level the other way.
+    from nearsight.indexer.learning.inputs import resize_center_crop, square_batch
+
+    im = _photo(name)
+    square = Image.fromarray(square_batch([im], 128)[0])
+    ours = np.asarray(TURNS[turn](square), dtype=int)
+    reference = np.asarray(resize_center_crop(TURNS[turn](im), 128), dtype=int)
+    assert ours.shape == reference.shape == (128, 128, 3)
+    assert np.abs(ours - reference).max() <= (0 if turn in ("mirror", "flip") else 1)

@@ -108,3 +108,21 @@ def test_a_one_image_query_runs_without_importing_pytorch(tmp_path):
     out = run_fresh(["similar", "--json", "--store", tmp_path / "store", photos / "03.jpg"], ("torch", "onnxruntime"))
     assert out["code"] == 0 and out["loaded"] == ["onnxruntime"]
     assert "03.jpg" in out["stdout"]
+
+
+def test_the_runtime_s_input_is_torchvision_s_normalisation_of_the_pixels():
+    # `inputs.standardised` looks each 8-bit level up in a table computed once. Reference: torchvision's
+    # transforms.v2 ToDtype(float32, scale=True) then Normalize with the same channel statistics, on every
+    # level of every channel and on scikit-image's photos.
+    import torch
+    from torchvision.transforms import v2
+
+    from nearsight.indexer.learning.inputs import IMAGENET_MEAN, IMAGENET_STD, square_batch, standardised
+
+    reference = v2.Compose([v2.ToDtype(torch.float32, scale=True), v2.Normalize(IMAGENET_MEAN, IMAGENET_STD)])
+    levels = np.repeat(np.arange(256, dtype=np.uint8), 3).reshape(1, 16, 16, 3)
+    for batch in (levels, square_batch(_photos(), 96)):
+        expected = reference(torch.from_numpy(batch).permute(0, 3, 1, 2).contiguous()).numpy()
+        ours = standardised(batch)
+        assert ours.dtype == np.float32 and ours.shape == expected.shape
+        assert np.abs(ours - expected).max() <= 1e-6

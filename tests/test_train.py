@@ -13,7 +13,7 @@ import pytest
 import torch
 from PIL import Image
 
-from nearsight.indexer.learning.edits import EDIT_KINDS, apply_edit, random_edit
+from nearsight.indexer.learning.edits import DEFAULT_STRENGTHS, EDIT_KINDS, apply_edit, edited_copies, random_edit
 from nearsight.indexer.learning.embed import embed_files, embed_images
 from nearsight.indexer.learning.encoder import create_encoder, preprocess
 from nearsight.indexer.core.errors import NearsightError, NotReadyError, UsageError
@@ -195,6 +195,21 @@ def test_edits_produce_valid_changed_images(kind):
         assert 0.4 <= edited.size[0] / original.size[0] <= 0.8
     if kind == "border":
         assert edited.size[0] >= original.size[0] and edited.size[1] >= original.size[1] and not same_size
+
+
+def test_copies_edited_on_the_cores_do_not_depend_on_the_threads():
+    # Calibration and the fusion fit edit their copies on every core (`edited_copies`): the kinds and seeds are
+    # drawn in order first, so one seed gives the same copies, each what `apply_edit` makes with its own seed.
+    photos = [im for _, im in skimage_photos()[:4]] * 3
+    first, kinds = edited_copies(photos, EDIT_KINDS, DEFAULT_STRENGTHS, np.random.default_rng(7))
+    again, kinds_again = edited_copies(photos, EDIT_KINDS, DEFAULT_STRENGTHS, np.random.default_rng(7))
+    assert kinds == kinds_again and len(first) == len(photos) and set(kinds) <= set(EDIT_KINDS)
+    assert len(set(kinds)) > 1  # 12 draws from 7 kinds
+    assert all(np.array_equal(np.asarray(a), np.asarray(b)) for a, b in zip(first, again))
+    rng = np.random.default_rng(7)
+    drawn = [(str(rng.choice(list(EDIT_KINDS))), int(rng.integers(2**63))) for _ in photos]
+    for image, copy, (kind, seed) in zip(photos, first, drawn):
+        assert np.array_equal(np.asarray(copy), np.asarray(apply_edit(image, kind, np.random.default_rng(seed))))
 
 
 def test_random_edit_records_its_kind_and_rejects_unknown_kinds():

@@ -26,9 +26,10 @@ from pathlib import Path
 
 import numpy as np
 
+from ..core.cores import each_on_cores
 from ..core.errors import ImageReadError, NotReadyError, UsageError
 from ..core.rates import counts_at_or_above, fit_mixture, wilson_interval
-from ..learning.edits import DEFAULT_STRENGTHS, EDIT_KINDS, EditStrengths, apply_edit
+from ..learning.edits import DEFAULT_STRENGTHS, EDIT_KINDS, EditStrengths, edited_copies
 from ..learning.embed import embed_images
 from ..matching import index as faiss_index
 from ..matching.generations import threshold_for_precision
@@ -108,12 +109,18 @@ def _originals(store: Store, card: dict, ids: np.ndarray, meta: dict, count: int
 def read_originals(rows: list[int], paths: list[str], size: int) -> list[tuple[int, object]]:
     """(row, image) of each original to edit, decoded once for every tier at DECODE_FACTOR times the model's
     input; one that cannot be read any more (changed or gone since the scan) is left out with a warning."""
-    out = []
-    for row, path in zip(rows, paths):
+    def read(path: str):
         try:
-            out.append((row, read_image(path, max_side=DECODE_FACTOR * size)[0]))
+            return read_image(path, max_side=DECODE_FACTOR * size)[0]
         except (ImageReadError, OSError) as exc:
-            log.warning("calibration skips %s: %s", path, exc)
+            return exc
+
+    out = []
+    for row, path, image in zip(rows, paths, each_on_cores(read, paths)):  # decoders release the GIL
+        if isinstance(image, Exception):
+            log.warning("calibration skips %s: %s", path, image)
+        else:
+            out.append((row, image))
     return out
 
 
@@ -122,15 +129,11 @@ def positive_scores(encoder, size: int, whitening, xb: np.ndarray, originals: li
     """Cosine between each edited copy of `originals` ((row, image), `read_originals`) and its original's
     indexed vector; the edit kind of each, the copies themselves, the row of each one's original and the
     copies' vectors."""
-    edited, targets, edit_kinds = [], [], []
-    for row, original in originals:
-        for _ in range(per_original):
-            kind = str(rng.choice(list(kinds)))
-            edited.append(apply_edit(original, kind, rng, strengths))
-            targets.append(row)
-            edit_kinds.append(kind)
-    if not edited:
+    if not originals:
         raise NotReadyError("no original could be read for calibration")
+    targets = [row for row, _ in originals for _ in range(per_original)]
+    edited, edit_kinds = edited_copies([image for _, image in originals for _ in range(per_original)], kinds,
+                                       strengths, rng)
     xq = whitening.apply(embed_images(encoder, edited, size))
     return np.einsum("ij,ij->i", xq, xb[targets]), edit_kinds, edited, targets, xq
 
@@ -276,8 +279,8 @@ def _query_verdict(store, index, whitening, encoder, card, ids, meta, same_pairs
     searcher = Searcher.for_build(store, index, whitening, encoder, card, near_threshold, regions=regions)
     strengths, kinds = TIER_EDITS["near"]
 
-    def edit(image, rng):
-        return apply_edit(image, str(rng.choice(list(kinds))), rng, strengths)
+    def edit(images, rng):
+        return edited_copies(images, kinds, strengths, rng)[0]
 
     return calibrate_query(searcher, ids, meta, same_pairs, edited, [int(ids[r]) for r in targets], config.query,
                            rng, edit, xq_edited=xq)

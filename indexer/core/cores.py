@@ -21,6 +21,18 @@ _LOCK = threading.Lock()
 _INSIDE = threading.local()  # set in the pool's threads: work they start runs where they are (no deadlock)
 
 
+def _forget_pool() -> None:
+    # A process forked from one whose pool has started must not inherit it: its threads do not exist
+    # in the child, and work handed to them would wait for ever. The child starts its own when it needs one.
+    global _POOL, _LOCK
+    _POOL = None
+    _LOCK = threading.Lock()
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_forget_pool)
+
+
 def usable_cores() -> int:
     """Cores this process may run on (its CPU affinity where the system tells it, else all of them)."""
     return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)

@@ -29,6 +29,7 @@ from dataclasses import dataclass
 import numpy as np
 from PIL import Image, ImageDraw, ImageEnhance, ImageFont, ImageOps
 
+from ..core.cores import each_on_cores
 from ..core.errors import UsageError
 
 EDIT_KINDS = ("recompress", "resize", "crop", "color", "overlay", "border", "rotate", "combo")
@@ -185,6 +186,18 @@ def apply_edit(
     if kind not in _EDITS:
         raise UsageError(f"unknown edit kind {kind!r}; choose one of {', '.join(EDIT_KINDS)}")
     return _EDITS[kind](im, rng, strengths)
+
+
+def edited_copies(images: list, kinds: tuple[str, ...], strengths: EditStrengths, rng) -> tuple[list, list[str]]:
+    """One edit of each image, its kind drawn from `kinds`, on every core (Pillow releases the GIL): the kinds
+    and a seed per copy are drawn from `rng` in order first, so the copies do not depend on the threads."""
+    drawn = [(str(rng.choice(list(kinds))), int(rng.integers(2**63))) for _ in images]
+
+    def edit(job):
+        image, (kind, seed) = job
+        return apply_edit(image, kind, np.random.default_rng(seed), strengths)
+
+    return each_on_cores(edit, list(zip(images, drawn))), [kind for kind, _ in drawn]
 
 
 def random_edit(

@@ -18,6 +18,12 @@ IMAGENET_MEAN = (0.485, 0.456, 0.406)
 IMAGENET_STD = (0.229, 0.224, 0.225)
 
 
+# From this many pictures on, `square_batch` shares them among the cores (below it, handing work to threads
+# costs about what it saves) ...
+PARALLEL_BATCH = 8
+PARALLEL_AREA = 4  # ... when their mean area is at least this many times the input's
+
+
 def rgb(im: Image.Image) -> Image.Image:
     return im if im.mode == "RGB" else im.convert("RGB")
 
@@ -41,13 +47,40 @@ def square_batch(images: Sequence[Image.Image], size: int) -> np.ndarray:
     used to it."""
     if not images:
         return np.zeros((0, size, size, 3), np.uint8)
-    return np.stack([np.asarray(resize_center_crop(rgb(im), size), dtype=np.uint8) for im in images])
+    from ..core.cores import each_on_cores, usable_cores
+
+    out = np.empty((len(images), size, size, 3), np.uint8)
+
+    def fill(rows: range) -> None:
+        for r in rows:
+            out[r] = np.asarray(resize_center_crop(rgb(images[r]), size), dtype=np.uint8)
+
+    # Pillow resizes with the GIL released: a batch of large pictures (queries, calibration's copies) is
+    # brought down on every core, one share of the batch a core. Pictures near the input side cost so little
+    # to resize that the threads mostly wait for the GIL: 0.03 -> 0.05 ms a picture, against 0.8 -> 0.4 ms
+    # for 512 x 384 ones brought to 128 (2 cores).
+    large = sum(im.size[0] * im.size[1] for im in images) >= PARALLEL_AREA * size * size * len(images)
+    shares = usable_cores() if len(images) >= PARALLEL_BATCH and large else 1
+    each_on_cores(fill, [range(k, len(images), shares) for k in range(shares)])
+    return out
 
 
 def standardised(batch: np.ndarray) -> np.ndarray:
     """(n, 3, size, size) float32 in the encoder's input units from a `square_batch`: [0, 1], then the
     fixed channel statistics, in the same float32 operations as `encoder.normalize_tensor`."""
-    x = np.ascontiguousarray(batch.transpose(0, 3, 1, 2)).astype(np.float32) / np.float32(255.0)
-    mean = np.array(IMAGENET_MEAN, np.float32).reshape(3, 1, 1)
-    std = np.array(IMAGENET_STD, np.float32).reshape(3, 1, 1)
-    return (x - mean) / std
+    # Each channel's 256 possible values are computed once, in those operations, and looked up: the same
+    # numbers as computing every pixel (tests/test_runtime.py), in one pass over the batch instead of five.
+    out = np.empty((batch.shape[0], 3, batch.shape[1], batch.shape[2]), np.float32)
+    for c in range(3):
+        np.take(_TABLE[c], batch[..., c], out=out[:, c])
+    return out
+
+
+def _channel_table() -> np.ndarray:
+    levels = np.arange(256, dtype=np.float32) / np.float32(255.0)
+    mean = np.array(IMAGENET_MEAN, np.float32).reshape(3, 1)
+    std = np.array(IMAGENET_STD, np.float32).reshape(3, 1)
+    return (levels[None, :] - mean) / std
+
+
+_TABLE = _channel_table()  # (3, 256) float32: channel c's value for each 8-bit level

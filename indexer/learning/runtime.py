@@ -48,6 +48,10 @@ class OnnxEncoder:
         options.intra_op_num_threads = threads or usable_cores()
         options.inter_op_num_threads = 1
         options.log_severity_level = 3  # warnings about unused initialisers are not the user's business
+        # Between two runs the session's threads would spin waiting for work, on the cores that then resize
+        # the next batch, decode and verify: calibration, which alternates the two, took 32.0-32.8 s against
+        # 33.6-35.1 with spinning (three pairs, benchmarks/results/naive.md).
+        options.add_session_config_entry("session.intra_op.allow_spinning", "0")
         self.session = ort.InferenceSession(data, options, providers=["CPUExecutionProvider"])
         self.input_name = self.session.get_inputs()[0].name
         self.dim = int(card["dim"])

@@ -81,7 +81,8 @@ def fit_classic_weight(store, model_dir, ids: np.ndarray, xb: np.ndarray, *, see
                        originals: int = FIT_ORIGINALS) -> WeightFit:
     """Fit the weight for a store's collection: `ids`/`xb` are its files and stored vectors (raw)."""
     from ..core.errors import ImageReadError
-    from ..learning.edits import DEFAULT_STRENGTHS, EDIT_KINDS, apply_edit
+    from ..core.cores import each_on_cores
+    from ..learning.edits import DEFAULT_STRENGTHS, EDIT_KINDS, edited_copies
     from ..learning.embed import embed_images
     from ..learning.runtime import load_encoder
     from ..reading.images import read_image
@@ -95,19 +96,20 @@ def fit_classic_weight(store, model_dir, ids: np.ndarray, xb: np.ndarray, *, see
         return WeightFit(DEFAULT_CLASSIC_WEIGHT, reason=f"fewer than {MIN_IMAGES} images: the default weight")
     rng = np.random.default_rng(seed)
     sources = store.catalog.pixel_sources(ids.tolist())
-    edited, targets = [], []
-    for row in np.sort(rng.choice(len(ids), min(originals, len(ids)), replace=False)).tolist():
-        source = sources.get(int(ids[row]))
-        if source is None:
-            continue
+    rows = [row for row in np.sort(rng.choice(len(ids), min(originals, len(ids)), replace=False)).tolist()
+            if sources.get(int(ids[row])) is not None]
+
+    def read(row: int):
         try:
-            image, _info = read_image(store.pixels_path(source), max_side=2 * size)
+            return read_image(store.pixels_path(sources[int(ids[row])]), max_side=2 * size)[0]
         except (ImageReadError, OSError) as exc:  # changed or gone since the scan
             log.debug("weight fit skips %s: %s", ids[row], exc)
-            continue
-        for _ in range(EDITS_PER_ORIGINAL):
-            edited.append(apply_edit(image, str(rng.choice(EDIT_KINDS)), rng, DEFAULT_STRENGTHS))
-            targets.append(row)
+            return None
+
+    read_rows = [(row, image) for row, image in zip(rows, each_on_cores(read, rows)) if image is not None]
+    targets = [row for row, _ in read_rows for _ in range(EDITS_PER_ORIGINAL)]
+    edited, _kinds = edited_copies([image for _, image in read_rows for _ in range(EDITS_PER_ORIGINAL)], EDIT_KINDS,
+                                   DEFAULT_STRENGTHS, rng)
     if len(edited) < 2 * MIN_IMAGES:
         return WeightFit(DEFAULT_CLASSIC_WEIGHT, reason="too few readable images: the default weight")
     pool = np.unique(np.r_[rng.choice(len(ids), min(NEGATIVE_SAMPLE, len(ids)), replace=False), targets])

@@ -356,13 +356,22 @@ class Searcher:
 
     def _mirror_rows(self, images, n: int, excludes) -> list[list[tuple[float, int]]]:
         """`_search` of each query image's mirror image."""
-        return self._search(self.vectors_for_images([ImageOps.mirror(im) for im in images]), n, excludes)
+        return self._search(self.vectors_for_images([ImageOps.mirror(im) for im in self._squares(images)]), n, excludes)
+
+    def _squares(self, images) -> list[Image.Image]:
+        """Each query image as the encoder sees it (its central square at the input side). A mirror image or
+        a quarter turn of that square is what the encoder sees of the turned image (up to a pixel of the
+        centre when the sides' difference is odd), so each large picture is brought down once, not once a view."""
+        from ..learning.inputs import square_batch
+
+        return [Image.fromarray(square) for square in square_batch(images, self.size)]
 
     def _turned_rows(self, images, turns, n: int, excludes) -> list[list[tuple[float, int]]]:
         """Per query image, `_search` of each of its views `turns` (functions of an image: its mirror
         image, itself upside down, a quarter-turn), in one forward pass, each id with the best of its
         similarities."""
-        views = [turn(im) for turn in turns for im in images]
+        squares = self._squares(images)
+        views = [turn(im) for turn in turns for im in squares]
         found = self._search(self.vectors_for_images(views), n, list(excludes) * len(turns))
         best = found[: len(images)]
         for t in range(1, len(turns)):

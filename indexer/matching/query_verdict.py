@@ -33,6 +33,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..core.cores import each_on_cores
 from ..core.errors import ImageReadError, UsageError
 from ..core.rates import wilson_interval
 from ..reading.images import read_image
@@ -211,17 +212,17 @@ def copy_like(verified: list[dict], positives: list[dict], quantile: float = COP
 def own_images(searcher, ids: np.ndarray, rows: list[int], max_side: int) -> list[tuple[int, int, object]]:
     """(row, file id, pixels) of indexed files, read from the store's small copies."""
     sources = searcher.store.catalog.pixel_sources([int(ids[r]) for r in rows])
-    out = []
-    for r in rows:
-        i = int(ids[r])
-        row = sources.get(i)
-        if row is None:
-            continue
+    wanted = [(r, int(ids[r])) for r in rows if int(ids[r]) in sources]
+
+    def read(item):
+        r, i = item
         try:
-            out.append((r, i, read_image(searcher.store.pixels_path(row), max_side=max_side)[0]))
+            return r, i, read_image(searcher.store.pixels_path(sources[i]), max_side=max_side)[0]
         except (ImageReadError, OSError) as exc:
             log.debug("query calibration skips %s: %s", i, exc)
-    return out
+            return None
+
+    return [found for found in each_on_cores(read, wanted) if found is not None]  # decoders release the GIL
 
 
 def calibrate_query(searcher, ids: np.ndarray, meta: dict, same_pairs: set, edited: list, targets: list[int],
@@ -229,7 +230,7 @@ def calibrate_query(searcher, ids: np.ndarray, meta: dict, same_pairs: set, edit
     """The query verdict for the generation `searcher` answers from: (verdict, score samples).
 
     `edited` are synthetic copies of the indexed files `targets` (calibrate.py's positives);
-    `edit(image, rng)` makes an edited negative query; `xq_edited` are the copies' vectors if known."""
+    `edit(images, rng)` makes edited negative queries, one of each image; `xq_edited` are the copies' vectors if known."""
     config.validate()
     content = searcher.store.catalog.content_ids_of(ids.tolist())
     dups = known_duplicates(ids, meta, content, same_pairs)
@@ -238,7 +239,9 @@ def calibrate_query(searcher, ids: np.ndarray, meta: dict, same_pairs: set, edit
     plain = set(rng.choice(n, min(config.plain_negatives, n), replace=False).tolist())
     edited_rows = set(rng.choice(n, min(config.edited_negatives, n), replace=False).tolist())
     own = own_images(searcher, ids, sorted(plain | edited_rows), 2 * searcher.size)
-    queries = [(i, im) for r, i, im in own if r in plain] + [(i, edit(im, rng)) for r, i, im in own if r in edited_rows]
+    to_edit = [(i, im) for r, i, im in own if r in edited_rows]
+    queries = [(i, im) for r, i, im in own if r in plain] + list(zip([i for i, _ in to_edit],
+                                                                   edit([im for _, im in to_edit], rng)))
     negatives, likely = negative_answers(searcher, queries, dups)
     # A verified best result is taken for an unknown duplicate (and left out of the negatives) only when the
     # descriptor agrees, scoring it like most of the synthetic copies do: a look-alike that shares a drawn
