@@ -6,7 +6,7 @@ upside down, a quarter turn either way and its nine parts. This measures, on sci
 512 x 384 (the size calibration's copies are made at for a 128-px model), rounds interleaved:
 
 * bringing a batch to the input side (`inputs.square_batch`) one picture after another, and shared among the
-  cores (`PARALLEL_BATCH`, `PARALLEL_AREA`), for large pictures and for parts near the input side;
+  cores (`PARALLEL_BATCH`), for large pictures, for their parts and for pictures at the input side already;
 * a round of query views (32 queries: each one's four turned views, from the picture itself as before and
   from its square as `Searcher._squares` does now, and its nine parts) on ONNX Runtime sessions with and
   without the threads' spinning between runs.
@@ -46,6 +46,7 @@ def main() -> None:
     parser.add_argument("--out", type=Path)
     args = parser.parse_args()
 
+    import numpy as np
     import onnxruntime as ort
     import skimage.data
     from PIL import Image
@@ -85,12 +86,28 @@ def main() -> None:
         embed_images(encoder, [t(q) for t in turns for q in base], SIZE)
         embed_images(encoder, parts, SIZE)
 
+    at_side = [p.resize((170, SIZE), Image.BILINEAR) for p in photos] * 8  # 64, shorter side at the input's
+
+    def forced(batch):  # pictures at the input side, shared among the cores as a batch to resize is
+        from nearsight.indexer.core.cores import each_on_cores, usable_cores
+
+        out = np.empty((len(batch), SIZE, SIZE, 3), np.uint8)
+
+        def fill(rows):
+            for r in rows:
+                out[r] = np.asarray(inputs.resize_center_crop(batch[r], SIZE), dtype=np.uint8)
+
+        each_on_cores(fill, [range(k, len(batch), usable_cores()) for k in range(usable_cores())])
+
     routes = {
         "square_batch, 32 pictures of 512 x 384, one after another": lambda: squares(queries, False),
         "square_batch, 32 pictures of 512 x 384, on the cores": lambda: squares(queries, True),
-        "square_batch, 288 parts of 170 x 128, one after another": lambda: squares(parts, False),
-        "square_batch, 288 parts of 170 x 128, as shipped (one after another: near the input side)":
+        "square_batch, 288 parts of 256 x 192, one after another": lambda: squares(parts, False),
+        "square_batch, 288 parts of 256 x 192, on the cores":
             lambda: squares(parts, True),
+        "square_batch, 64 pictures at the input side, one after another (as shipped: nothing to resize)":
+            lambda: squares(at_side, True),
+        "the same 64 shared among the cores": lambda: forced(at_side),
         "views of 32 queries, turned pictures, threads spinning (before)": lambda: views(spinning, False),
         "views of 32 queries, turned squares, threads spinning": lambda: views(spinning, True),
         "views of 32 queries, turned squares, no spinning (as shipped)": lambda: views(quiet, True),
@@ -109,7 +126,7 @@ def main() -> None:
              f"Command: `.venv/bin/python benchmarks/bench_query_views.py{' ' + ' '.join(sys.argv[1:]) if sys.argv[1:] else ''}`",
              f"({args.rounds} interleaved rounds, medians; the default encoder at {SIZE} px, random weights, ONNX Runtime).",
              "", "| route | median (ms) | against the first of its group |", "|---|---:|---:|"]
-    groups = [names[0:2], names[2:4], names[4:7]]
+    groups = [names[0:2], names[2:4], names[4:6], names[6:9]]
     for group in groups:
         for name in group:
             lines.append(f"| {name} | {1000 * medians[name]:.1f} | {medians[name] / medians[group[0]]:.2f} |")

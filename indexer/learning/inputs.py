@@ -18,10 +18,9 @@ IMAGENET_MEAN = (0.485, 0.456, 0.406)
 IMAGENET_STD = (0.229, 0.224, 0.225)
 
 
-# From this many pictures on, `square_batch` shares them among the cores (below it, handing work to threads
-# costs about what it saves) ...
+# From this many pictures (to resize, for `square_batch`) on, `square_batch` and `standardised` share a batch
+# among the cores: below it, handing work to threads costs about what it saves.
 PARALLEL_BATCH = 8
-PARALLEL_AREA = 4  # ... when their mean area is at least this many times the input's
 
 
 def rgb(im: Image.Image) -> Image.Image:
@@ -55,12 +54,12 @@ def square_batch(images: Sequence[Image.Image], size: int) -> np.ndarray:
         for r in rows:
             out[r] = np.asarray(resize_center_crop(rgb(images[r]), size), dtype=np.uint8)
 
-    # Pillow resizes with the GIL released: a batch of large pictures (queries, calibration's copies) is
-    # brought down on every core, one share of the batch a core. Pictures near the input side cost so little
-    # to resize that the threads mostly wait for the GIL: 0.03 -> 0.05 ms a picture, against 0.8 -> 0.4 ms
-    # for 512 x 384 ones brought to 128 (2 cores).
-    large = sum(im.size[0] * im.size[1] for im in images) >= PARALLEL_AREA * size * size * len(images)
-    shares = usable_cores() if len(images) >= PARALLEL_BATCH and large else 1
+    # Pillow resizes with the GIL released: a batch to resize (queries, their parts, calibration's copies) is
+    # shared among the cores, one share a core: 32 pictures of 512 x 384 brought to 128 in 0.5 of the time, their
+    # 288 parts in 0.87. Pictures whose shorter side is the input side already are only cut, and on the cores
+    # they took 1.6-1.8 times as long, the threads waiting for the GIL (2 cores, benchmarks/results/query-views.md).
+    to_resize = sum(1 for im in images if min(im.size) != size)
+    shares = usable_cores() if to_resize >= PARALLEL_BATCH else 1
     each_on_cores(fill, [range(k, len(images), shares) for k in range(shares)])
     return out
 
@@ -69,10 +68,20 @@ def standardised(batch: np.ndarray) -> np.ndarray:
     """(n, 3, size, size) float32 in the encoder's input units from a `square_batch`: [0, 1], then the
     fixed channel statistics, in the same float32 operations as `encoder.normalize_tensor`."""
     # Each channel's 256 possible values are computed once, in those operations, and looked up: the same
-    # numbers as computing every pixel (tests/test_runtime.py), in one pass over the batch instead of five.
-    out = np.empty((batch.shape[0], 3, batch.shape[1], batch.shape[2]), np.float32)
-    for c in range(3):
-        np.take(_TABLE[c], batch[..., c], out=out[:, c])
+    # numbers as computing every pixel (tests/test_runtime.py), in one pass over the batch instead of five,
+    # shared among the cores (NumPy's take releases the GIL): 11 -> 4.3 ms for 64 pictures of 128 px, 2 cores.
+    from ..core.cores import each_on_cores, usable_cores
+
+    n = batch.shape[0]
+    out = np.empty((n, 3, batch.shape[1], batch.shape[2]), np.float32)
+
+    def fill(rows: slice) -> None:
+        for c in range(3):
+            np.take(_TABLE[c], batch[rows, ..., c], out=out[rows, c])
+
+    shares = usable_cores() if n >= PARALLEL_BATCH else 1
+    bounds = np.linspace(0, n, shares + 1).astype(int)
+    each_on_cores(fill, [slice(a, b) for a, b in zip(bounds[:-1], bounds[1:])])
     return out
 
 
