@@ -235,3 +235,39 @@ def test_an_incremental_build_keeps_the_region_index_equal_to_a_fresh_one(photos
     assert updated.ntotal == 9 * 12 and len(set(ids_a.tolist())) == 12
     np.testing.assert_array_equal(ids_a, ids_b)
     np.testing.assert_allclose(xa, xb, atol=1e-6)
+
+
+def test_an_indexed_file_asked_as_it_is_takes_its_stored_vectors_with_the_same_answers(photos, tmp_path):
+    """Calibration asks the collection's own files as they are; their vector and their parts' vectors are the ones
+    the index run made from the same small copy (`Searcher.own_parts`), so they are not embedded again. The reference
+    is what the query path computes itself: the small copy read at twice the input side, embedded whole and cut on
+    the region grid (`cut_regions`), and the answers of `neighbours` without the stored vectors."""
+    from nearsight.indexer.building.build import load_vectors
+    from nearsight.indexer.reading.images import read_image
+
+    folder, _ = photos
+    with _store(tmp_path / "store") as store:
+        run_index(store, [folder], progress=False, train_config=TrainConfig(**TINY), calibrate=False)
+        searcher = Searcher(store)
+        ids, xb = load_vectors(store, searcher.card["version"])
+        xb = searcher.whitening.apply(xb)
+        sources = store.catalog.pixel_sources(ids.tolist())
+        images = [read_image(store.pixels_path(sources[int(i)]), max_side=2 * searcher.size)[0] for i in ids]
+        own = searcher.own_parts(ids.tolist())
+        assert sorted(own) == sorted(ids.tolist())
+        for i, im in zip(ids.tolist(), images):
+            parts = searcher.vectors_for_images(cut_regions(im, searcher.region_grid))
+            np.testing.assert_allclose(own[i], parts, atol=1e-4)
+        np.testing.assert_allclose(xb, searcher.vectors_for_images(images), atol=1e-4)
+        excludes = [{int(i)} for i in ids]
+        embedded = []
+        real = searcher.vectors_for_images
+        searcher.vectors_for_images = lambda batch: (embedded.append(len(batch)), real(batch))[1]
+        asked = searcher.neighbours(real(images), 5, excludes=excludes, images=images)
+        cost_asked, embedded[:] = sum(embedded), []
+        given = searcher.neighbours(xb, 5, excludes=excludes, images=images, parts=[own[int(i)] for i in ids])
+        # Every file's best (another photo) is unverified, so each is cut into its 9 parts, now not embedded.
+        assert sum(embedded) == cost_asked - 9 * len(images)
+        assert [[r["id"] for r in a] for a in asked] == [[r["id"] for r in g] for g in given]
+        np.testing.assert_allclose([r["similarity"] for a in asked for r in a],
+                                   [r["similarity"] for g in given for r in g], atol=1e-4)

@@ -270,7 +270,7 @@ def per_kind_recall(scores: np.ndarray, kinds: list[str], t: float) -> dict:
     return out
 
 
-def _query_verdict(store, index, whitening, encoder, card, ids, meta, same_pairs, near_copies, near_threshold,
+def _query_verdict(store, index, whitening, encoder, card, ids, xb, meta, same_pairs, near_copies, near_threshold,
                    config: CalibrationConfig, rng, regions=(None, 0)) -> tuple[dict | None, dict]:
     """The query verdict (query_verdict.py), asked through the searcher that will answer users."""
     from ..matching.query import Searcher
@@ -283,7 +283,7 @@ def _query_verdict(store, index, whitening, encoder, card, ids, meta, same_pairs
         return edited_copies(images, kinds, strengths, rng)[0]
 
     return calibrate_query(searcher, ids, meta, same_pairs, edited, [int(ids[r]) for r in targets], config.query,
-                           rng, edit, xq_edited=xq)
+                           rng, edit, xq_edited=xq, xb=xb)
 
 
 def grouping_threshold(near: dict, query: dict | None, n_images: int) -> dict:
@@ -362,7 +362,7 @@ def calibrate(store: Store, *, model_dir: Path, index, ids: np.ndarray, xb: np.n
     if all(p is None for p in tiers["near"]["curve"]["precision"]):
         raise NotReadyError("calibration could not separate copies from other pairs in this collection "
                             f"({len(hits)} close pairs above {floor:.3f}); the default thresholds stay")
-    query, query_samples = _query_verdict(store, index, whitening, encoder, card, ids, meta, same_pairs, near_copies,
+    query, query_samples = _query_verdict(store, index, whitening, encoder, card, ids, xb, meta, same_pairs, near_copies,
                                           tiers["near"]["threshold"], config, rng, regions)
     tiers["near"]["threshold_pairs"] = tiers["near"]["threshold"]
     groups = grouping_threshold(tiers["near"], query, n)

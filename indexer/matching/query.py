@@ -218,9 +218,23 @@ class Searcher:
         """Query vectors in the generation's space (encoder output, then its whitening)."""
         return self.whitening.apply(embed_images(self.encoder, images, self.size))
 
+    def own_parts(self, file_ids: Sequence[int]) -> dict[int, np.ndarray]:
+        """file id -> the (grid**2, d) vectors of its parts in the generation's space, for indexed files asked as
+        they are: their region vectors, made at index time from the same small copy, cut on the same grid and
+        embedded by the same encoder as `_with_query_regions` would (tests/test_regions.py). Empty when the
+        generation has no regions or the query is not cut into parts."""
+        if not (self.regions is not None and self.query_regions and self.region_grid):
+            return {}
+        from .regions import region_rows
+
+        cells = self.region_grid * self.region_grid
+        parents, xr = region_rows(self.store, self.card["version"], self.region_grid,
+                                   np.asarray(list(file_ids), np.int64), self.whitening)
+        return {int(parents[k]): xr[k:k + cells] for k in range(0, len(parents), cells)}
+
     def neighbours(self, xq: np.ndarray, k: int, threshold: float | None = None, *,
                    catalog=None, exclude: Collection[int] = (), excludes: Sequence[Collection[int]] | None = None,
-                   images=None) -> list[list[dict]]:
+                   images=None, parts: Sequence[np.ndarray | None] | None = None) -> list[list[dict]]:
         """Top-k neighbours for each query vector, as dicts with id, path, similarity,
         descriptor_similarity, evidence, duplicate and probability.
 
@@ -234,7 +248,9 @@ class Searcher:
         the query as a whole and by its own parts cut on the same grid, its mirrored keypoints
         tried and `verify_more` more candidates verified (`verify_regions` more for regions), and, when none
         confirms, its first `verify_fine` unconfirmed ones checked at twice the side (`rerank.rerank_fine`).
-        `duplicate` follows the query verdict (`judge`) unless a `threshold` is given."""
+        `duplicate` follows the query verdict (`judge`) unless a `threshold` is given. `parts`, when given, holds
+        per query the vectors of its parts on the region grid where they are known already (`own_parts`: an indexed
+        file asked as it is), so that they are not embedded again; None where not."""
         catalog = catalog if catalog is not None else self.store.catalog
         # The background statistic needs k + 1 neighbours and more for the copies it skips.
         wanted = max(k, BACKGROUND_SEARCH) if self.score_norm else max(k, self.verify_top + self.verify_more)
@@ -267,7 +283,8 @@ class Searcher:
             if pending:
                 again = self._other_views(xq[pending], [images[q] for q in pending], [keys[q] for q in pending],
                                           [rows[q] for q in pending], n, [excludes[q] for q in pending], reach,
-                                          [shifts[q] for q in pending], catalog)
+                                          [shifts[q] for q in pending], catalog,
+                                          None if parts is None else [parts[q] for q in pending])
                 for q, results in zip(pending, again):
                     out[q] = results
         for results, kept, shift in zip(out, rows, shifts):
@@ -285,7 +302,8 @@ class Searcher:
                  for d, m, i in kept]
                 for kept, shift in zip(merged, shifts)]
 
-    def _other_views(self, xq, images, keys, rows, n: int, excludes: list[set[int]], reach: int, shifts, catalog):
+    def _other_views(self, xq, images, keys, rows, n: int, excludes: list[set[int]], reach: int, shifts, catalog,
+                     parts=None):
         """The answers of queries whose best candidate did not verify among the first `verify_top`:
         candidates their other views find join the direct ones (`_better_of`), the mirrored query is
         tried too, the files whose region descriptors are nearest to the query (`xq`, its vectors) get
@@ -320,24 +338,30 @@ class Searcher:
                                       self.region_grid)
             added = self.verify_regions
             if self.query_regions:
-                found, added = self._with_query_regions(images, found, excludes)
+                found, added = self._with_query_regions(images, found, excludes, parts)
             merged = [_with_regions(m, f, self.verify_top, added) for m, f in zip(merged, found)]
         out = self._answers([m[:reach + added] for m in merged], shifts, catalog)
         return self._verified(keys, out, catalog, more=True, added=added)
 
-    def _with_query_regions(self, images, found: list[list[tuple[float, int]]],
-                            excludes) -> tuple[list[list[tuple[float, int]]], int]:
+    def _with_query_regions(self, images, found: list[list[tuple[float, int]]], excludes,
+                            known: Sequence[np.ndarray | None] | None = None) -> tuple[list[list[tuple[float, int]]], int]:
         """`found` (per query, files whose region descriptors are near the whole query) with the files whose
         regions are nearest to one of the query's own parts, cut on the same grid: a copy with a third
         covered by a shape, cut and framed, or turned and filled, still shows some parts as they are in
         the original. The whole query's candidates keep their `verify_regions` places and the parts' best
         get QUERY_PART_PLACES more (sharing places lost crops that the whole query's search had found).
+        `known`: per query, its parts' vectors when known already (None: cut and embedded here).
         Returns the lists and how many places after the first `verify_top` verification is to check."""
         from .regions import cut_regions, region_candidates
 
         cells = self.region_grid * self.region_grid
-        parts = [part for im in images for part in cut_regions(im, self.region_grid)]
-        hits = region_candidates(self.regions, self.vectors_for_images(parts), QUERY_PART_PLACES + self.verify_top,
+        known = list(known) if known is not None else [None] * len(images)
+        todo = [q for q, vectors in enumerate(known) if vectors is None]
+        made = self.vectors_for_images([part for q in todo for part in cut_regions(images[q], self.region_grid)])
+        for j, q in enumerate(todo):
+            known[q] = made[j * cells:(j + 1) * cells]
+        xparts = np.concatenate(known) if known else np.zeros((0, self.index.d), np.float32)
+        hits = region_candidates(self.regions, xparts, QUERY_PART_PLACES + self.verify_top,
                                  [e for e in excludes for _ in range(cells)], self.region_grid)
         out = []
         for q, whole in enumerate(found):

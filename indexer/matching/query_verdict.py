@@ -182,15 +182,29 @@ def positive_answers(searcher, edited: list, targets: list[int], dups: dict[int,
     return found, misses
 
 
-def negative_answers(searcher, queries: list[tuple[int, object]], dups: dict[int, set[int]]) -> tuple[list[dict], list[dict]]:
+def negative_answers(searcher, queries: list[tuple[int, object]], dups: dict[int, set[int]],
+                     known: list[tuple[np.ndarray, np.ndarray | None] | None] | None = None
+                     ) -> tuple[list[dict], list[dict]]:
     """(negatives, likely duplicates): the best result of each (file id, query image) with the
-    file and its known duplicates left out, split by whether it passed geometric verification."""
+    file and its known duplicates left out, split by whether it passed geometric verification.
+    `known[j]`, where given, is query j's vector and its parts' vectors (or None), known already because
+    it is an indexed file asked as it is: the same answers for fewer encoder passes."""
     negatives, verified = [], []
+    known = known if known is not None else [None] * len(queries)
     for start in range(0, len(queries), 32):
         block = queries[start : start + 32]
         images = [im for _, im in block]
         excludes = [{file_id} | dups.get(file_id, set()) for file_id, _ in block]
-        answers = searcher.neighbours(searcher.vectors_for_images(images), ANSWERED, excludes=excludes, images=images)
+        given = known[start : start + 32]
+        todo = [j for j, k in enumerate(given) if k is None]
+        made = searcher.vectors_for_images([images[j] for j in todo])
+        xq = np.empty((len(block), made.shape[1] if len(todo) else given[0][0].shape[0]), np.float32)
+        xq[todo] = made
+        for j, k in enumerate(given):
+            if k is not None:
+                xq[j] = k[0]
+        parts = [None if k is None else k[1] for k in given]
+        answers = searcher.neighbours(xq, ANSWERED, excludes=excludes, images=images, parts=parts)
         for (file_id, _), results in zip(block, answers):
             if results:
                 best = results[0]
@@ -226,11 +240,14 @@ def own_images(searcher, ids: np.ndarray, rows: list[int], max_side: int) -> lis
 
 
 def calibrate_query(searcher, ids: np.ndarray, meta: dict, same_pairs: set, edited: list, targets: list[int],
-                    config: QueryVerdictConfig, rng, edit, xq_edited: np.ndarray | None = None) -> tuple[dict, dict]:
+                    config: QueryVerdictConfig, rng, edit, xq_edited: np.ndarray | None = None,
+                    xb: np.ndarray | None = None) -> tuple[dict, dict]:
     """The query verdict for the generation `searcher` answers from: (verdict, score samples).
 
     `edited` are synthetic copies of the indexed files `targets` (calibrate.py's positives);
-    `edit(images, rng)` makes edited negative queries, one of each image; `xq_edited` are the copies' vectors if known."""
+    `edit(images, rng)` makes edited negative queries, one of each image; `xq_edited` are the copies' vectors if known;
+    `xb`, when given, the indexed vectors of `ids` in the searcher's space: the images asked as they are then take
+    their own vector and their parts' region vectors instead of being embedded again."""
     config.validate()
     content = searcher.store.catalog.content_ids_of(ids.tolist())
     dups = known_duplicates(ids, meta, content, same_pairs)
@@ -240,9 +257,14 @@ def calibrate_query(searcher, ids: np.ndarray, meta: dict, same_pairs: set, edit
     edited_rows = set(rng.choice(n, min(config.edited_negatives, n), replace=False).tolist())
     own = own_images(searcher, ids, sorted(plain | edited_rows), 2 * searcher.size)
     to_edit = [(i, im) for r, i, im in own if r in edited_rows]
-    queries = [(i, im) for r, i, im in own if r in plain] + list(zip([i for i, _ in to_edit],
-                                                                   edit([im for _, im in to_edit], rng)))
-    negatives, likely = negative_answers(searcher, queries, dups)
+    as_indexed = [(r, i, im) for r, i, im in own if r in plain]
+    queries = [(i, im) for _, i, im in as_indexed] + list(zip([i for i, _ in to_edit],
+                                                              edit([im for _, im in to_edit], rng)))
+    known = None
+    if xb is not None:
+        parts = searcher.own_parts([i for _, i, _ in as_indexed])
+        known = [(xb[r], parts.get(i)) for r, i, _ in as_indexed] + [None] * len(to_edit)
+    negatives, likely = negative_answers(searcher, queries, dups, known)
     # A verified best result is taken for an unknown duplicate (and left out of the negatives) only when the
     # descriptor agrees, scoring it like most of the synthetic copies do: a look-alike that shares a drawn
     # element, a logo or a caption with its neighbour can verify, and leaving it out would put the threshold

@@ -115,7 +115,7 @@ def embed_missing_regions(store: Store, model_dir: Path, grid: int, *, progress:
     return {"grid": grid, "embedded": done, "failed": failed, "seconds": round(seconds, 3)}
 
 
-def _region_rows(store: Store, model: str, grid: int, file_ids: np.ndarray | None,
+def region_rows(store: Store, model: str, grid: int, file_ids: np.ndarray | None,
                  whitening) -> tuple[np.ndarray, np.ndarray]:
     """(parent file id per region vector, whitened region vectors) of `file_ids` (None: every file)."""
     key, cells = region_key(model, grid), grid * grid
@@ -136,7 +136,7 @@ def _region_rows(store: Store, model: str, grid: int, file_ids: np.ndarray | Non
 
 def build_region_index(store: Store, model: str, grid: int, whitening):
     """`region_index` of every file's region vectors; None when no file has them."""
-    parents, xr = _region_rows(store, model, grid, None, whitening)
+    parents, xr = region_rows(store, model, grid, None, whitening)
     return region_index(parents, xr) if len(parents) else None
 
 
@@ -158,7 +158,7 @@ def update_region_index(index, store: Store, model: str, grid: int, whitening, *
     if len(removed):
         index.remove_ids(faiss.IDSelectorBatch(np.ascontiguousarray(removed, dtype=np.int64)))
     if len(added):
-        parents, xr = _region_rows(store, model, grid, np.asarray(added, np.int64), whitening)
+        parents, xr = region_rows(store, model, grid, np.asarray(added, np.int64), whitening)
         if len(parents):
             index.add_with_ids(xr, parents)
 
