@@ -384,8 +384,9 @@ class Searcher:
 
     def _squares(self, images) -> list[Image.Image]:
         """Each query image as the encoder sees it (its central square at the input side). A mirror image or
-        a quarter turn of that square is what the encoder sees of the turned image (up to a pixel of the
-        centre when the sides' difference is odd), so each large picture is brought down once, not once a view."""
+        a quarter turn of that square is what the encoder sees of the turned image (a mirror exactly, a quarter
+        turn within one grey level: Pillow's two resampling passes swap order; tests/test_query_views.py), so each
+        large picture is brought down once, not once a view."""
         from ..learning.inputs import square_batch
 
         return [Image.fromarray(square) for square in square_batch(images, self.size)]
