@@ -137,3 +137,15 @@ def test_a_process_forked_after_the_pool_started_gets_its_own_pool():
         child.kill()
     assert child.exitcode == 0
     assert queue.get(timeout=5) == [2, 3, 4]
+
+
+def test_sharing_work_among_the_cores_does_not_load_faiss():
+    # Resizing a batch uses the pool in processes that may never search (a fresh interpreter as the reference:
+    # the modules it has loaded, sys.modules); FAISS's per-thread setting is made once FAISS is loaded.
+    import subprocess
+    import sys
+
+    code = ("import sys; from nearsight.indexer.core import cores; "
+            "print(cores.each_on_cores(lambda x: x + 1, [1, 2, 3, 4]), 'faiss' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120, check=True)
+    assert out.stdout.split() == ["[2,", "3,", "4,", "5]", "False"]

@@ -9,6 +9,7 @@ verification 25 -> 17 ms a query on 2 cores.
 from __future__ import annotations
 
 import os
+import sys
 import threading
 from concurrent.futures import ThreadPoolExecutor
 from typing import Callable, Sequence, TypeVar
@@ -38,15 +39,19 @@ def usable_cores() -> int:
     return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
 
 
+def _mark_pool_thread() -> None:
+    _INSIDE.pool = True
+
+
 def _one_faiss_thread() -> None:
     # FAISS matches keypoints with an OpenMP team per call; on calls of a fraction of a millisecond the team
     # costs about what it gives (the same ms a query with OMP_NUM_THREADS=1), and two teams on two cores
     # would fight. Each of these threads runs its calls alone; libgomp keeps this setting per thread, so the
-    # rest of the process keeps its own (index building and range search use every core).
-    import faiss
-
-    faiss.omp_set_num_threads(1)
-    _INSIDE.pool = True
+    # rest of the process keeps its own (index building and range search use every core). Set once FAISS is
+    # loaded, by whoever loads it: work that never uses it (resizing a batch) does not pay its import.
+    if not getattr(_INSIDE, "faiss_threads", False) and "faiss" in sys.modules:
+        sys.modules["faiss"].omp_set_num_threads(1)
+        _INSIDE.faiss_threads = True
 
 
 def each_on_cores(work: Callable[[T], R], items: Sequence[T]) -> list[R]:
@@ -60,5 +65,10 @@ def each_on_cores(work: Callable[[T], R], items: Sequence[T]) -> list[R]:
         return [work(item) for item in items]
     with _LOCK:
         if _POOL is None:
-            _POOL = ThreadPoolExecutor(cores, thread_name_prefix="nearsight-cores", initializer=_one_faiss_thread)
-    return list(_POOL.map(work, items))
+            _POOL = ThreadPoolExecutor(cores, thread_name_prefix="nearsight-cores", initializer=_mark_pool_thread)
+
+    def run(item: T) -> R:
+        _one_faiss_thread()
+        return work(item)
+
+    return list(_POOL.map(run, items))
