@@ -131,5 +131,6 @@ def baseline_figures(work: Path, names: list[str], records: list[dict], gt: np.n
     return {name: evaluate(pred, gt, groups)
             for name, pred in bench_quality.baseline_predictions(work / "collection", names, records, k).items()}
 
+
 if __name__ == "__main__":
     main()

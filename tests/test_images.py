@@ -716,3 +716,33 @@ def test_save_thumbnail_is_atomic(tmp_path, monkeypatch):
     assert target.read_bytes() == before  # the old thumbnail survives whole
     assert [p.name for p in tmp_path.iterdir()] == ["thumb.jpg"]
 
+
+
+def test_reading_many_files_on_the_cores_keeps_their_order_and_puts_an_error_in_a_broken_file_s_place(tmp_path):
+    # `read_images` (calibration, the fusion fit): each file as `read_image` alone reads it; a truncated JPEG (its
+    # bytes cut in half) gives the error `read_image` raises for it, in its place. Reference: Pillow's own
+    # decoding of the good files at full size (no max_side), scikit-image's photos.
+    from PIL import Image as PILImage
+    from skimage import data
+
+    from nearsight.indexer.core.errors import ImageReadError
+    from nearsight.indexer.reading.images import read_image, read_images
+
+    paths = []
+    for k, name in enumerate(("astronaut", "coffee", "chelsea", "rocket")):
+        path = tmp_path / f"{k}-{name}.png"
+        PILImage.fromarray(getattr(data, name)()).save(path)
+        paths.append(path)
+    good = tmp_path / "whole.jpg"
+    PILImage.fromarray(data.camera()).convert("RGB").save(good, quality=90)
+    broken = tmp_path / "broken.jpg"
+    broken.write_bytes(good.read_bytes()[: good.stat().st_size // 2])
+    paths.insert(2, broken)
+    out = read_images(paths)
+    assert len(out) == len(paths)
+    with pytest.raises(ImageReadError) as raised:
+        read_image(broken)
+    assert isinstance(out[2], ImageReadError) and str(out[2]) == str(raised.value)
+    for path, image in zip(paths, out):
+        if path != broken:
+            assert np.array_equal(np.asarray(image), np.asarray(PILImage.open(path).convert("RGB")))

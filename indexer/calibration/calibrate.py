@@ -26,15 +26,14 @@ from pathlib import Path
 
 import numpy as np
 
-from ..core.cores import each_on_cores
-from ..core.errors import ImageReadError, NotReadyError, UsageError
+from ..core.errors import NotReadyError, UsageError
 from ..core.rates import counts_at_or_above, fit_mixture, wilson_interval
 from ..learning.edits import DEFAULT_STRENGTHS, EDIT_KINDS, EditStrengths, edited_copies
 from ..learning.embed import embed_images
 from ..matching import index as faiss_index
 from ..matching.generations import threshold_for_precision
 from ..matching.query_verdict import QueryVerdictConfig, calibrate_query
-from ..reading.images import read_image
+from ..reading.images import read_images
 from ..storage.store import Store
 
 log = logging.getLogger(__name__)
@@ -109,14 +108,8 @@ def _originals(store: Store, card: dict, ids: np.ndarray, meta: dict, count: int
 def read_originals(rows: list[int], paths: list[str], size: int) -> list[tuple[int, object]]:
     """(row, image) of each original to edit, decoded once for every tier at DECODE_FACTOR times the model's
     input; one that cannot be read any more (changed or gone since the scan) is left out with a warning."""
-    def read(path: str):
-        try:
-            return read_image(path, max_side=DECODE_FACTOR * size)[0]
-        except (ImageReadError, OSError) as exc:
-            return exc
-
     out = []
-    for row, path, image in zip(rows, paths, each_on_cores(read, paths)):  # decoders release the GIL
+    for row, path, image in zip(rows, paths, read_images(paths, DECODE_FACTOR * size)):
         if isinstance(image, Exception):
             log.warning("calibration skips %s: %s", path, image)
         else:

@@ -46,21 +46,17 @@ def square_batch(images: Sequence[Image.Image], size: int) -> np.ndarray:
     used to it."""
     if not images:
         return np.zeros((0, size, size, 3), np.uint8)
-    from ..core.cores import each_on_cores, usable_cores
-
     out = np.empty((len(images), size, size, 3), np.uint8)
 
-    def fill(rows: range) -> None:
-        for r in rows:
+    def fill(rows: slice) -> None:
+        for r in range(len(images))[rows]:
             out[r] = np.asarray(resize_center_crop(rgb(images[r]), size), dtype=np.uint8)
 
     # Pillow resizes with the GIL released: a batch to resize (queries, their parts, calibration's copies) is
     # shared among the cores, one share a core: 32 pictures of 512 x 384 brought to 128 in 0.5 of the time, their
     # 288 parts in 0.87. Pictures whose shorter side is the input side already are only cut, and on the cores
     # they took 1.6-1.8 times as long, the threads waiting for the GIL (2 cores, benchmarks/results/query-views.md).
-    to_resize = sum(1 for im in images if min(im.size) != size)
-    shares = usable_cores() if to_resize >= PARALLEL_BATCH else 1
-    each_on_cores(fill, [range(k, len(images), shares) for k in range(shares)])
+    _by_rows(fill, len(images), sum(1 for im in images if min(im.size) != size) >= PARALLEL_BATCH)
     return out
 
 
@@ -70,19 +66,23 @@ def standardised(batch: np.ndarray) -> np.ndarray:
     # Each channel's 256 possible values are computed once, in those operations, and looked up: the same
     # numbers as computing every pixel (tests/test_runtime.py), in one pass over the batch instead of five,
     # shared among the cores (NumPy's take releases the GIL): 11 -> 4.3 ms for 64 pictures of 128 px, 2 cores.
-    from ..core.cores import each_on_cores, usable_cores
-
-    n = batch.shape[0]
-    out = np.empty((n, 3, batch.shape[1], batch.shape[2]), np.float32)
+    out = np.empty((batch.shape[0], 3, batch.shape[1], batch.shape[2]), np.float32)
 
     def fill(rows: slice) -> None:
         for c in range(3):
             np.take(_TABLE[c], batch[rows, ..., c], out=out[rows, c])
 
-    shares = usable_cores() if n >= PARALLEL_BATCH else 1
+    _by_rows(fill, batch.shape[0], batch.shape[0] >= PARALLEL_BATCH)
+    return out
+
+
+def _by_rows(fill, n: int, parallel: bool) -> None:
+    """`fill(rows)` of n rows in one contiguous share a core when `parallel`, else of all of them here."""
+    from ..core.cores import each_on_cores, usable_cores
+
+    shares = usable_cores() if parallel else 1
     bounds = np.linspace(0, n, shares + 1).astype(int)
     each_on_cores(fill, [slice(a, b) for a, b in zip(bounds[:-1], bounds[1:])])
-    return out
 
 
 def _channel_table() -> np.ndarray:

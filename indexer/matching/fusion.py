@@ -80,12 +80,10 @@ def choose_weight(xb: np.ndarray, xq: np.ndarray, targets: np.ndarray, learned_d
 def fit_classic_weight(store, model_dir, ids: np.ndarray, xb: np.ndarray, *, seed: int = 0,
                        originals: int = FIT_ORIGINALS) -> WeightFit:
     """Fit the weight for a store's collection: `ids`/`xb` are its files and stored vectors (raw)."""
-    from ..core.errors import ImageReadError
-    from ..core.cores import each_on_cores
     from ..learning.edits import DEFAULT_STRENGTHS, EDIT_KINDS, edited_copies
     from ..learning.embed import embed_images
     from ..learning.runtime import load_encoder
-    from ..reading.images import read_image
+    from ..reading.images import read_images
 
     started = time.monotonic()
     encoder, card = load_encoder(model_dir, store.settings.runtime)
@@ -98,15 +96,11 @@ def fit_classic_weight(store, model_dir, ids: np.ndarray, xb: np.ndarray, *, see
     sources = store.catalog.pixel_sources(ids.tolist())
     rows = [row for row in np.sort(rng.choice(len(ids), min(originals, len(ids)), replace=False)).tolist()
             if sources.get(int(ids[row])) is not None]
-
-    def read(row: int):
-        try:
-            return read_image(store.pixels_path(sources[int(ids[row])]), max_side=2 * size)[0]
-        except (ImageReadError, OSError) as exc:  # changed or gone since the scan
-            log.debug("weight fit skips %s: %s", ids[row], exc)
-            return None
-
-    read_rows = [(row, image) for row, image in zip(rows, each_on_cores(read, rows)) if image is not None]
+    images = read_images([store.pixels_path(sources[int(ids[row])]) for row in rows], 2 * size)
+    for row, image in zip(rows, images):
+        if isinstance(image, Exception):
+            log.debug("weight fit skips %s: %s", ids[row], image)
+    read_rows = [(row, image) for row, image in zip(rows, images) if not isinstance(image, Exception)]
     targets = [row for row, _ in read_rows for _ in range(EDITS_PER_ORIGINAL)]
     edited, _kinds = edited_copies([image for _, image in read_rows for _ in range(EDITS_PER_ORIGINAL)], EDIT_KINDS,
                                    DEFAULT_STRENGTHS, rng)

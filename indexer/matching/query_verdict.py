@@ -33,10 +33,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..core.cores import each_on_cores
-from ..core.errors import ImageReadError, UsageError
+from ..core.errors import UsageError
 from ..core.rates import wilson_interval
-from ..reading.images import read_image
+from ..reading.images import read_images
 
 log = logging.getLogger(__name__)
 
@@ -196,13 +195,8 @@ def negative_answers(searcher, queries: list[tuple[int, object]], dups: dict[int
         images = [im for _, im in block]
         excludes = [{file_id} | dups.get(file_id, set()) for file_id, _ in block]
         given = known[start : start + 32]
-        todo = [j for j, k in enumerate(given) if k is None]
-        made = searcher.vectors_for_images([images[j] for j in todo])
-        xq = np.empty((len(block), made.shape[1] if len(todo) else given[0][0].shape[0]), np.float32)
-        xq[todo] = made
-        for j, k in enumerate(given):
-            if k is not None:
-                xq[j] = k[0]
+        made = iter(searcher.vectors_for_images([im for im, k in zip(images, given) if k is None]))
+        xq = np.stack([next(made) if k is None else k[0] for k in given]).astype(np.float32, copy=False)
         parts = [None if k is None else k[1] for k in given]
         answers = searcher.neighbours(xq, ANSWERED, excludes=excludes, images=images, parts=parts)
         for (file_id, _), results in zip(block, answers):
@@ -227,16 +221,11 @@ def own_images(searcher, ids: np.ndarray, rows: list[int], max_side: int) -> lis
     """(row, file id, pixels) of indexed files, read from the store's small copies."""
     sources = searcher.store.catalog.pixel_sources([int(ids[r]) for r in rows])
     wanted = [(r, int(ids[r])) for r in rows if int(ids[r]) in sources]
-
-    def read(item):
-        r, i = item
-        try:
-            return r, i, read_image(searcher.store.pixels_path(sources[i]), max_side=max_side)[0]
-        except (ImageReadError, OSError) as exc:
-            log.debug("query calibration skips %s: %s", i, exc)
-            return None
-
-    return [found for found in each_on_cores(read, wanted) if found is not None]  # decoders release the GIL
+    images = read_images([searcher.store.pixels_path(sources[i]) for _, i in wanted], max_side)
+    for (_, i), image in zip(wanted, images):
+        if isinstance(image, Exception):
+            log.debug("query calibration skips %s: %s", i, image)
+    return [(r, i, image) for (r, i), image in zip(wanted, images) if not isinstance(image, Exception)]
 
 
 def calibrate_query(searcher, ids: np.ndarray, meta: dict, same_pairs: set, edited: list, targets: list[int],

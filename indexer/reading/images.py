@@ -107,6 +107,20 @@ def read_image(
         return rgb, _info(im, header, orientation, loaded=True)
 
 
+def read_images(paths, max_side: int | None = None) -> list[Image.Image | ImageReadError | OSError]:
+    """`read_image` of each path on every core (decoders release the GIL), in order; a file that cannot be read
+    (changed or gone since the scan) gives its error in its place instead of stopping the others."""
+    from ..core.cores import each_on_cores
+
+    def read(path):
+        try:
+            return read_image(path, max_side)[0]
+        except (ImageReadError, OSError) as exc:
+            return exc
+
+    return each_on_cores(read, list(paths))
+
+
 def probe(src, *, max_pixels: int | None = DEFAULT_MAX_PIXELS) -> ImageInfo:
     """Read only the header: size, format, mode, frames and orientation.
 
