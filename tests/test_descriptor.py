@@ -97,6 +97,31 @@ def test_centred_standardisation_removes_imagenet_c_contrast_where_luma_does_not
     np.testing.assert_allclose(per_channel_mean.numpy(), 0.0, atol=1e-4)
 
 
+def test_grey_input_leaves_a_greyed_or_toned_copy_as_its_original():
+    """Pillow's convert("L") is the ITU-R 601-2 luma (Pillow's documentation), the weights the encoder's
+    luma uses: a grey copy and a sepia-toned one (each pixel's luma kept, its colour replaced) give the
+    "grey" input the original's, up to 8-bit rounding, where "luma" keeps the colour and moves."""
+    im = _photo("astronaut")
+    grey = im.convert("L")
+    # A toned copy that keeps luma: the grey level plus a colour offset whose BT.601 luma is zero.
+    g = np.asarray(grey, np.float64)
+    offset = np.array([20.0, -10.0, 0.0])
+    offset[2] = -(0.299 * offset[0] + 0.587 * offset[1]) / 0.114
+    inside = (g >= 60) & (g <= 195)  # where the offset does not clip
+    sepia = np.where(inside[..., None], g[..., None] + offset, g[..., None])
+    sepia = Image.fromarray(np.clip(np.round(sepia), 0, 255).astype(np.uint8))
+    batch = preprocess([im, grey.convert("RGB"), sepia], 128)
+    for how, small in (("grey", True), ("luma", False)):
+        s = standardise(batch, how)
+        gaps = [float((s[0] - s[i]).abs().mean()) for i in (1, 2)]
+        if small:
+            assert max(gaps) < 0.03, gaps  # 1/255 rounding in a spread of about 0.25: under 0.02
+            np.testing.assert_allclose(s[0, 0].numpy(), s[0, 2].numpy())  # one luma in every channel
+            np.testing.assert_allclose(float(s[0, 0].mean()), 0.0, atol=1e-5)
+        else:
+            assert min(gaps) > 0.1, gaps
+
+
 def test_model_files_remember_input_standardisation_and_classical_part(tmp_path):
     from nearsight.indexer.learning.embed import embed_images
     from nearsight.indexer.learning.model import load_model, save_model

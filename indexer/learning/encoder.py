@@ -31,8 +31,10 @@ POOLINGS = ("gem", "avg")
 # each channel's mean (ImageNet-C's contrast) or a colour cast moves it no more (standardise).
 # "centred" is an option, not the default: on the quality benchmark it cost crops' recall@1
 # (0.914 -> 0.877) and let 8 of 804 queries without a match be flagged (0 with "luma");
-# benchmarks/results/quality-centred.md.
-INPUT_NORMS = ("imagenet", "luma", "centred")
+# benchmarks/results/quality-centred.md. "grey" feeds the standardised luminance alone (in each of
+# the three input channels), so that a copy recoloured, toned or turned grey gives the backbone
+# nearly the same input as its original.
+INPUT_NORMS = ("imagenet", "luma", "centred", "grey")
 DEFAULT_INPUT_NORM = "luma"
 
 
@@ -176,9 +178,15 @@ def standardise(x: torch.Tensor, how: str) -> torch.Tensor:
     units of the spread: at a = 0.05 about 19 times the channel's distance from the grey mean, a
     picture tinted far beyond any training view. What "centred" gives up is the picture's mean
     colour, which a tinted copy does not keep either.
+
+    "grey" standardises the luma alone and repeats it in the three channels: every change of
+    colour that keeps each pixel's luma (a grey copy, a toned one) leaves the input as it was.
     """
     p = pixels(x)
     y = luma(p)
+    if how == "grey":
+        g = (y - y.mean(dim=(1, 2, 3), keepdim=True)) / y.std(dim=(1, 2, 3), keepdim=True).clamp(min=MIN_LUMA_STD)
+        return torch.cat([g, g, g], dim=1)
     mean = p.mean(dim=(2, 3), keepdim=True) if how == "centred" else y.mean(dim=(1, 2, 3), keepdim=True)
     std = y.std(dim=(1, 2, 3), keepdim=True).clamp(min=MIN_LUMA_STD)
     return (p - mean) / std
