@@ -21,6 +21,27 @@ from .test_pipeline import TINY, _scene
 
 
 # -- statistics against reference libraries ----------------------------------------------------
+def test_negatives_floor_keeps_100_neighbours_an_image_at_most_a_tenth_and_ignores_the_copies_low_tail():
+    """Reference: numpy.quantile (linear interpolation, its default). Random-pair scores ~ N(0.1, 0.1) and
+    synthetic copies' scores ~ Beta(8, 1) (scipy.stats draws both); n = 20,000 keeps 100 / n of the pairs,
+    n = 300 a tenth. Replacing the harshest 5 % of the copies by scores near 0 (the draw's few hardest
+    edits) leaves the floor where it was; only a collection whose random pairs score above a tenth of
+    its copies (mostly duplicates) takes the copies' 10 % quantile."""
+    from scipy import stats
+
+    from nearsight.indexer.calibration.calibrate import negatives_floor
+
+    random_scores = stats.norm.rvs(0.1, 0.1, size=50_000, random_state=0)
+    copies = stats.beta.rvs(8, 1, size=512, random_state=1)
+    assert negatives_floor(random_scores, copies, 20_000) == pytest.approx(np.quantile(random_scores, 1 - 100 / 20_000))
+    assert negatives_floor(random_scores, copies, 300) == pytest.approx(np.quantile(random_scores, 0.9))
+    harsher = np.sort(copies)
+    harsher[:26] = np.linspace(0.0, 0.05, 26)
+    assert negatives_floor(random_scores, harsher, 300) == negatives_floor(random_scores, copies, 300)
+    duplicates_everywhere = random_scores + 0.6
+    assert negatives_floor(duplicates_everywhere, copies, 300) == pytest.approx(np.quantile(copies, 0.1))
+
+
 def test_wilson_interval_matches_statsmodels():
     """Reference: statsmodels.stats.proportion.proportion_confint(method="wilson") (Wilson 1927)."""
     from statsmodels.stats.proportion import proportion_confint
