@@ -122,6 +122,29 @@ def test_grey_input_leaves_a_greyed_or_toned_copy_as_its_original():
             assert min(gaps) > 0.1, gaps
 
 
+def test_grey_view_sums_the_picture_and_its_pillow_grey_copy(tmp_path):
+    """A model with `grey_view` stores normalise(h(picture) + h(its grey copy)): checked against the same
+    weights without it, fed the picture and Pillow's convert("L") of it (ITU-R 601-2 luma, the encoder's
+    weights), up to 8-bit rounding of the grey copy. The card remembers the choice."""
+    from nearsight.indexer.learning.model import load_model, save_model
+
+    torch.manual_seed(0)
+    encoder = create_encoder("tiny", 16, input_norm="luma", classic="dct8", grey_view=True).eval()
+    plain = create_encoder("tiny", 16, input_norm="luma", classic="dct8").eval()
+    plain.load_state_dict(encoder.state_dict())
+    photos = [_photo(name) for name in ("astronaut", "coffee", "chelsea")]
+    greys = [p.convert("L").convert("RGB") for p in photos]
+    with torch.no_grad():
+        got = encoder.descriptor(preprocess(photos, 64))
+        a, b = plain.descriptor(preprocess(photos, 64)), plain.descriptor(preprocess(greys, 64))
+    expected = torch.nn.functional.normalize(a[:, :16] + b[:, :16], dim=1)
+    np.testing.assert_allclose(got[:, :16].numpy(), expected.numpy(), atol=2e-3)
+    np.testing.assert_allclose(got[:, 16:].numpy(), a[:, 16:].numpy(), atol=1e-6)  # the classical part as before
+    save_model(tmp_path, encoder, {"arch": "tiny", "image_size": 64})
+    loaded, card = load_model(tmp_path)
+    assert card["grey_view"] is True and loaded.grey_view
+
+
 def test_model_files_remember_input_standardisation_and_classical_part(tmp_path):
     from nearsight.indexer.learning.embed import embed_images
     from nearsight.indexer.learning.model import load_model, save_model

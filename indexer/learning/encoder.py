@@ -36,6 +36,12 @@ POOLINGS = ("gem", "avg")
 # nearly the same input as its original.
 INPUT_NORMS = ("imagenet", "luma", "centred", "grey")
 DEFAULT_INPUT_NORM = "luma"
+# The stored learned vector of a model with `grey_view`: the sum of what the backbone makes of the
+# picture and of its luminance alone (standardise(x, "grey")), normalised. The picture in colour
+# keeps what colour tells about small crops and fog; the grey pass is what a recoloured, toned or
+# heavily re-compressed copy still shares with its original. It costs a second backbone pass per
+# picture; training is unchanged.
+DEFAULT_GREY_VIEW = False
 
 
 class GeM(nn.Module):
@@ -202,7 +208,7 @@ class Encoder(nn.Module):
     """
 
     def __init__(self, backbone: nn.Module, num_features: int, dim: int = 128, pooling: str = "gem",
-                 input_norm: str = "imagenet", classic: str | None = None):
+                 input_norm: str = "imagenet", classic: str | None = None, grey_view: bool = False):
         super().__init__()
         self.backbone = backbone
         self.num_features = num_features
@@ -210,6 +216,7 @@ class Encoder(nn.Module):
         self.pooling = pooling
         self.input_norm = input_norm
         self.classic = classic
+        self.grey_view = bool(grey_view)
         self.classic_dim = classic_dim(classic)
         self.pool = GeM() if pooling == "gem" else AvgPool()
         self.fc = nn.Linear(num_features, dim)
@@ -230,7 +237,14 @@ class Encoder(nn.Module):
         return F.normalize(z, dim=-1) if normalize else z
 
     def descriptor(self, x: torch.Tensor) -> torch.Tensor:
-        learned = self.forward_head(self.forward_features(x))
+        if self.grey_view:
+            # One backbone pass over the batch in colour and in grey; each half pooled and projected.
+            n = x.shape[0]
+            colour = standardise(x, self.input_norm) if self.input_norm != "imagenet" else x
+            both = self.forward_head(self.backbone(torch.cat([colour, standardise(x, "grey")], dim=0)))
+            learned = F.normalize(both[:n] + both[n:], dim=-1)
+        else:
+            learned = self.forward_head(self.forward_features(x))
         if not self.classic:
             return learned
         return torch.cat([learned, classic_descriptor(pixels(x), self.classic)], dim=1)
@@ -260,7 +274,8 @@ class ProjectionHead(nn.Module):
 
 
 def create_encoder(arch: str = DEFAULT_ARCH, dim: int = 128, pooling: str = "gem", *,
-                   input_norm: str = DEFAULT_INPUT_NORM, classic: str | None = "default") -> Encoder:
+                   input_norm: str = DEFAULT_INPUT_NORM, classic: str | None = "default",
+                   grey_view: bool = DEFAULT_GREY_VIEW) -> Encoder:
     """Build a randomly initialised encoder (never downloads weights).
 
     `classic="default"` takes indexer.learning.classic's default descriptor; None stores the learned vector alone."""
@@ -275,7 +290,8 @@ def create_encoder(arch: str = DEFAULT_ARCH, dim: int = 128, pooling: str = "gem
     classic = DEFAULT_CLASSIC if classic == "default" else classic
     check_classic(classic)
     backbone, num_features = _BACKBONES[arch]()
-    return Encoder(backbone, num_features, dim=dim, pooling=pooling, input_norm=input_norm, classic=classic)
+    return Encoder(backbone, num_features, dim=dim, pooling=pooling, input_norm=input_norm, classic=classic,
+                   grey_view=grey_view)
 
 
 def normalize_tensor(x: torch.Tensor) -> torch.Tensor:

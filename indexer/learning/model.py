@@ -83,6 +83,7 @@ def save_model(model_dir: Path, encoder: "Encoder", card: dict) -> str:
         "pooling": encoder.pooling,
         "input_norm": encoder.input_norm,
         "classic": encoder.classic,
+        "grey_view": encoder.grey_view,
         "weights_blake2b": digest,
         "libraries": library_versions(),
     }
@@ -124,7 +125,8 @@ def load_model(model_dir: Path) -> tuple["Encoder", dict]:
         raise NearsightError(f"{path} does not match {CARD_FILE} (weights hash differs); retrain or restore the model folder")
     # Cards written before input standardisation and classical descriptors existed name neither.
     encoder = create_encoder(card["arch"], dim=int(card["dim"]), pooling=card["pooling"],
-                             input_norm=card.get("input_norm", "imagenet"), classic=card.get("classic"))
+                             input_norm=card.get("input_norm", "imagenet"), classic=card.get("classic"),
+                             grey_view=bool(card.get("grey_view", False)))
     try:
         state = torch.load(io.BytesIO(data), map_location="cpu", weights_only=True)
         encoder.load_state_dict(state)
