@@ -40,7 +40,9 @@ DEFAULT_INPUT_NORM = "luma"
 # picture and of its luminance alone (standardise(x, "grey")), normalised. The picture in colour
 # keeps what colour tells about small crops and fog; the grey pass is what a recoloured, toned or
 # heavily re-compressed copy still shares with its original. It costs a second backbone pass per
-# picture; training is unchanged.
+# picture; training is unchanged. Off: on the quality benchmark it lifted recoloured and JPEG copies (hue-180 µAP
+# 0.778 -> 0.963) and lost as much on small crops and fog (crop-80 0.781 -> 0.717), overall µAP 0.965 -> 0.964
+# (benchmarks/results/quality-greyview.md).
 DEFAULT_GREY_VIEW = False
 
 
