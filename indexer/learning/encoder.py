@@ -192,11 +192,11 @@ def standardise(x: torch.Tensor, how: str) -> torch.Tensor:
     """
     p = pixels(x)
     y = luma(p)
+    std = y.std(dim=(1, 2, 3), keepdim=True).clamp(min=MIN_LUMA_STD)
     if how == "grey":
-        g = (y - y.mean(dim=(1, 2, 3), keepdim=True)) / y.std(dim=(1, 2, 3), keepdim=True).clamp(min=MIN_LUMA_STD)
+        g = (y - y.mean(dim=(1, 2, 3), keepdim=True)) / std
         return torch.cat([g, g, g], dim=1)
     mean = p.mean(dim=(2, 3), keepdim=True) if how == "centred" else y.mean(dim=(1, 2, 3), keepdim=True)
-    std = y.std(dim=(1, 2, 3), keepdim=True).clamp(min=MIN_LUMA_STD)
     return (p - mean) / std
 
 
@@ -228,10 +228,12 @@ class Encoder(nn.Module):
         """Width of `descriptor`'s rows: the learned part, then the classical part."""
         return self.dim + self.classic_dim
 
+    def backbone_input(self, x: torch.Tensor) -> torch.Tensor:
+        """What the backbone is fed: x standardised per image as `input_norm` says."""
+        return x if self.input_norm == "imagenet" else standardise(x, self.input_norm)
+
     def forward_features(self, x: torch.Tensor) -> torch.Tensor:
-        if self.input_norm != "imagenet":
-            x = standardise(x, self.input_norm)
-        return self.backbone(x)
+        return self.backbone(self.backbone_input(x))
 
     def forward_head(self, features: torch.Tensor, normalize: bool = True) -> torch.Tensor:
         """Pool and project a feature map; `normalize=False` gives the raw vector the projection head reads."""
@@ -242,8 +244,7 @@ class Encoder(nn.Module):
         if self.grey_view:
             # One backbone pass over the batch in colour and in grey; each half pooled and projected.
             n = x.shape[0]
-            colour = standardise(x, self.input_norm) if self.input_norm != "imagenet" else x
-            both = self.forward_head(self.backbone(torch.cat([colour, standardise(x, "grey")], dim=0)))
+            both = self.forward_head(self.backbone(torch.cat([self.backbone_input(x), standardise(x, "grey")], dim=0)))
             learned = F.normalize(both[:n] + both[n:], dim=-1)
         else:
             learned = self.forward_head(self.forward_features(x))
