@@ -726,7 +726,7 @@ def test_reading_many_files_on_the_cores_keeps_their_order_and_puts_an_error_in_
     from skimage import data
 
     from nearsight.indexer.core.errors import ImageReadError
-    from nearsight.indexer.reading.images import read_image, read_images
+    from nearsight.indexer.reading.images import read_image, read_images, readable_images
 
     paths = []
     for k, name in enumerate(("astronaut", "coffee", "chelsea", "rocket")):
@@ -746,3 +746,11 @@ def test_reading_many_files_on_the_cores_keeps_their_order_and_puts_an_error_in_
     for path, image in zip(paths, out):
         if path != broken:
             assert np.array_equal(np.asarray(image), np.asarray(PILImage.open(path).convert("RGB")))
+    # `readable_images` (the three readers of calibration): the same pictures keyed, the broken one left out
+    # and reported once with its key, path and error.
+    skipped = []
+    kept = readable_images([(k, p) for k, p in enumerate(paths)], None, lambda *told: skipped.append(told))
+    assert [k for k, _ in kept] == [0, 1, 3, 4]
+    assert [(k, p, str(e)) for k, p, e in skipped] == [(2, broken, str(raised.value))]
+    for k, image in kept:
+        assert np.array_equal(np.asarray(image), np.asarray(out[k]))

@@ -33,7 +33,7 @@ from ..learning.embed import embed_images
 from ..matching import index as faiss_index
 from ..matching.generations import threshold_for_precision
 from ..matching.query_verdict import QueryVerdictConfig, calibrate_query
-from ..reading.images import read_images
+from ..reading.images import readable_images
 from ..storage.store import Store
 
 log = logging.getLogger(__name__)
@@ -108,13 +108,8 @@ def _originals(store: Store, card: dict, ids: np.ndarray, meta: dict, count: int
 def read_originals(rows: list[int], paths: list[str], size: int) -> list[tuple[int, object]]:
     """(row, image) of each original to edit, decoded once for every tier at DECODE_FACTOR times the model's
     input; one that cannot be read any more (changed or gone since the scan) is left out with a warning."""
-    out = []
-    for row, path, image in zip(rows, paths, read_images(paths, DECODE_FACTOR * size)):
-        if isinstance(image, Exception):
-            log.warning("calibration skips %s: %s", path, image)
-        else:
-            out.append((row, image))
-    return out
+    return readable_images(zip(rows, paths), DECODE_FACTOR * size,
+                           lambda _row, path, exc: log.warning("calibration skips %s: %s", path, exc))
 
 
 def positive_scores(encoder, size: int, whitening, xb: np.ndarray, originals: list[tuple[int, object]],

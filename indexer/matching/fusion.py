@@ -83,7 +83,7 @@ def fit_classic_weight(store, model_dir, ids: np.ndarray, xb: np.ndarray, *, see
     from ..learning.edits import DEFAULT_STRENGTHS, EDIT_KINDS, edited_copies
     from ..learning.embed import embed_images
     from ..learning.runtime import load_encoder
-    from ..reading.images import read_images
+    from ..reading.images import readable_images
 
     started = time.monotonic()
     encoder, card = load_encoder(model_dir, store.settings.runtime)
@@ -96,11 +96,8 @@ def fit_classic_weight(store, model_dir, ids: np.ndarray, xb: np.ndarray, *, see
     sources = store.catalog.pixel_sources(ids.tolist())
     rows = [row for row in np.sort(rng.choice(len(ids), min(originals, len(ids)), replace=False)).tolist()
             if sources.get(int(ids[row])) is not None]
-    images = read_images([store.pixels_path(sources[int(ids[row])]) for row in rows], 2 * size)
-    for row, image in zip(rows, images):
-        if isinstance(image, Exception):
-            log.debug("weight fit skips %s: %s", ids[row], image)
-    read_rows = [(row, image) for row, image in zip(rows, images) if not isinstance(image, Exception)]
+    read_rows = readable_images([(row, store.pixels_path(sources[int(ids[row])])) for row in rows], 2 * size,
+                                lambda row, _path, exc: log.debug("weight fit skips %s: %s", ids[row], exc))
     targets = [row for row, _ in read_rows for _ in range(EDITS_PER_ORIGINAL)]
     edited, _kinds = edited_copies([image for _, image in read_rows for _ in range(EDITS_PER_ORIGINAL)], EDIT_KINDS,
                                    DEFAULT_STRENGTHS, rng)

@@ -35,7 +35,7 @@ import numpy as np
 
 from ..core.errors import UsageError
 from ..core.rates import wilson_interval
-from ..reading.images import read_images
+from ..reading.images import readable_images
 
 log = logging.getLogger(__name__)
 
@@ -221,11 +221,9 @@ def own_images(searcher, ids: np.ndarray, rows: list[int], max_side: int) -> lis
     """(row, file id, pixels) of indexed files, read from the store's small copies."""
     sources = searcher.store.catalog.pixel_sources([int(ids[r]) for r in rows])
     wanted = [(r, int(ids[r])) for r in rows if int(ids[r]) in sources]
-    images = read_images([searcher.store.pixels_path(sources[i]) for _, i in wanted], max_side)
-    for (_, i), image in zip(wanted, images):
-        if isinstance(image, Exception):
-            log.debug("query calibration skips %s: %s", i, image)
-    return [(r, i, image) for (r, i), image in zip(wanted, images) if not isinstance(image, Exception)]
+    read = readable_images([((r, i), searcher.store.pixels_path(sources[i])) for r, i in wanted], max_side,
+                           lambda key, _path, exc: log.debug("query calibration skips %s: %s", key[1], exc))
+    return [(r, i, image) for (r, i), image in read]
 
 
 def calibrate_query(searcher, ids: np.ndarray, meta: dict, same_pairs: set, edited: list, targets: list[int],

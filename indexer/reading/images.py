@@ -121,6 +121,19 @@ def read_images(paths, max_side: int | None = None) -> list[Image.Image | ImageR
     return each_on_cores(read, list(paths))
 
 
+def readable_images(keyed, max_side: int | None, skip) -> list[tuple[object, Image.Image]]:
+    """(key, image) of each (key, path) in `keyed` that `read_images` can read, in order; `skip(key, path,
+    error)` is told of each one it cannot (changed or gone since the scan), which is left out."""
+    keyed = list(keyed)
+    out = []
+    for (key, path), image in zip(keyed, read_images([path for _, path in keyed], max_side)):
+        if isinstance(image, Exception):
+            skip(key, path, image)
+        else:
+            out.append((key, image))
+    return out
+
+
 def probe(src, *, max_pixels: int | None = DEFAULT_MAX_PIXELS) -> ImageInfo:
     """Read only the header: size, format, mode, frames and orientation.
 
