@@ -101,6 +101,24 @@ def test_a_verified_negative_is_a_likely_duplicate_only_when_it_scores_like_the_
     assert copy_like(verified, []) == (verified, [])
 
 
+def test_a_verified_negative_with_a_strong_match_is_a_likely_duplicate_whatever_its_descriptor_score():
+    """Under the descriptor floor (0.59, as above), a match on at least twice the inliers verification needs
+    (2 x VerifyConfig.min_inliers) takes a verified best result for an unknown duplicate: a heavily edited
+    real copy; one on fewer stays a negative (look-alikes verified on 12-18)."""
+    from nearsight.indexer.matching.query_verdict import DESCRIPTOR_KEY, copy_like, strong_inliers
+    from nearsight.indexer.matching.verify import VerifyConfig
+
+    strong = 2 * VerifyConfig().min_inliers
+    assert strong_inliers() == strong
+    positives = [{DESCRIPTOR_KEY: 0.5 + 0.1 * i} for i in range(10)]
+    verified = [{DESCRIPTOR_KEY: 0.35, "id": 0, "evidence": {"verified": True, "inliers": strong}},
+                {DESCRIPTOR_KEY: 0.35, "id": 1, "evidence": {"verified": True, "inliers": strong - 1}},
+                {DESCRIPTOR_KEY: 0.35, "id": 2, "evidence": None},
+                {DESCRIPTOR_KEY: 0.7, "id": 3, "evidence": {"verified": True, "inliers": 12}}]
+    likely, unlike = copy_like(verified, positives)
+    assert [r["id"] for r in likely] == [0, 3] and [r["id"] for r in unlike] == [1, 2]
+
+
 def test_groups_stay_at_the_query_threshold_without_evidence_from_the_collection():
     near = {"threshold": 0.995, "target_met": False, "target_precision": 0.99, "duplicate_pairs": 0.4}
     query = {"descriptor_threshold": 0.93}
