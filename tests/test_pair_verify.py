@@ -20,17 +20,17 @@ from nearsight.indexer.storage.store import Store
 from .test_pipeline import TINY
 
 
-@pytest.fixture(scope="module")
-def photo_store(tmp_path_factory):
+def index_photos(root: Path, astronaut_copies) -> tuple[Path, Path]:
+    """A store indexed (tiny training, no calibration) from scikit-image's astronaut at 384 px with the files
+    `astronaut_copies(astronaut, folder)` writes, two neighbouring tiles of its grass photo and four other
+    photos; returns (store directory, photo folder)."""
     import skimage.data
 
-    root = tmp_path_factory.mktemp("pairs")
     folder = root / "photos"
     folder.mkdir()
     astronaut = Image.fromarray(skimage.data.astronaut()).convert("RGB").resize((384, 384))
     astronaut.save(folder / "astronaut.png")
-    astronaut.resize((192, 192), Image.Resampling.LANCZOS).save(folder / "astronaut-small.jpg", quality=80)
-    astronaut.crop((40, 40, 361, 361)).save(folder / "astronaut-crop.jpg", quality=85)  # 70 % of the area
+    astronaut_copies(astronaut, folder)
     grass = Image.fromarray(skimage.data.grass()).convert("RGB")
     grass.crop((0, 0, 256, 256)).save(folder / "grass-left.png")
     grass.crop((256, 0, 512, 256)).save(folder / "grass-right.png")  # touches the left tile, shares no pixel
@@ -40,6 +40,15 @@ def photo_store(tmp_path_factory):
     with Store.open(store_dir, create=True, settings=load_settings(environ={})) as store:
         run_index(store, [folder], progress=False, train_config=TINY, calibrate=False)
     return store_dir, folder
+
+
+@pytest.fixture(scope="module")
+def photo_store(tmp_path_factory):
+    def copies(astronaut, folder):
+        astronaut.resize((192, 192), Image.Resampling.LANCZOS).save(folder / "astronaut-small.jpg", quality=80)
+        astronaut.crop((40, 40, 361, 361)).save(folder / "astronaut-crop.jpg", quality=85)  # 70 % of the area
+
+    return index_photos(tmp_path_factory.mktemp("pairs"), copies)
 
 
 def test_verified_score_is_never_below_the_threshold_once_stored():

@@ -124,6 +124,25 @@ def with_verified_pairs(store: Store, index, q_ids: np.ndarray, xq: np.ndarray, 
     return faiss_index.canonical_pairs(np.r_[a, va], np.r_[b, vb], np.r_[sims, vs].astype(np.float32))
 
 
+def with_asked_pairs(store: Store, space: "Space", q_ids: np.ndarray, xq: np.ndarray, pairs, thresholds: dict):
+    """`pairs` joined by the strongly verified results of the files `q_ids` (rows `xq`), each asked through the
+    query path over `space` (indexer/matching/pair_ask.py); unchanged when `ask_pairs` is off, verification is
+    off or the space has no model to ask with."""
+    if not (store.settings.ask_pairs and int(store.settings.verify_top) > 0 and space.model_dir is not None
+            and space.index is not None and len(q_ids)):
+        return pairs
+    from ..learning.runtime import load_encoder
+    from ..matching.pair_ask import asked_pairs
+    from ..matching.query import Searcher
+
+    encoder, card = load_encoder(space.model_dir, store.settings.runtime)
+    searcher = Searcher.for_build(store, space.index, space.whitening, encoder, card, thresholds["near"],
+                                  regions=space.regions)
+    va, vb, vs = asked_pairs(searcher, q_ids, xq, t_near=thresholds["near"])
+    a, b, sims = pairs
+    return faiss_index.canonical_pairs(np.r_[a, va], np.r_[b, vb], np.r_[sims, vs].astype(np.float32))
+
+
 def groups_from_pairs(store: Store, ids: np.ndarray, xb: np.ndarray, a, b, sims, *, t_near: float,
                       t_similar: float, verify_floor: float | None = None) -> list:
     """Groups that do not chain over the files `ids` (rows of `xb`) and their pairs. With a
@@ -156,6 +175,7 @@ class Space:
     xb: np.ndarray
     whitening: Any
     regions: tuple = (None, 0)
+    model_dir: Any = None  # the generation's model, to ask each file through the query path (pair_ask.py)
 
 
 def regroup(store: Store, space: Space, thresholds: dict, *, known: tuple | None = None) -> tuple[tuple, list]:
@@ -173,6 +193,7 @@ def regroup(store: Store, space: Space, thresholds: dict, *, known: tuple | None
     if known is None:
         pairs = with_verified_pairs(store, space.index, space.ids, space.xb,
                                     compute_pairs(space.index, space.ids, space.xb, t), thresholds)
+        pairs = with_asked_pairs(store, space, space.ids, space.xb, pairs, thresholds)
     else:
         a, b, sims, floor = known
         keep = (sims >= t) & np.isin(a, space.ids) & np.isin(b, space.ids)  # files quarantined since: out
@@ -270,7 +291,7 @@ def full_build(store: Store, model_dir, *, index_spec: str | None = None, calibr
     rng = np.random.default_rng(0)
     sample = xb[rng.choice(len(xb), min(TUNE_QUERIES, len(xb)), replace=False)]
     tuning = faiss_index.tune_search(index, sample, xb=xb, ids=ids)
-    space = Space(index, ids, xb, whitening, regions_for_generation(store, model, whitening))
+    space = Space(index, ids, xb, whitening, regions_for_generation(store, model, whitening), model_dir)
     n = int(len(ids))
     built = Built("full", index=index, thresholds={}, items=indexed_items(store, index), meta={
         "model": model,
@@ -303,7 +324,7 @@ def recalibrated(store: Store, config) -> Built:
     whitening = gen.load_whitening()
     ids, xb = whitened_vectors(store, gen.meta["model"], whitening)
     indexed = np.isin(ids, faiss_index.stored_ids(index))
-    space = Space(index, ids[indexed], xb[indexed], whitening, gen.load_regions())
+    space = Space(index, ids[indexed], xb[indexed], whitening, gen.load_regions(), model_dir)
     meta = {k: v for k, v in gen.meta.items()
             if k not in ("thresholds", "groups", "calibration", "generation", "published_at")}
     meta.update(indexed=int(len(space.ids)), calibrated_from=gen.name,

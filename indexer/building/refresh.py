@@ -57,6 +57,7 @@ from .build import (
     regroup,
     verify_floor_of,
     whitened_vectors,
+    with_asked_pairs,
     with_verified_pairs,
 )
 from .publish import Built, publish_built
@@ -178,9 +179,11 @@ def _components_of(seeds: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarra
     return nodes[np.isin(labels, labels[np.searchsorted(nodes, seeds)])]
 
 
-def regroup_touched(store: Store, prev, index, whitening, model: str, change: Change, thresholds: dict):
-    """Pairs and groups after `change`, recomputing only the touched components. Returns
-    (pairs, groups, how much was regrouped)."""
+def regroup_touched(store: Store, prev, index, whitening, model: str, change: Change, thresholds: dict, *,
+                    space: Space | None = None):
+    """Pairs and groups after `change`, recomputing only the touched components; the new files are asked through
+    the query path over `space` (build.with_asked_pairs) when it is given. Returns (pairs, groups, how much was
+    regrouped)."""
     t_near, t_similar = thresholds["near"], thresholds["similar"]
     pa, pb, ps = prev.load_pairs()
     gone = np.union1d(change.removed, change.replaced)
@@ -189,6 +192,8 @@ def regroup_touched(store: Store, prev, index, whitening, model: str, change: Ch
     xq = whitened_vectors(store, model, whitening, fresh)[1] if len(fresh) else np.zeros((0, index.d), np.float32)
     na, nb, ns = with_verified_pairs(store, index, fresh, xq, pairs_of(store, index, fresh, xq, t_similar, model,
                                                                       whitening), thresholds)
+    if space is not None:
+        na, nb, ns = with_asked_pairs(store, space, fresh, xq, (na, nb, ns), thresholds)
     a, b, sims = faiss_index.canonical_pairs(np.r_[pa[~dropped], na], np.r_[pb[~dropped], nb],
                                              np.r_[ps[~dropped], ns].astype(np.float32))
     prev_groups = prev.load_groups()["groups"]
@@ -255,12 +260,14 @@ def _update(store: Store, prev, model_dir, change: Change, reason: str, *, setti
     regions_extra(*regions, meta, built.files)
     started = time.monotonic()
     if all(built.thresholds[k] == prev.meta["thresholds"][k] for k in ("near", "similar")):
-        built.pairs, built.groups, regrouped = regroup_touched(store, prev, index, whitening, model, change,
-                                                               built.thresholds)
+        built.pairs, built.groups, regrouped = regroup_touched(
+            store, prev, index, whitening, model, change, built.thresholds,
+            space=Space(index, np.zeros(0, np.int64), None, whitening, regions, model_dir))
     else:  # other thresholds: every pair and group anew, in the same space
         if ids is None:
             ids, xb = whitened_vectors(store, model, whitening)
-        built.pairs, built.groups = regroup(store, Space(index, ids, xb, whitening), built.thresholds)
+        built.pairs, built.groups = regroup(store, Space(index, ids, xb, whitening, regions, model_dir),
+                                            built.thresholds)
         regrouped = {"files_regrouped": int(len(ids)), "groups_kept": 0}
     meta["build"]["regrouped"] = regrouped
     built.stages["groups"] = round(time.monotonic() - started, 3)
