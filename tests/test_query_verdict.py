@@ -11,7 +11,8 @@ from PIL import Image
 from nearsight.indexer.calibration.calibrate import grouping_threshold
 from nearsight.indexer.building.pipeline import run_index
 from nearsight.indexer.matching.query import Searcher
-from nearsight.indexer.matching.query_verdict import copy_probability, false_flag_threshold, fit_probability, threshold_report
+from nearsight.indexer.matching.query_verdict import (DESCRIPTOR_KEY, copy_probability, false_flag_threshold, fit_probability,
+                                                     threshold_report)
 from nearsight.indexer.core.settings import load_settings
 from nearsight.indexer.storage.store import Store
 
@@ -239,3 +240,72 @@ def test_listing_commands_start_without_torch_or_faiss(distinct_store, tmp_path,
     args = [str(tmp_path / "q") if a == "QDIR" else a for a in command] + ["--store", str(store_dir)]
     out = run_fresh(args)
     assert (out["code"], out["loaded"]) == (0, [])
+
+
+class _AskedCollection:
+    """A stand-in for the searcher over a collection in which the files `with_copy` have a copy that verifies
+    strongly (40 inliers) and every other file's best result is an unverified look-alike: enough to count what
+    `calibrate_query` asks, not to score anything."""
+
+    size = 8
+
+    def __init__(self, n: int, with_copy: set[int]):
+        self.n, self.with_copy, self.asked_plain = n, with_copy, 0
+
+        class _Catalog:
+            @staticmethod
+            def content_ids_of(ids):
+                return {i: i for i in ids}
+
+        class _Store:
+            catalog = _Catalog()
+
+        self.store = _Store()
+
+    def vectors_for_images(self, images):
+        return np.zeros((len(images), 4), np.float32)
+
+    def own_parts(self, ids):
+        return {}
+
+    def neighbours(self, xq, k, *, excludes=None, images=None, parts=None):
+        out = []
+        for image in images:
+            kind, i = image
+            if kind == "copy":  # a positive: its original comes back verified
+                out.append([{"id": i, "similarity": 0.9, DESCRIPTOR_KEY: 0.95, "evidence": {"verified": True, "inliers": 80}}])
+                continue
+            self.asked_plain += kind == "plain"
+            if kind == "plain" and i in self.with_copy:
+                out.append([{"id": -i, "similarity": 0.8, DESCRIPTOR_KEY: 0.5, "evidence": {"verified": True, "inliers": 40}}])
+            else:
+                out.append([{"id": -i, "similarity": 0.3, DESCRIPTOR_KEY: 0.3, "evidence": None}])
+        return out
+
+
+@pytest.mark.parametrize("share_with_copy", [0.0, 0.8])
+def test_images_are_asked_as_they_are_until_enough_of_them_remain_negatives(monkeypatch, share_with_copy):
+    """In a collection where most images have a copy, their best results are left out as likely duplicates;
+    the calibration keeps asking until `plain_negatives` negatives remain (or every image was asked), so the
+    false-flag bound rests on as many negatives as in a collection without copies. (Edited queries are
+    look-alikes here: their first chunk, at least query_verdict.CHUNK of them, is enough.)"""
+    from nearsight.indexer.matching import query_verdict
+    from nearsight.indexer.matching.query_verdict import QueryVerdictConfig, calibrate_query
+
+    n, wanted = 2000, 300
+    ids = np.arange(1, n + 1, dtype=np.int64)
+    with_copy = set(ids[: int(share_with_copy * n)].tolist())
+    searcher = _AskedCollection(n, with_copy)
+    monkeypatch.setattr(query_verdict, "own_images",
+                        lambda _s, ids_, rows, _side: [(r, int(ids_[r]), ("plain", int(ids_[r]))) for r in rows])
+    meta = {int(i): {"content_hash": str(i), "pixel_hash": None} for i in ids}
+    config = QueryVerdictConfig(plain_negatives=wanted, edited_negatives=10)
+    verdict, _ = calibrate_query(searcher, ids, meta, set(), [("copy", int(i)) for i in ids[:40]], ids[:40].tolist(),
+                                 config, np.random.default_rng(0), lambda images, rng: [("edited", i) for _k, i in images])
+    plain_negatives = verdict["negatives"] - verdict["negative_queries"]["edited"]  # every edited one is a negative here
+    assert plain_negatives >= wanted
+    if share_with_copy == 0.0:
+        assert verdict["negative_queries"]["as_indexed"] == wanted == searcher.asked_plain  # no more than needed
+    else:  # about wanted / 0.2 asked, in chunks
+        assert verdict["negative_queries"]["as_indexed"] == searcher.asked_plain > wanted / (1 - share_with_copy) - 1
+        assert verdict["likely_duplicates"]["verified"] >= searcher.asked_plain - plain_negatives

@@ -40,6 +40,7 @@ from ..reading.images import readable_images
 log = logging.getLogger(__name__)
 
 ANSWERED = 5  # results asked per calibration query: the verified top 3 and a little room
+CHUNK = 256  # images asked at a time once the first plain_negatives (edited_negatives) are asked
 # A verified negative counts as an unknown duplicate when its descriptor score reaches this quantile of the
 # synthetic copies' (their lowest tenth scores below it).
 COPY_LIKE_QUANTILE = 0.1
@@ -57,8 +58,8 @@ DESCRIPTOR_KEY = "descriptor_similarity"
 class QueryVerdictConfig:
     false_flag_rate: float = 0.01  # target share of queries without their original that get a flag
     prior: float = 0.5  # share of queries that are copies, for `probability`
-    plain_negatives: int = 1024  # collection images queried as they are
-    edited_negatives: int = 512  # ... and edited
+    plain_negatives: int = 1024  # collection images queried as they are that remain negatives (more are asked)
+    edited_negatives: int = 512  # ... and edited that remain negatives (more are asked)
 
     def validate(self) -> None:
         if not 0.0 < self.false_flag_rate < 0.5:
@@ -260,25 +261,43 @@ def calibrate_query(searcher, ids: np.ndarray, meta: dict, same_pairs: set, edit
     dups = known_duplicates(ids, meta, content, same_pairs)
     found, misses = positive_answers(searcher, edited, targets, dups, xq_edited)
     n = len(ids)
-    plain = set(rng.choice(n, min(config.plain_negatives, n), replace=False).tolist())
-    edited_rows = set(rng.choice(n, min(config.edited_negatives, n), replace=False).tolist())
-    own = own_images(searcher, ids, sorted(plain | edited_rows), 2 * searcher.size)
-    to_edit = [(i, im) for r, i, im in own if r in edited_rows]
-    as_indexed = [(r, i, im) for r, i, im in own if r in plain]
-    queries = [(i, im) for _, i, im in as_indexed] + list(zip([i for i, _ in to_edit],
-                                                              edit([im for _, im in to_edit], rng)))
-    known = None
-    if xb is not None:
-        parts = searcher.own_parts([i for _, i, _ in as_indexed])
-        known = [(xb[r], parts.get(i)) for r, i, _ in as_indexed] + [None] * len(to_edit)
-    negatives, likely = negative_answers(searcher, queries, dups, known)
-    # A verified best result is taken for an unknown duplicate (and left out of the negatives) only when the
-    # descriptor agrees, scoring it like most of the synthetic copies do, or when the geometric match is strong
-    # (`copy_like`): a look-alike that shares a drawn element, a logo or a caption with its neighbour can
-    # verify, on few inliers, and leaving it out would put the threshold where such look-alikes get flags;
-    # keeping a real copy among the negatives (a collection rich in edited copies) puts it too high.
-    likely, unlike = copy_like(likely, found)
-    negatives = negatives + unlike
+    negatives, likely, n_unlike = [], [], 0
+
+    def ask(queries, known=None) -> int:
+        """Ask `queries` ((file id, image)), keep their negatives and likely duplicates; how many stayed negatives.
+        A verified best result is taken for an unknown duplicate (and left out of the negatives) only when the
+        descriptor agrees, scoring it like most of the synthetic copies do, or when the geometric match is
+        strong (`copy_like`): a look-alike that shares a drawn element, a logo or a caption with its neighbour
+        can verify, on few inliers, and leaving it out would put the threshold where such look-alikes get
+        flags; keeping a real copy among the negatives (a collection rich in edited copies) puts it too high."""
+        nonlocal n_unlike
+        more, more_likely = negative_answers(searcher, queries, dups, known)
+        more_likely, more_unlike = copy_like(more_likely, found)
+        negatives.extend(more + more_unlike)
+        likely.extend(more_likely)
+        n_unlike += len(more_unlike)
+        return len(more) + len(more_unlike)
+
+    # Each image is asked at most once as it is and once edited, in a random order, until `plain_negatives`
+    # and `edited_negatives` of each kind remain negatives (or every image has been asked): in a collection
+    # rich in copies most best results are copies, left out as likely duplicates, and too few negatives would
+    # put the false-flag bound where the sample runs out, not where the rate is.
+    plain_order, edited_order = rng.permutation(n).tolist(), rng.permutation(n).tolist()
+    asked_plain = asked_edited = plain_left = edited_left = 0
+    while asked_edited < n and edited_left < config.edited_negatives:
+        rows = edited_order[asked_edited : asked_edited + max(CHUNK, config.edited_negatives - edited_left)]
+        asked_edited += len(rows)
+        to_edit = [(i, im) for _r, i, im in own_images(searcher, ids, rows, 2 * searcher.size)]
+        edited_left += ask(list(zip([i for i, _ in to_edit], edit([im for _, im in to_edit], rng))))
+    while asked_plain < n and plain_left < config.plain_negatives:
+        rows = plain_order[asked_plain : asked_plain + max(CHUNK, config.plain_negatives - plain_left)]
+        asked_plain += len(rows)
+        as_indexed = own_images(searcher, ids, rows, 2 * searcher.size)
+        known = None
+        if xb is not None:  # their own vectors and region vectors: no encoder pass
+            parts = searcher.own_parts([i for _, i, _ in as_indexed])
+            known = [(xb[r], parts.get(i)) for r, i, _ in as_indexed]
+        plain_left += ask([(i, im) for _, i, im in as_indexed], known)
 
     pos = np.asarray([r["similarity"] for r in found])
     neg = np.asarray([r["similarity"] for r in negatives])
@@ -300,9 +319,9 @@ def calibrate_query(searcher, ids: np.ndarray, meta: dict, same_pairs: set, edit
         "threshold": t, "false_flag_threshold": t_flags, "even_odds_score": even,
         "target_false_flag_rate": config.false_flag_rate, "target_confirmed": met,
         "positives": int(len(pos) + misses), "missed_positives": int(misses), "negatives": int(len(neg)),
-        "negative_queries": {"as_indexed": len(plain), "edited": len(edited_rows)},
-        "likely_duplicates": {"verified": len(likely), "not_verified": int(len(neg) - len(unlike)),
-                              "verified_unlike_copies": len(unlike)},
+        "negative_queries": {"as_indexed": asked_plain, "edited": asked_edited},
+        "likely_duplicates": {"verified": len(likely), "not_verified": int(len(neg) - n_unlike),
+                              "verified_unlike_copies": n_unlike},
         **threshold_report(pos, misses, neg, t),
         "descriptor_threshold": t_d, "descriptor": threshold_report(pos_d, misses, neg_d, t_d),
         "probability": probability,
