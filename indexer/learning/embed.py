@@ -102,7 +102,9 @@ def decode_files(
     if workers <= 1:
         yield from map(_decode_one, jobs)
         return
-    with multiprocessing.get_context().Pool(workers) as pool:
+    # spawn, not fork: the parent may hold threads (ONNX Runtime's, the verification pool's) whose locks a forked
+    # child would inherit held; a test run that asked queries before training hung there for 10 minutes.
+    with multiprocessing.get_context("spawn").Pool(workers) as pool:
         for start in range(0, len(jobs), _DECODE_BLOCK):
             yield from pool.imap(_decode_one, jobs[start : start + _DECODE_BLOCK], chunksize=8)
 
