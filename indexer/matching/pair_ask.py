@@ -31,16 +31,12 @@ import numpy as np
 
 from . import index as faiss_index
 from .pair_verify import verified_score
+from .query_verdict import strongly_verified
 
 log = logging.getLogger(__name__)
 
 ASKED = 5  # results asked per file
 BATCH = 32  # files asked together (their small copies are decoded per batch: memory stays bounded)
-
-
-def strongly_verified(result: dict, strong: int) -> bool:
-    evidence = result.get("evidence") or {}
-    return bool(evidence.get("verified")) and int(evidence.get("inliers", 0)) >= strong
 
 
 def asked_pairs(searcher, q_ids: np.ndarray, xq: np.ndarray, *, t_near: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

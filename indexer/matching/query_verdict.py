@@ -221,6 +221,12 @@ def strong_inliers() -> int:
     return STRONG_INLIER_FACTOR * VerifyConfig().min_inliers
 
 
+def strongly_verified(result: dict, strong: int) -> bool:
+    """Whether a result's geometric match verified on at least `strong` inliers (`strong_inliers()`)."""
+    evidence = result.get("evidence") or {}
+    return bool(evidence.get("verified")) and int(evidence.get("inliers", 0)) >= strong
+
+
 def copy_like(verified: list[dict], positives: list[dict], quantile: float = COPY_LIKE_QUANTILE
               ) -> tuple[list[dict], list[dict]]:
     """(those of the `verified` negatives taken for unknown duplicates, the others). One is taken for a duplicate
@@ -233,7 +239,7 @@ def copy_like(verified: list[dict], positives: list[dict], quantile: float = COP
     strong = strong_inliers()
 
     def duplicate(r: dict) -> bool:
-        return r[DESCRIPTOR_KEY] >= floor or int((r.get("evidence") or {}).get("inliers", 0)) >= strong
+        return r[DESCRIPTOR_KEY] >= floor or strongly_verified(r, strong)
 
     return [r for r in verified if duplicate(r)], [r for r in verified if not duplicate(r)]
 
