@@ -99,8 +99,11 @@ def build_parser() -> argparse.ArgumentParser:
                                    "scanning FOLDER if given), or fine-tune it from a person's verdicts.")
     p.add_argument("folders", nargs="*", metavar="FOLDER", help="folders to scan into the store first")
     p.add_argument("--resume", action="store_true", help="continue an interrupted training from its checkpoint")
-    p.add_argument("--from-verdicts", metavar="CSV",
-                   help="fine-tune from pairs marked same/different (a verdict file: CSV columns a,b,verdict[,note], a and b image ids or paths)")
+    source = p.add_mutually_exclusive_group()
+    source.add_argument("--from-verdicts", metavar="CSV",
+                        help="fine-tune from pairs marked same/different (a verdict file: CSV columns a,b,verdict[,note], a and b image ids or paths)")
+    source.add_argument("--from-stored-verdicts", action="store_true",
+                        help="fine-tune from the verdicts the store holds (the review page's, `verdicts import`'s)")
     p.add_argument("--json", action="store_true", help="print the result as JSON")
     p.add_argument("--no-progress", action="store_true", help="no progress bar, even on a terminal")
     _training_options(p, budget_flag="--minutes", budget_dest="minutes")

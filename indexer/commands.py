@@ -179,11 +179,12 @@ def cmd_train(args) -> int:
         if args.folders:
             run_index(store, args.folders, progress=_progress(args), build=False)
         with store.lock():
-            if args.from_verdicts:
-                from .calibration.verdicts import verdict_file_pairs
+            if args.from_verdicts or args.from_stored_verdicts:
+                from .calibration.verdicts import stored_verdict_pairs, verdict_file_pairs
 
-                result = fine_tune_into_store(store, verdict_file_pairs(store, Path(args.from_verdicts)),
-                                              progress=_progress(args))
+                pairs = (verdict_file_pairs(store, Path(args.from_verdicts)) if args.from_verdicts
+                         else stored_verdict_pairs(store.catalog))
+                result = fine_tune_into_store(store, pairs, progress=_progress(args))
                 out = {"model": result.version, "fine_tuned_from": result.fine_tuned_from, "steps": result.steps,
                        "pairs_used": result.pairs_used, "pairs_skipped": result.pairs_skipped,
                        "before": result.before, "after": result.after}

@@ -329,3 +329,42 @@ def test_fine_tune_separates_same_from_different_pairs(collection, broken_file, 
     assert gap(result.after) > max(gap(result.before), 0.0)
     _, card = load_model(tmp_path / "tuned")
     assert card["fine_tuned_from"] == result.fine_tuned_from
+
+
+def test_fine_tuning_reads_the_verdicts_the_store_holds(tmp_path):
+    """`train --from-stored-verdicts` takes the catalog's latest verdict per pair of contents, once each.
+    Oracle: the verdicts table read with Python's sqlite3 directly (the latest row per content pair)."""
+    import sqlite3
+
+    from nearsight.indexer.calibration.verdicts import stored_verdict_pairs
+    from nearsight.indexer.storage.catalog import Catalog
+
+    catalog = Catalog(tmp_path / "c.sqlite", create=True)
+    with pytest.raises(UsageError, match="no verdicts yet"):
+        stored_verdict_pairs(catalog)
+    source_id = catalog.add_source(tmp_path)
+    with catalog.transaction() as conn:  # a.jpg and c.jpg hold the same bytes
+        c1, c2, c3 = (catalog.add_content(conn, h * 32, 10, {"state": "ok"}, 0.0) for h in ("11", "22", "33"))
+        a, b, c, d = (catalog.upsert_file(conn, source_id, name, size=10, mtime_ns=1, content_id=cid, state="ok",
+                                          reason=None, now=1.0)
+                      for name, cid in (("a.jpg", c1), ("b.jpg", c2), ("c.jpg", c1), ("d.jpg", c3)))
+    for name in ("b.jpg", "c.jpg", "d.jpg"):  # a.jpg is not on disk (moved away since): c.jpg stands for it
+        (tmp_path / name).write_bytes(b"x")
+    catalog.add_verdicts([{"file_a": b, "file_b": a, "verdict": "same"}], origin="csv")
+    catalog.add_verdicts([{"file_a": d, "file_b": a, "verdict": "same"}], origin="review")
+    catalog.add_verdicts([{"file_a": c, "file_b": b, "verdict": "different"}], origin="review")  # replaces the first
+
+    pairs = stored_verdict_pairs(catalog)
+    with sqlite3.connect(tmp_path / "c.sqlite") as raw:
+        latest = raw.execute("SELECT content_a, content_b, verdict FROM verdicts WHERE id IN "
+                             "(SELECT MAX(id) FROM verdicts GROUP BY content_a, content_b) ORDER BY id").fetchall()
+    assert len(pairs) == len(latest) == 2
+    name = {tmp_path / "c.jpg": c1, tmp_path / "b.jpg": c2, tmp_path / "d.jpg": c3}
+    assert [(min(name[x], name[y]), max(name[x], name[y]), "same" if same else "different")
+            for x, y, same in pairs] == latest
+    assert all(p.is_file() for x, y, _ in pairs for p in (x, y))
+
+
+def test_train_takes_one_source_of_verdicts(run_cli, tmp_path):
+    proc = run_cli("train", "--store", tmp_path / "s", "--from-verdicts", tmp_path / "v.csv", "--from-stored-verdicts")
+    assert proc.returncode == 2 and "not allowed with argument" in proc.stderr

@@ -102,6 +102,30 @@ def verdict_file_pairs(store: Store, path: Path) -> list[tuple[Path, Path, bool]
     return [(where(r.a, r.line), where(r.b, r.line), r.same) for r in rows]
 
 
+def stored_verdict_pairs(catalog) -> list[tuple[Path, Path, bool]]:
+    """The catalog's verdicts (the review page's clicks, `verdicts import`, the API) as (path a, path b, same)
+    for fine-tuning: the latest verdict on each pair of contents, oldest first, once each.
+
+    A verdict is kept by content, so it holds for every pair of files with those two contents; the first
+    pair whose two files are both on disk stands for it (copies of one content are the same image), else the
+    first pair, which fine-tuning then counts as unreadable. Raises UsageError when there is no verdict."""
+    chosen: dict[int, tuple[str, str, str, bool]] = {}
+    rows = catalog.latest_verdict_files()
+    paths = catalog.paths_for(sorted({r[k] for r in rows for k in ("file_a", "file_b")})) if rows else {}
+    for r in rows:
+        a, b = paths.get(r["file_a"]), paths.get(r["file_b"])
+        if a is None or b is None:
+            continue
+        held = chosen.get(r["id"])
+        on_disk = Path(a).is_file() and Path(b).is_file()
+        if held is None or (on_disk and not held[3]):
+            chosen[r["id"]] = (r["verdict"], a, b, on_disk)
+    if not chosen:
+        raise UsageError("the store holds no verdicts yet: give some on the review page or with "
+                         "`nearsight verdicts import FILE`")
+    return [(Path(a), Path(b), verdict == "same") for _id, (verdict, a, b, _) in sorted(chosen.items())]
+
+
 def verdict_report(sims: np.ndarray, same: np.ndarray, grid: np.ndarray, target: float, min_verdicts: int) -> dict | None:
     """Isotonic P(same | similarity), precision of judged pairs above each threshold and the
     lowest threshold whose judged precision reaches `target`; None when there are too few verdicts."""
