@@ -16,7 +16,10 @@ Reported: pair precision and recall of the published groups (duplicate tiers), o
 copies' family and severity; the same for the descriptor alone at the groups' threshold and for the
 best single descriptor threshold at precision 0.99 (an oracle that uses the truth); pHash at Hamming
 distance <= 10 (imagehash, a cut-off common in practice, from memory); what calibration estimated
-against what was realised; the wrong pairs.
+against what was realised; the wrong pairs; and what the no-chaining rule costs: over the generation's
+confirmed pairs (pairs.npz at the near-duplicate threshold: descriptor, verified and asked pairs), the pairs
+themselves, star groups (every member confirmed with one centre) and connected components (any chain), each
+split into tile-copy and copy-copy pairs.
 
     .venv/bin/python benchmarks/bench_groups.py --work WORK      # WORK: a bench_quality --work folder
 
@@ -150,6 +153,59 @@ def oracle_threshold(scores: np.ndarray, y: np.ndarray, target: float) -> tuple[
     return float(scores[order][k - 1]), float(tp[k - 1] / max(1, y.sum()))
 
 
+def star_groups(a: np.ndarray, b: np.ndarray) -> list[set[int]]:
+    """Greedy star groups over the pairs (a, b): the free node with the most free partners becomes a centre and
+    takes all of them, so every member is paired with its centre (members may be two pairs apart)."""
+    partners: dict[int, set[int]] = defaultdict(set)
+    for x, y in zip(a.tolist(), b.tolist()):
+        partners[x].add(y)
+        partners[y].add(x)
+    free, out = set(partners), []
+    while free:
+        centre = max(free, key=lambda n: (len(partners[n] & free), -n))
+        group = {centre} | (partners[centre] & free)
+        if len(group) < 2:
+            break
+        out.append(group)
+        free -= group
+    return out
+
+
+def component_groups(a: np.ndarray, b: np.ndarray) -> list[set[int]]:
+    """Connected components of the pairs (a, b): what grouping would give if it chained (scipy.sparse.csgraph)."""
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    nodes = np.unique(np.r_[a, b])
+    if len(nodes) == 0:
+        return []
+    ia, ib = np.searchsorted(nodes, a), np.searchsorted(nodes, b)
+    _, labels = connected_components(coo_matrix((np.ones(len(ia)), (ia, ib)), shape=(len(nodes),) * 2), directed=False)
+    return [set(nodes[labels == k].tolist()) for k in np.unique(labels)]
+
+
+def chaining_figures(a: np.ndarray, b: np.ndarray, name: dict[int, str], groups_called: set[frozenset],
+                     truth: set[frozenset], files: dict[str, dict]) -> dict:
+    """Pair precision and recall (all, tile-copy, copy-copy) of the published groups, of the confirmed pairs
+    (a, b) themselves, and of star groups and connected components over them."""
+    tile_copy = {p for p in truth if any(files[x]["family"] is None for x in p)}
+    copy_copy = truth - tile_copy
+
+    def pairs(groups):
+        return {frozenset((name[x], name[y])) for g in groups for x, y in itertools.combinations(sorted(g), 2)}
+
+    def figures(called):
+        right = called & truth
+        return {"called": len(called), "wrong": len(called - truth),
+                "precision": len(right) / len(called) if called else None, "recall": len(right) / max(1, len(truth)),
+                "recall_tile_copy": len(called & tile_copy) / max(1, len(tile_copy)),
+                "recall_copy_copy": len(called & copy_copy) / max(1, len(copy_copy))}
+
+    return {"tile_copy_pairs": len(tile_copy), "copy_copy_pairs": len(copy_copy),
+            "groups": figures(groups_called), "confirmed": figures({frozenset((name[x], name[y])) for x, y in zip(a, b)}),
+            "star": figures(pairs(star_groups(a, b))), "components": figures(pairs(component_groups(a, b)))}
+
+
 def run(args) -> dict:
     from benchmarks.bench_quality import _store
     from nearsight.indexer.building.build import whitened_vectors
@@ -175,6 +231,10 @@ def run(args) -> dict:
         thresholds = gen.meta["thresholds"]
         ids, xb = whitened_vectors(store, gen.meta["model"], gen.load_whitening())
         meta = store.catalog.image_meta(ids.tolist())
+        with np.load(gen.path / "pairs.npz") as saved:
+            keep = saved["sims"] >= float(thresholds["near"])
+            confirmed = saved["a"][keep].astype(np.int64), saved["b"][keep].astype(np.int64)
+        pair_meta = store.catalog.image_meta(np.unique(np.r_[confirmed[0], confirmed[1]]).tolist())
 
     def rel(path: str) -> str:
         return Path(path).resolve().relative_to(folder.resolve()).as_posix()
@@ -189,6 +249,9 @@ def run(args) -> dict:
               "thresholds": thresholds, "groups": pair_figures(called, truth, files)}
     wrong = sorted(called - truth, key=lambda p: sorted(p))
     result["groups"]["wrong"] = [{"pair": sorted(p), "kind": wrong_kind(p, files)} for p in wrong]
+
+    result["chaining"] = chaining_figures(*confirmed, {int(i): rel(m["path"]) for i, m in pair_meta.items()},
+                                          called, truth, files)
 
     # The descriptor alone over every pair of indexed files: at the groups' threshold, and the oracle's best.
     rels = [rel(meta[int(i)]["path"]) for i in ids]
@@ -267,6 +330,20 @@ def render(r: dict) -> list[str]:
                      f"{p['recall_by_family'][fam]['recall']:.3f} |")
     lines += ["", "| severity | pairs | groups |", "|---|---:|---:|"]
     lines += [f"| {s} | {v['n']} | {v['recall']:.3f} |" for s, v in g["recall_by_severity"].items()]
+    ch = r.get("chaining")
+    if ch:
+        lines += ["", "What the no-chaining rule costs: the generation's confirmed pairs at the near-duplicate threshold "
+                  "(descriptor, verified and asked pairs) and two ways of grouping them that chain. The published groups "
+                  "need every pair of members confirmed; star groups need each member confirmed with the group's centre "
+                  "(greedy: the file with the most free partners first); components take any chain. "
+                  f"Truth: {ch['tile_copy_pairs']} tile-copy pairs, {ch['copy_copy_pairs']} copy-copy pairs.", "",
+                  "| pairs from | called | wrong | precision | recall | tile-copy recall | copy-copy recall |",
+                  "|---|---:|---:|---:|---:|---:|---:|"]
+        for key, label in (("groups", "the published groups"), ("confirmed", "the confirmed pairs alone"),
+                           ("star", "star groups over them"), ("components", "connected components (chaining)")):
+            v = ch[key]
+            lines.append(f"| {label} | {v['called']} | {v['wrong']} | {_pct(v['precision'])} | {v['recall']:.3f} | "
+                         f"{v['recall_tile_copy']:.3f} | {v['recall_copy_copy']:.3f} |")
     kinds = Counter(w["kind"] for w in g["wrong"])
     lines += ["", f"Wrong pairs in groups: {len(g['wrong'])} ({', '.join(f'{k}: {n}' for k, n in kinds.items()) or 'none'})."]
     lines += [f"- {w['pair'][0]} / {w['pair'][1]} ({w['kind']})" for w in g["wrong"][:15]]

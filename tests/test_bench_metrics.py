@@ -224,3 +224,33 @@ def test_vignette_keeps_the_centre_and_darkens_the_corners_by_the_strength():
     corner = 1 - 0.5 * ((100 / 100.5) ** 2 + (50 / 50.5) ** 2) / 2  # the corner pixel's centre is half a pixel in
     np.testing.assert_allclose(out[0, 0], np.array([200, 160, 120]) * corner, atol=0.6)
     assert (out[50, :, 0] <= out[50, 100, 0] + 0.5).all()
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_bench_groups_chaining_figures_against_brute_force(seed):
+    """bench_groups' groupings that chain: components against a NumPy transitive closure (boolean matrix
+    products until nothing changes); every star group has a centre paired with each other member."""
+    from benchmarks.bench_groups import component_groups, star_groups
+
+    rng = np.random.default_rng(seed)
+    n = 40
+    a = rng.integers(0, n, 45)
+    b = rng.integers(0, n, 45)
+    a, b = a[a != b], b[a != b]
+    adj = np.eye(n, dtype=bool)
+    adj[a, b] = adj[b, a] = True
+    reach = adj.copy()
+    while True:
+        step = (reach.astype(int) @ adj.astype(int)) > 0
+        if (step == reach).all():
+            break
+        reach = step
+    touched = np.unique(np.r_[a, b])
+    expected = {frozenset(np.flatnonzero(reach[i]).tolist()) for i in touched}
+    assert {frozenset(g) for g in component_groups(a, b)} == expected
+
+    stars = star_groups(a, b)
+    seen = [x for g in stars for x in g]
+    assert len(seen) == len(set(seen))  # disjoint
+    for g in stars:
+        assert len(g) >= 2 and any(all(adj[c, m] for m in g) for c in g)
