@@ -333,7 +333,8 @@ def render(r: dict) -> list[str]:
     ch = r.get("chaining")
     if ch:
         lines += ["", "What the no-chaining rule costs: the generation's confirmed pairs at the near-duplicate threshold "
-                  "(descriptor, verified and asked pairs) and two ways of grouping them that chain. The published groups "
+                  "(pairs.npz: descriptor, verified and asked pairs; the pairs that grouping verifies inside small components "
+                  "are not stored there) and two ways of grouping them that chain. The published groups "
                   "need every pair of members confirmed; star groups need each member confirmed with the group's centre "
                   "(greedy: the file with the most free partners first); components take any chain. "
                   f"Truth: {ch['tile_copy_pairs']} tile-copy pairs, {ch['copy_copy_pairs']} copy-copy pairs.", "",

@@ -65,14 +65,14 @@ def test_missing_pairs_of_a_small_component_are_verified(photo_store):
         file_id = {name: store.catalog.file_id_for_path(folder / name) for name in
                    ("astronaut.png", "astronaut-small.jpg", "astronaut-crop.jpg", "grass-left.png", "grass-right.png")}
         ids = np.array(sorted(file_id.values()), np.int64)
-        xb = np.eye(len(ids), dtype=np.float32)  # every cosine 0: only the pair list and verification count
+        xb = np.eye(len(ids), dtype=np.float32)  # every cosine 0, under any floor: only the pairs and verification count
         a_, s_, c_ = file_id["astronaut.png"], file_id["astronaut-small.jpg"], file_id["astronaut-crop.jpg"]
         gl, gr = file_id["grass-left.png"], file_id["grass-right.png"]
         # The descriptor tied the small copy to both, but left the crop and its original apart; it put the
         # two grass tiles just above the similar threshold.
         pairs = (np.array([min(a_, s_), min(s_, c_), min(gl, gr)]), np.array([max(a_, s_), max(s_, c_), max(gl, gr)]),
                  np.array([0.95, 0.9, 0.7], np.float32))
-        a, b, sims = complete_components(store, ids, xb, pairs, t_near=0.8, floor=-1.0)
+        a, b, sims = complete_components(store, ids, xb, pairs, t_near=0.8)
     found = {(int(x), int(y)): float(v) for x, y, v in zip(a, b, sims)}
     assert found[(min(a_, c_), max(a_, c_))] >= 0.8  # the crop verified against its original
     assert found[(min(gl, gr), max(gl, gr))] == pytest.approx(0.7)  # the neighbouring tile did not

@@ -144,15 +144,15 @@ def with_asked_pairs(store: Store, space: "Space", q_ids: np.ndarray, xq: np.nda
 
 
 def groups_from_pairs(store: Store, ids: np.ndarray, xb: np.ndarray, a, b, sims, *, t_near: float,
-                      t_similar: float, verify_floor: float | None = None) -> list:
-    """Groups that do not chain over the files `ids` (rows of `xb`) and their pairs. With a
-    `verify_floor`, the missing pairs of small near-duplicate components are verified first
+                      t_similar: float, complete: bool = True) -> list:
+    """Groups that do not chain over the files `ids` (rows of `xb`) and their pairs. With `complete` (and
+    verification on), the missing pairs of small components are verified first
     (pair_verify.complete_components), so that a group of edited copies is not split for
     want of a score between two of them."""
-    if verify_floor is not None and int(store.settings.verify_top) > 0:
+    if complete and int(store.settings.verify_top) > 0:
         from ..matching.pair_verify import complete_components
 
-        a, b, sims = complete_components(store, ids, xb, (a, b, sims), t_near=t_near, floor=verify_floor)
+        a, b, sims = complete_components(store, ids, xb, (a, b, sims), t_near=t_near)
     meta = store.catalog.image_meta(ids.tolist())
     _add_pixel_hashes(store, meta, a, b, sims, t_near)
     row = {int(i): n for n, i in enumerate(ids)}
@@ -203,7 +203,7 @@ def regroup(store: Store, space: Space, thresholds: dict, *, known: tuple | None
             pairs = faiss_index.canonical_pairs(np.r_[pairs[0], more[0]], np.r_[pairs[1], more[1]],
                                                 np.r_[pairs[2], more[2]].astype(np.float32))
     groups = groups_from_pairs(store, space.ids, space.xb, *pairs, t_near=thresholds["near"],
-                               t_similar=thresholds["similar"], verify_floor=verify_floor_of(thresholds))
+                               t_similar=thresholds["similar"])
     return pairs, groups
 
 

@@ -55,7 +55,6 @@ from .build import (
     groups_from_pairs,
     recalibrated,
     regroup,
-    verify_floor_of,
     whitened_vectors,
     with_asked_pairs,
     with_verified_pairs,
@@ -204,7 +203,7 @@ def regroup_touched(store: Store, prev, index, whitening, model: str, change: Ch
     inside = np.isin(a, touched)
     xs = whitened_vectors(store, model, whitening, touched)[1] if len(touched) else np.zeros((0, index.d), np.float32)
     regrouped = groups_from_pairs(store, touched, xs, a[inside], b[inside], sims[inside], t_near=t_near,
-                                  t_similar=t_similar, verify_floor=verify_floor_of(thresholds)) if len(touched) else []
+                                  t_similar=t_similar) if len(touched) else []
     stale_gids = {g["gid"] for g in stale}
     kept = [Group.from_dict(g) for g in prev_groups
             if g["gid"] not in stale_gids and not np.isin([m["id"] for m in g["members"]], touched).any()]
