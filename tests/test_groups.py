@@ -51,6 +51,29 @@ def assert_no_pair_below(groups, S, row_of, threshold):
         assert block.min() >= threshold - 1e-6, (g.gid, block.min())
 
 
+def best_split_pairs(ok: np.ndarray) -> int:
+    """Brute force over every partition of the nodes (small n): the most pairs inside groups when every
+    pair inside a group must be allowed by `ok`."""
+    n, best = len(ok), 0
+
+    def place(i, blocks, pairs):
+        nonlocal best
+        if i == n:
+            best = max(best, pairs)
+            return
+        for block in blocks:
+            if all(ok[i, j] for j in block):
+                block.append(i)
+                place(i + 1, blocks, pairs + len(block) - 1)
+                block.pop()
+        blocks.append([i])
+        place(i + 1, blocks, pairs)
+        blocks.pop()
+
+    place(0, [], 0)
+    return best
+
+
 # ------------------------------------------------------------------ partitions
 
 def test_cliques_match_scipy_connected_components():
@@ -103,6 +126,33 @@ def test_long_chain_of_ten(use_vectors):
     assert_no_pair_below(groups, S, {v: v - 100 for v in ids.tolist()}, 0.9)
     seen = [m.id for g in groups for m in g.members]
     assert len(seen) == len(set(seen))  # each image in at most one group
+
+
+def test_an_original_joins_the_most_of_its_copies_it_can():
+    """An original (0) and five copies: copy 1 is the original under a large overlay (cosine 1.0 with it,
+    merged first by complete linkage) and lacks pairs with copies 4 and 5, which every other pair has.
+    scipy's complete linkage cuts the six so that the original misses some of its copies; the best valid
+    split (brute force over all 203 partitions) puts it with copies 2-5, leaving copy 1 out."""
+    from scipy.cluster.hierarchy import fcluster, linkage
+    from scipy.spatial.distance import squareform
+
+    n = 6
+    S = np.full((n, n), 0.95)
+    S[0, 1] = S[1, 0] = 1.0
+    for j in (4, 5):
+        S[1, j] = S[j, 1] = 0.2
+    np.fill_diagonal(S, 1.0)
+    i, j = np.triu_indices(n, 1)
+    keep = S[i, j] >= 0.9
+    ids = np.arange(n, dtype=np.int64)
+    groups = build_groups(ids[i[keep]], ids[j[keep]], S[i, j][keep], plain_meta(ids), t_near=0.9, t_similar=0.9,
+                          vectors=None)
+    labels = fcluster(linkage(squareform(1.0 - S, checks=False), "complete"), t=0.1, criterion="distance")
+    linkage_pairs = sum(int((labels == c).sum()) * (int((labels == c).sum()) - 1) // 2 for c in np.unique(labels))
+    assert linkage_pairs < 10  # scipy's cut keeps the original apart from some of its copies
+    assert partition(groups) == {frozenset({0, 2, 3, 4, 5})}
+    assert sum(g.size * (g.size - 1) // 2 for g in groups) == best_split_pairs(S >= 0.9) == 10
+    assert_no_pair_below(groups, S, {v: v for v in ids.tolist()}, 0.9)
 
 
 @pytest.mark.parametrize("max_linkage", [4000, 3])  # complete linkage; centre split
@@ -160,8 +210,13 @@ def test_a_pair_kept_apart_never_shares_a_group_and_nothing_chains(max_linkage):
         D[0, 1] = D[1, 0] = 2.0
         np.fill_diagonal(D, 0.0)
         labels = fcluster(linkage(squareform(np.clip(D, 0, 2), checks=False), "complete"), t=0.1, criterion="distance")
-        want = {frozenset(ids[labels == c].tolist()) for c in np.unique(labels) if (labels == c).sum() > 1}
-        assert partition(groups) == want
+        # scipy's split is where ours starts; single members then move while that adds pairs inside groups, so
+        # ours holds at least as many, and as many as the best valid split (brute force over all 52 partitions).
+        linkage_pairs = sum(int((labels == c).sum()) * (int((labels == c).sum()) - 1) // 2 for c in np.unique(labels))
+        ok = S >= 0.9
+        ok[0, 1] = ok[1, 0] = False
+        got = sum(g.size * (g.size - 1) // 2 for g in groups)
+        assert linkage_pairs <= got == best_split_pairs(ok)
 
 
 def test_a_pair_kept_apart_that_is_one_image_is_a_usage_error():

@@ -5,7 +5,7 @@ The published generation's groups.json is never rewritten for a verdict. Whoever
 latest verdict on each pair of contents to the groups it read, whatever the number of verdicts:
 
 - "different" between two members of one group: the group is split again by the grouping's own
-  rule (`groups.build_groups`: complete linkage on the members' exact cosines) with that pair kept
+  rule (`groups.build_groups` on the members' exact cosines) with that pair kept
   apart, so no group holds both and nothing chains them back together;
 - "same" between files not in one group: the files a person called the same picture (joined in
   verdict order, never across a "different") gather in the group already holding most of them
