@@ -110,6 +110,9 @@ def test_chain_of_three_never_joins_the_ends():
         assert len(groups) == 1  # B joins one side only
         members = {m.id for m in groups[0].members}
         assert members in ({A, B}, {B, C})
+    # B joins the end it is closer to.
+    groups = build_groups(np.array([A, B]), np.array([B, C]), np.array([0.92, 0.97]), meta, t_near=0.9, t_similar=0.9)
+    assert partition(groups) == {frozenset({B, C})}
 
 
 @pytest.mark.parametrize("use_vectors", [False, True])
