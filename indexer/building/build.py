@@ -144,12 +144,11 @@ def with_asked_pairs(store: Store, space: "Space", q_ids: np.ndarray, xq: np.nda
 
 
 def groups_from_pairs(store: Store, ids: np.ndarray, xb: np.ndarray, a, b, sims, *, t_near: float,
-                      t_similar: float, complete: bool = True) -> list:
-    """Groups that do not chain over the files `ids` (rows of `xb`) and their pairs. With `complete` (and
-    verification on), the missing pairs of small components are verified first
-    (pair_verify.complete_components), so that a group of edited copies is not split for
-    want of a score between two of them."""
-    if complete and int(store.settings.verify_top) > 0:
+                      t_similar: float) -> list:
+    """Groups that do not chain over the files `ids` (rows of `xb`) and their pairs. With verification on,
+    the missing pairs of small components are verified first (pair_verify.complete_components), so that a
+    group of edited copies is not split for want of a score between two of them."""
+    if int(store.settings.verify_top) > 0:
         from ..matching.pair_verify import complete_components
 
         a, b, sims = complete_components(store, ids, xb, (a, b, sims), t_near=t_near)
