@@ -45,7 +45,7 @@ def _opencv_orb(path, config):
     import cv2
 
     with Image.open(path) as im:
-        grey = working_grey(im.convert("RGB"), config.max_side)
+        grey = working_grey(im.convert("RGB"), config.max_side, config.stretch)
     orb = cv2.ORB_create(nfeatures=config.n_features, fastThreshold=config.fast_threshold)
     kps, desc = orb.detectAndCompute(grey, None)
     return np.array([kp.pt for kp in kps], np.float32).reshape(-1, 2), desc, (grey.shape[1], grey.shape[0])

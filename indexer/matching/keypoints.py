@@ -58,7 +58,7 @@ def signature() -> bytes:
     from .rerank import fine_config, verify_config
 
     def part(c):
-        return f"{c.max_side},{c.min_side},{c.n_features},{c.fast_threshold}"
+        return f"{c.max_side},{c.min_side},{c.n_features},{c.fast_threshold},{c.stretch}"
 
     return f"{part(verify_config())};{part(fine_config())};cv{cv2.__version__}".encode()
 

@@ -76,6 +76,15 @@ class VerifyConfig:
     min_spread: float = 0.1
     # Try the horizontally mirrored query when the direct one does not verify.
     try_mirrored: bool = True
+    # Percentiles of the grey working image stretched to black and white before ORB (None: as it is). FAST
+    # finds corners by a fixed brightness step, so a dark or flat picture (a star field, an underexposed or
+    # blurred copy) gives few keypoints where a stretched one gives enough. Measured on the quality
+    # benchmark's photos with 832 planted copies (each file's 10 closest neighbours, 13,405 pairs; one-off
+    # script): duplicate pairs verified 1,070 -> 1,115 of 1,240, on 24 or more inliers 1,000 -> 1,044;
+    # pairs of different pictures verified 1 -> 7, every one on 12-18 inliers and between two of the demo
+    # archive's drawn pictures; on the demo archive (5,326 pairs) no duplicate lost or gained, 0 of 27
+    # look-alikes verified either way, others 2 -> 5 (12-15 inliers). CLAHE instead: 1,099 and 1,043.
+    stretch: tuple[float, float] | None = (1.0, 99.5)
 
     def __post_init__(self) -> None:
         if self.max_side < 64 or self.min_side < 1 or self.n_features < 10:
@@ -84,6 +93,8 @@ class VerifyConfig:
             raise UsageError("verify: ratio must be in (0, 1], ransac_px > 0 and min_spread in [0, 1]")
         if self.min_inliers < 3 or not 0 < self.scale_range[0] < self.scale_range[1]:
             raise UsageError("verify: min_inliers must be >= 3 and scale_range an increasing positive pair")
+        if self.stretch is not None and not 0 <= self.stretch[0] < self.stretch[1] <= 100:
+            raise UsageError("verify: stretch must be None or two increasing percentiles in [0, 100]")
 
 
 DEFAULT_VERIFY = VerifyConfig()
@@ -280,8 +291,24 @@ def _empty(size: tuple[int, int], work_size: tuple[int, int], reason: str) -> Fe
     return Features(np.zeros((0, 2), np.float32), np.zeros((0, 32), np.uint8), size, work_size, reason)
 
 
-def working_grey(im: Image.Image, max_side: int) -> np.ndarray:
-    """The image as 8-bit grey with its longer side brought to `max_side` (transparency on white)."""
+# A picture whose stretch percentiles lie closer than this (in grey levels) is flat: stretching it would
+# only amplify noise and compression blocks, so it is left as it is.
+MIN_STRETCH_RANGE = 8
+
+
+def stretch_contrast(grey: np.ndarray, percentiles: tuple[float, float]) -> np.ndarray:
+    """`grey` (uint8) mapped linearly so that its `percentiles` (numpy's) become 0 and 255, clipped; a flat
+    picture (the two closer than MIN_STRETCH_RANGE levels) unchanged."""
+    lo, hi = np.percentile(grey, percentiles)
+    if hi - lo < MIN_STRETCH_RANGE:
+        return grey
+    out = (grey.astype(np.float32) - np.float32(lo)) * np.float32(255.0 / (hi - lo))
+    return np.clip(np.rint(out), 0, 255).astype(np.uint8)
+
+
+def working_grey(im: Image.Image, max_side: int, stretch: tuple[float, float] | None = None) -> np.ndarray:
+    """The image as 8-bit grey with its longer side brought to `max_side` (transparency on white), its
+    contrast stretched between the `stretch` percentiles when given (`stretch_contrast`)."""
     import cv2
 
     grey = np.asarray(to_rgb(im).convert("L"))
@@ -290,7 +317,8 @@ def working_grey(im: Image.Image, max_side: int) -> np.ndarray:
     size = (max(1, round(w * scale)), max(1, round(h * scale)))
     # INTER_AREA for shrinking (it averages, so no aliasing), INTER_LINEAR for enlarging:
     # the usual OpenCV advice for each direction.
-    return cv2.resize(grey, size, interpolation=cv2.INTER_AREA if scale < 1 else cv2.INTER_LINEAR)
+    grey = cv2.resize(grey, size, interpolation=cv2.INTER_AREA if scale < 1 else cv2.INTER_LINEAR)
+    return grey if stretch is None else stretch_contrast(grey, stretch)
 
 
 def extract_features(im: Image.Image, config: VerifyConfig = DEFAULT_VERIFY, *, mirror: bool = False) -> Features:
@@ -304,7 +332,7 @@ def extract_features(im: Image.Image, config: VerifyConfig = DEFAULT_VERIFY, *, 
     w, h = im.size
     if min(w, h) < config.min_side:
         return _empty((w, h), (0, 0), f"too small ({w}x{h} px; at least {config.min_side} px a side needed)")
-    grey = working_grey(im, config.max_side)
+    grey = working_grey(im, config.max_side, config.stretch)
     if mirror:
         grey = np.ascontiguousarray(grey[:, ::-1])
     work_size = (grey.shape[1], grey.shape[0])
