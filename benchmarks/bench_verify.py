@@ -313,7 +313,7 @@ GATES = ((0.0, 0.0), (0.0, 0.3), (DEFAULT_VERIFY.min_spread, 0.0), (0.2, 0.0))
 
 
 SWEEP = ([("max_side", v) for v in (320, 400, 480)] + [("fast_threshold", v) for v in (5, 10, 20)]
-         + [("ratio", v) for v in (0.7, 0.9)] + [("n_features", 1000)])
+         + [("ratio", v) for v in (0.7, 0.9)] + [("n_features", 1000)] + [("stretch", None)])
 
 
 def sweep_line(label: str, loose, ms: float) -> str:

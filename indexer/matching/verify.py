@@ -2,7 +2,7 @@
 
 The encoder says two images look alike; this checks that the same pixels reappear,
 moved by one rotation, uniform scale and translation. ORB keypoints (Rublee et al.
-2011) on grey images of a modest size, brute-force Hamming matching with Lowe's ratio
+2011) on grey images of a modest size, their contrast stretched (`stretch_contrast`), brute-force Hamming matching with Lowe's ratio
 test (Lowe 2004), then a similarity transform fitted with RANSAC (Fischler and
 Bolles 1981) through `cv2.estimateAffinePartial2D`. Enough inliers, spread over the
 images rather than bunched on one shared detail, at a plausible scale make a verified
@@ -296,10 +296,25 @@ def _empty(size: tuple[int, int], work_size: tuple[int, int], reason: str) -> Fe
 MIN_STRETCH_RANGE = 8
 
 
+def grey_percentiles(grey: np.ndarray, percentiles) -> list[float]:
+    """numpy.percentile(grey, percentiles) (its default, linear method) for a uint8 image, from a histogram of
+    its 256 levels instead of a sort: the order statistics k and k + 1 each percentile falls between are read
+    off the cumulative counts (several times faster on a 256 px image, and this runs for every image verified)."""
+    counts = np.cumsum(np.bincount(grey.ravel(), minlength=256))
+    out = []
+    for q in percentiles:
+        pos = q / 100.0 * (int(counts[-1]) - 1)
+        k = int(np.floor(pos))
+        below, above = np.searchsorted(counts, [k, k + 1], side="right")
+        above = min(int(above), 255)
+        out.append(float(below) + (pos - k) * (above - float(below)))
+    return out
+
+
 def stretch_contrast(grey: np.ndarray, percentiles: tuple[float, float]) -> np.ndarray:
     """`grey` (uint8) mapped linearly so that its `percentiles` (numpy's) become 0 and 255, clipped; a flat
     picture (the two closer than MIN_STRETCH_RANGE levels) unchanged."""
-    lo, hi = np.percentile(grey, percentiles)
+    lo, hi = grey_percentiles(grey, percentiles)
     if hi - lo < MIN_STRETCH_RANGE:
         return grey
     out = (grey.astype(np.float32) - np.float32(lo)) * np.float32(255.0 / (hi - lo))
