@@ -317,11 +317,14 @@ def grey_percentiles(grey: np.ndarray, percentiles) -> list[float]:
 def stretch_contrast(grey: np.ndarray, percentiles: tuple[float, float]) -> np.ndarray:
     """`grey` (uint8) mapped linearly so that its `percentiles` (numpy's) become 0 and 255, clipped; a flat
     picture (the two closer than MIN_STRETCH_RANGE levels) unchanged."""
+    import cv2
+
     lo, hi = grey_percentiles(grey, percentiles)
     if hi - lo < MIN_STRETCH_RANGE:
         return grey
-    out = (grey.astype(np.float32) - np.float32(lo)) * np.float32(255.0 / (hi - lo))
-    return np.clip(np.rint(out), 0, 255).astype(np.uint8)
+    # The map of each of the 256 levels, applied by table look-up (cv2.LUT) rather than per pixel in floats.
+    levels = (np.arange(256, dtype=np.float32) - np.float32(lo)) * np.float32(255.0 / (hi - lo))
+    return cv2.LUT(grey, np.clip(np.rint(levels), 0, 255).astype(np.uint8))
 
 
 def working_grey(im: Image.Image, max_side: int, stretch: tuple[float, float] | None = None) -> np.ndarray:
