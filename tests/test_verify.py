@@ -269,7 +269,7 @@ def _opencv_ratio_matches(query, candidate, ratio: float) -> np.ndarray:
 
 @pytest.mark.parametrize("pair", [("coffee", "crop"), ("astronaut", "mirror"), ("brick", "tile"), ("chelsea", "rocket")])
 def test_ratio_matches_agree_with_opencv_brute_force_matching(pair):
-    """FAISS's binary index finds the same ratio-test matches as OpenCV's BFMatcher on real photos:
+    """The Hamming distance table finds the same ratio-test matches as OpenCV's BFMatcher on real photos:
     a copy, a mirror image, a neighbouring tile and an unrelated photo."""
     from nearsight.indexer.matching.verify import ratio_matches
 
@@ -284,6 +284,29 @@ def test_ratio_matches_agree_with_opencv_brute_force_matching(pair):
     q, c = extract_features(other, cfg), extract_features(im, cfg)
     for ratio in (0.7, cfg.ratio, 1.0):
         assert np.array_equal(ratio_matches(q, c, ratio), _opencv_ratio_matches(q, c, ratio))
+
+
+@pytest.mark.parametrize("m", [1, 2, 7, 600])
+def test_nearest_two_against_scipy_hamming_distances(m):
+    """The two smallest Hamming distances of each row and the nearest one's index, against SciPy's
+    `cdist(..., "hamming")` on the unpacked bits (a share of the 256 bits, so times 256) and NumPy's
+    argmin (the lowest index among equals). Codes drawn near one another so that ties occur."""
+    from scipy.spatial.distance import cdist
+
+    from nearsight.indexer.matching.verify import nearest_two
+
+    rng = np.random.default_rng(m)
+    xb = rng.integers(0, 256, (m, 32), dtype=np.uint8)
+    xb[-1] = xb[0]  # a repeated code: its copies below tie between rows 0 and m - 1
+    flips = (rng.random((300, 256)) < 0.05).astype(np.uint8)
+    xq = np.bitwise_xor(xb[rng.integers(0, m, 300)], np.packbits(flips, axis=1))
+    xq[:5] = xb[0]  # exact copies: distance 0 (to two rows of xb, when it has more than one)
+    want = np.rint(cdist(np.unpackbits(xq, axis=1), np.unpackbits(xb, axis=1), "hamming") * 256)
+    first, second, nearest = nearest_two(xq, xb)
+    ranked = np.sort(want, axis=1)
+    assert np.array_equal(first, ranked[:, 0])
+    assert np.array_equal(second, ranked[:, 1] if m > 1 else np.full(300, np.inf))
+    assert np.array_equal(nearest, want.argmin(axis=1))
 
 
 def test_query_keypoints_found_once_give_the_same_verdicts():

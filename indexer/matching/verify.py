@@ -371,22 +371,17 @@ def ratio_matches(query: Features, candidate: Features, ratio: float) -> np.ndar
     One-to-one: when several query keypoints pick the same candidate keypoint only the
     closest stays (the lowest query index among equals), so RANSAC cannot count one candidate
     point many times over. The two nearest candidate descriptors of each query descriptor
-    come from FAISS's exhaustive binary index (Hamming distance, like OpenCV's
-    BFMatcher(NORM_HAMMING), which tests/test_verify.py checks it against); everything after
-    is array arithmetic, so no Python object is made per keypoint.
+    come from the whole table of Hamming distances (`nearest_two`), as OpenCV's
+    BFMatcher(NORM_HAMMING) finds them (tests/test_verify.py checks it against it); everything
+    after is array arithmetic, so no Python object is made per keypoint.
     """
-    import faiss
-
     n, m = len(query.descriptors), len(candidate.descriptors)
     if n == 0 or m == 0:
         return np.zeros((0, 2), np.int64)
-    index = faiss.IndexBinaryFlat(8 * candidate.descriptors.shape[1])
-    index.add(np.ascontiguousarray(candidate.descriptors))
-    dist, nearest = index.search(np.ascontiguousarray(query.descriptors), min(2, m))
-    first = dist[:, 0].astype(np.float64)
-    keep = first < ratio * dist[:, 1] if m >= 2 else np.ones(n, bool)
+    first, second, nearest = nearest_two(query.descriptors, candidate.descriptors)
+    keep = first < ratio * second if m >= 2 else np.ones(n, bool)
     qi = np.flatnonzero(keep)
-    ci, d = nearest[qi, 0].astype(np.int64), first[qi]
+    ci, d = nearest[qi].astype(np.int64), first[qi]
     # One query keypoint per candidate keypoint: the closest, ties to the lowest query index.
     order = np.lexsort((qi, d, ci))
     qi, ci = qi[order], ci[order]
@@ -394,6 +389,30 @@ def ratio_matches(query: Features, candidate: Features, ratio: float) -> np.ndar
     lead[1:] = ci[1:] != ci[:-1]
     pairs = np.stack([qi[lead], ci[lead]], axis=1)
     return pairs[np.lexsort((pairs[:, 1], pairs[:, 0]))].reshape(-1, 2)
+
+
+def nearest_two(xq: np.ndarray, xb: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """For each binary code of `xq` (uint8 rows), the Hamming distances to its nearest and second nearest
+    rows of `xb` (float64; the second is inf when `xb` has one row) and the nearest one's index (the lowest
+    among equals).
+
+    The whole n x m table of distances comes from FAISS's `hammings` and the two smallest of each row from
+    NumPy. A k-nearest search (`IndexBinaryFlat.search` with k = 2, used before) keeps a heap per query and
+    took 2-4 times as long on 500 x 500 ORB descriptors; matching was then the largest cost of a query
+    (benchmarks/results/query.md)."""
+    import faiss
+
+    xq, xb = np.ascontiguousarray(xq, np.uint8), np.ascontiguousarray(xb, np.uint8)
+    n, m = len(xq), len(xb)
+    table = np.empty((n, m), np.int32)
+    faiss.hammings(faiss.swig_ptr(xq), faiss.swig_ptr(xb), n, m, xq.shape[1], faiss.swig_ptr(table))
+    rows = np.arange(n)
+    nearest = table.argmin(axis=1)
+    first = table[rows, nearest].astype(np.float64)
+    if m < 2:
+        return first, np.full(n, np.inf), nearest
+    table[rows, nearest] = np.iinfo(np.int32).max
+    return first, table.min(axis=1).astype(np.float64), nearest
 
 
 def match_features(query: Features, candidate: Features, config: VerifyConfig = DEFAULT_VERIFY) -> Verification:
