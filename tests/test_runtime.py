@@ -121,7 +121,9 @@ def test_the_runtime_s_input_is_torchvision_s_normalisation_of_the_pixels():
 
     reference = v2.Compose([v2.ToDtype(torch.float32, scale=True), v2.Normalize(IMAGENET_MEAN, IMAGENET_STD)])
     levels = np.repeat(np.arange(256, dtype=np.uint8), 3).reshape(1, 16, 16, 3)
-    for batch in (levels, square_batch(_photos(), 96)):
+    photos = square_batch(_photos(), 96)
+    many = np.concatenate([photos] * 4)  # PARALLEL_BATCH or more: a share of the rows a core
+    for batch in (levels, photos, many):
         expected = reference(torch.from_numpy(batch).permute(0, 3, 1, 2).contiguous()).numpy()
         ours = standardised(batch)
         assert ours.dtype == np.float32 and ours.shape == expected.shape
