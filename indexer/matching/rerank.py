@@ -169,9 +169,10 @@ def rerank_fine(query, results: list[dict], candidates: dict[int, str], count: i
     """The first `count` results that verification has not confirmed (and the first FINE_DIRECT of them found by
     the query as given, when other views' candidates fill those places), checked again with the candidate at
     FINE_FACTOR times the side (`fine_config`), so that a query showing a small part of it (a hard crop)
-    meets it at a similar scale, as it is or mirrored, whichever did better before (`_fine_verification`). A
-    result confirmed here gets the boosted score and evidence like `rerank`; one that is not keeps what it had.
-    `query`: an image or its `query_features` (at VERIFY_SIDE)."""
+    meets it at a similar scale. A result confirmed here gets the boosted score and evidence like `rerank`;
+    one that is not keeps what it had. `query`: an image or its `query_features` (at VERIFY_SIDE)."""
+    from .verify import verify_candidates
+
     query = query_features(query)
     if query.direct.reason:  # a query too small or flat for keypoints: no candidate could verify
         return results
@@ -187,30 +188,11 @@ def rerank_fine(query, results: list[dict], candidates: dict[int, str], count: i
     checked = [r for r in pending if r["id"] in known]
     if not checked:
         return results
-    coarse = small_features({r["id"]: candidates[r["id"]] for r in checked if r.get("evidence")})
-    for r in checked:
-        v = _fine_verification(query, known[r["id"]], coarse.get(r["id"]), mirrored)
+    features = [known[r["id"]] for r in checked]
+    for r, v in zip(checked, verify_candidates(query, features, config=verify_config(mirrored))):
         if v.verified:
             _record(r, v, threshold)
     return sorted(results, key=lambda r: -r["similarity"])
-
-
-def _fine_verification(query, fine, coarse, mirrored: bool):
-    """The fine check of one candidate (its `fine` features) against `query` (verify.QueryFeatures).
-
-    When the candidate was checked at VERIFY_SIDE before (its `coarse` features, whose matches the query
-    keeps), it is matched finely only as the query is or only mirrored, whichever found more inliers then: a
-    copy that failed for want of detail shows its orientation in the few inliers it had (15 of 16 mirrored
-    fifths of scikit-image's photos, tests/test_rerank.py), and the other orientation doubled the fine
-    check's cost, the largest share of a query with no copy. On a tie (often none either way) and for a
-    candidate not checked before, both are tried, as `verify_candidates` does."""
-    from .verify import verify_candidates
-
-    if mirrored and coarse is not None:
-        direct, flipped = query.match(coarse, mirrored=False).inliers, query.match(coarse, mirrored=True).inliers
-        if direct != flipped:
-            return query.match(fine, mirrored=flipped > direct)
-    return verify_candidates(query, [fine], config=verify_config(mirrored))[0]
 
 
 def verify_config(mirrored: bool = True):
