@@ -139,10 +139,6 @@ def _with_regions(merged: list[tuple[float, object, int]], found: list[tuple[flo
     return first + regions + [t for t in merged[head:] if t[2] not in moved]
 
 
-def _best_verified(results: list[dict]) -> bool:
-    return bool(results) and bool((results[0].get("evidence") or {}).get("verified"))
-
-
 def _settle_views(results: list[dict], direct: dict[int, float], shift: float) -> None:
     """A result that scored through another view of the query (its mirror, the picture inside its frame, a
     region of the candidate) keeps that score only when verification confirmed it, and a region's only
@@ -282,7 +278,8 @@ class Searcher:
             out = self._verified(keys, out, catalog, more=False)
             # The mirrored query's keypoints, the other views and the further candidates only for a query
             # whose best is not confirmed yet: a copy found as given (most queries) costs none of them.
-            pending = [q for q, results in enumerate(out) if not _best_verified(results)]
+            pending = [q for q, results in enumerate(out)
+                       if not (results and (results[0].get("evidence") or {}).get("verified"))]
             if pending:
                 again = self._other_views(xq[pending], [images[q] for q in pending], [keys[q] for q in pending],
                                           [rows[q] for q in pending], n, [excludes[q] for q in pending], reach,
@@ -310,10 +307,10 @@ class Searcher:
         """The answers of queries whose best candidate did not verify among the first `verify_top`:
         candidates their other views find join the direct ones (`_better_of`), the mirrored query is
         tried too, the files whose region descriptors are nearest to the query (`xq`, its vectors) get
-        `verify_regions` places right after the first `verify_top`, and verification goes on to
+        `verify_regions` places right after the first `verify_top` (and those nearest to its parts
+        QUERY_PART_PLACES more, `_with_query_regions`), and verification goes on to
         `verify_more` more (`keys`: the queries' kept keypoints and matches, so nothing matched in the
-        first round is matched again). A query that none of them confirms then has the files nearest to its
-        own parts put in QUERY_PART_PLACES more places (`_with_query_regions`) and gets the fine check."""
+        first round is matched again)."""
         extra = [[] for _ in rows]
         turns = []
         if self.mirror_view == "verified":
@@ -333,29 +330,18 @@ class Searcher:
         # Another view's candidate takes a place only among those verification checks, and keeps it only
         # when verified (`_settle_views`): a view may not raise a look-alike's score on its own.
         merged = [_better_of(kept, more, self.verify_top) for kept, more in zip(rows, extra)]
-        if not self.verify_regions:
-            return self._verified(keys, self._answers([m[:reach] for m in merged], shifts, catalog), catalog, more=True)
-        from .regions import region_candidates
+        added = 0
+        if self.verify_regions:
+            from .regions import region_candidates
 
-        found = region_candidates(self.regions, xq, self.verify_regions + self.verify_top, excludes, self.region_grid)
-        out = self._answers([_with_regions(m, f, self.verify_top, self.verify_regions)[:reach + self.verify_regions]
-                             for m, f in zip(merged, found)], shifts, catalog)
-        if not self.query_regions:
-            return self._verified(keys, out, catalog, more=True, added=self.verify_regions)
-        # The query's own parts (nine more embeddings) and the fine check only for a query that none of the
-        # candidates above confirms: a copy found through a turned view or the whole query's regions costs neither.
-        # The rest are verified again over the longer list; what was matched before is matched from `keys`.
-        out = self._verified(keys, out, catalog, more=True, added=self.verify_regions, fine=False)
-        left = [q for q, results in enumerate(out) if not _best_verified(results)]
-        if left:
-            found_left, added = self._with_query_regions([images[q] for q in left], [found[q] for q in left],
-                                                         [excludes[q] for q in left],
-                                                         None if parts is None else [parts[q] for q in left])
-            again = self._answers([_with_regions(merged[q], f, self.verify_top, added)[:reach + added]
-                                   for q, f in zip(left, found_left)], [shifts[q] for q in left], catalog)
-            for q, results in zip(left, self._verified([keys[q] for q in left], again, catalog, more=True, added=added)):
-                out[q] = results
-        return out
+            found = region_candidates(self.regions, xq, self.verify_regions + self.verify_top, excludes,
+                                      self.region_grid)
+            added = self.verify_regions
+            if self.query_regions:
+                found, added = self._with_query_regions(images, found, excludes, parts)
+            merged = [_with_regions(m, f, self.verify_top, added) for m, f in zip(merged, found)]
+        out = self._answers([m[:reach + added] for m in merged], shifts, catalog)
+        return self._verified(keys, out, catalog, more=True, added=added)
 
     def _with_query_regions(self, images, found: list[list[tuple[float, int]]], excludes,
                             known: Sequence[np.ndarray | None] | None = None) -> tuple[list[list[tuple[float, int]]], int]:
@@ -453,12 +439,11 @@ class Searcher:
             else:
                 r["duplicate"] = bool(verdict_score(r) >= (self.threshold if threshold is None else threshold))
 
-    def _verified(self, queries, answers: list[list[dict]], catalog, *, more: bool, added: int = 0,
-                  fine: bool = True) -> list[list[dict]]:
+    def _verified(self, queries, answers: list[list[dict]], catalog, *, more: bool, added: int = 0) -> list[list[dict]]:
         """`rerank_all` of the answers (`queries`: images or their rerank.query_features): the first
         `verify_top` of each by the query as given; with `more`, by its mirror image too and, when the
         best is still unverified, the next `verify_more` (and `added` places made for other candidates),
-        then (unless `fine` is off) the fine check of `verify_fine`."""
+        then the fine check of `verify_fine`."""
         from .rerank import rerank_all
 
         reach = self.verify_top + (self.verify_more + added if more else 0)
@@ -466,7 +451,7 @@ class Searcher:
         sources = catalog.pixel_sources(wanted)
         candidates = {i: str(self.store.pixels_path(row)) for i, row in sources.items()}
         return rerank_all(queries, answers, candidates, self.verify_top, more=self.verify_more + added if more else 0,
-                          mirrored=more, fine=self.verify_fine if more and fine else 0)
+                          mirrored=more, fine=self.verify_fine if more else 0)
 
     def _own_image(self, file_id: int, catalog):
         """A catalogued image's pixels, from its small copy when there is one (None if unreadable)."""
