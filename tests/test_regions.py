@@ -104,6 +104,44 @@ def test_a_file_found_twice_through_regions_takes_one_place():
     assert out == [(0.9, False, 1), (0.7, "region", 6), (0.65, "region", 7), (0.6, False, 4), (0.5, False, 5)]
 
 
+def test_each_of_the_query_s_parts_gives_its_nearest_file_a_place():
+    """`Searcher._with_query_regions`: after the whole query's `verify_regions` files, every part's nearest file
+    (a brute-force NumPy maximum over every region of every file) gets a place, best first, however much
+    higher other parts' files score; then at least QUERY_PART_PLACES of the parts' files; the places count
+    the grid's cells. The parts' vectors are given (an indexed file asked as it is), so no encoder runs."""
+    from nearsight.indexer.matching.query import QUERY_PART_PLACES
+
+    rng = np.random.default_rng(3)
+    files, cells, dim = 200, 9, 32
+    xr = rng.normal(size=(files * cells, dim)).astype(np.float32)
+    xr /= np.linalg.norm(xr, axis=1, keepdims=True)
+    parents = np.repeat(np.arange(1, files + 1), cells)
+    searcher = Searcher.__new__(Searcher)
+    searcher.regions, searcher.region_grid, searcher.verify_regions, searcher.verify_top = region_index(parents, xr), 3, 6, 3
+    parts = []
+    for q in range(4):
+        xp = rng.normal(size=(cells, dim)).astype(np.float32)
+        xp /= np.linalg.norm(xp, axis=1, keepdims=True)
+        xp[0] = xr[cells * q] + 0.8 * xp[0]  # part 0 near a region of file q + 1 (cosine about 0.8)
+        for k in (1, 2, 3):  # parts 1-3 much nearer a region of three other files each
+            xp[k] = xr[cells * (50 + 10 * q + k)] + 0.15 * xp[k]
+        parts.append(xp / np.linalg.norm(xp, axis=1, keepdims=True))
+    whole = [[(0.5 - 0.01 * k, 100 + k + 10 * q) for k in range(9)] for q in range(4)]
+    out, places = searcher._with_query_regions([None] * 4, whole, [set()] * 4, parts)
+    assert places == searcher.verify_regions + cells
+    for q, (listed, xp) in enumerate(zip(out, parts)):
+        head = {i for _, i in listed[:6]}
+        assert listed[:6] == whole[q][:6]
+        by_file = (xp @ xr.T).reshape(cells, files, cells).max(axis=2)  # part x file: its best region (NumPy)
+        nearest = {int(f) + 1 for f in by_file.argmax(axis=1)} - head
+        assert 1 + q in nearest  # part 0's file, outscored by parts 1-3's three files (3 places by score missed it)
+        extra = listed[6:6 + max(len(nearest), QUERY_PART_PLACES)]
+        assert {i for _, i in extra[:len(nearest)]} == nearest
+        scores = [d for d, _ in extra[:len(nearest)]]
+        assert scores == sorted(scores, reverse=True)
+        np.testing.assert_allclose(scores, sorted((float(by_file[:, f - 1].max()) for f in nearest), reverse=True), atol=1e-5)
+
+
 def test_a_region_counts_only_when_confirmed_without_mirroring():
     direct = {1: 0.6}
     results = [{"id": 7, "similarity": 0.8, "descriptor_similarity": 0.8, "_other_view": "region",

@@ -94,9 +94,13 @@ def _quarter_turn_right(im: Image.Image) -> Image.Image:
     return im.transpose(Image.Transpose.ROTATE_270)
 
 
-# Verification places for files found through the query's own parts (`Searcher._with_query_regions`):
-# on the quality benchmark's store 3 found more than 6 (crops keeping a fifth, recall@1 0.72 against 0.67)
-# for half the verification.
+# Verification places for files found through the query's own parts (`Searcher._with_query_regions`): each
+# part's nearest file, and at least this many. Ranked by score alone, 3 places went to the parts that show an
+# added caption band or border, which resemble many files' regions more than the untouched part resembles its
+# original's. Re-scored on one trained store (benchmarks/rescore.py, 4,992 queries): each part's nearest file
+# (up to 9) took µAP 0.966 -> 0.968, recall at precision 0.99 0.938 -> 0.940, crops' recall@1 0.944 -> 0.951,
+# strong combinations' 0.938 -> 0.951, verdict recall 0.916 -> 0.918, no match-less query flagged, at no cost
+# measurable in benchmarks/bench_query.py; 6 such places gave nearly as much, the 3 best of them nothing.
 QUERY_PART_PLACES = 3
 
 
@@ -348,8 +352,10 @@ class Searcher:
         """`found` (per query, files whose region descriptors are near the whole query) with the files whose
         regions are nearest to one of the query's own parts, cut on the same grid: a copy with a third
         covered by a shape, cut and framed, or turned and filled, still shows some parts as they are in
-        the original. The whole query's candidates keep their `verify_regions` places and the parts' best
-        get QUERY_PART_PLACES more (sharing places lost crops that the whole query's search had found).
+        the original. The whole query's candidates keep their `verify_regions` places (sharing places lost crops
+        that the whole query's search had found); after them each part's nearest file gets one, best first, and
+        at least QUERY_PART_PLACES go to the parts (filled by their next best files). Places the parts leave, of
+        grid**2, go to the whole query's next files.
         `known`: per query, its parts' vectors when known already (None: cut and embedded here).
         Returns the lists and how many places after the first `verify_top` verification is to check."""
         from .regions import cut_regions, region_candidates
@@ -357,7 +363,8 @@ class Searcher:
         cells = self.region_grid * self.region_grid
         known = list(known) if known is not None else [None] * len(images)
         todo = [q for q, vectors in enumerate(known) if vectors is None]
-        made = self.vectors_for_images([part for q in todo for part in cut_regions(images[q], self.region_grid)])
+        made = self.vectors_for_images([part for q in todo for part in cut_regions(images[q], self.region_grid)]) \
+            if todo else None
         for j, q in enumerate(todo):
             known[q] = made[j * cells:(j + 1) * cells]
         xparts = np.concatenate(known) if known else np.zeros((0, self.index.d), np.float32)
@@ -367,10 +374,16 @@ class Searcher:
         for q, whole in enumerate(found):
             head = whole[:self.verify_regions]
             have = {i for _, i in head}
-            by_part = _better_of([], [t for part in hits[q * cells:(q + 1) * cells] for t in part])
-            extra = [(d, i) for d, _, i in by_part if i not in have][:QUERY_PART_PLACES]
+            lists = hits[q * cells:(q + 1) * cells]
+            nearest = {}  # each part's nearest file, with its best score over the parts
+            for part in lists:
+                if part and part[0][1] not in have:
+                    nearest[part[0][1]] = max(part[0][0], nearest.get(part[0][1], -np.inf))
+            extra = sorted(((d, i) for i, d in nearest.items()), key=lambda t: -t[0])
+            by_part = _better_of([], [t for part in lists for t in part])
+            extra += [(d, i) for d, _, i in by_part if i not in have and i not in nearest][:max(0, QUERY_PART_PLACES - len(extra))]
             out.append(head + extra + whole[self.verify_regions:])  # a file in both takes one place (`_with_regions`)
-        return out, self.verify_regions + QUERY_PART_PLACES
+        return out, self.verify_regions + max(QUERY_PART_PLACES, cells)
 
     def _search(self, xq: np.ndarray, n: int, excludes: Sequence[Collection[int]]) -> list[list[tuple[float, int]]]:
         """Per query row, its (similarity, id) neighbours best first, the ids of its set in `excludes` left out."""
