@@ -117,7 +117,8 @@ def test_each_of_the_query_s_parts_gives_its_nearest_file_a_place():
     xr /= np.linalg.norm(xr, axis=1, keepdims=True)
     parents = np.repeat(np.arange(1, files + 1), cells)
     searcher = Searcher.__new__(Searcher)
-    searcher.regions, searcher.region_grid, searcher.verify_regions, searcher.verify_top = region_index(parents, xr), 3, 6, 3
+    searcher.regions, searcher.region_grid = region_index(parents, xr), 3
+    searcher.verify_regions, searcher.verify_top = 6, 3
     parts = []
     for q in range(4):
         xp = rng.normal(size=(cells, dim)).astype(np.float32)
@@ -139,7 +140,8 @@ def test_each_of_the_query_s_parts_gives_its_nearest_file_a_place():
         assert {i for _, i in extra[:len(nearest)]} == nearest
         scores = [d for d, _ in extra[:len(nearest)]]
         assert scores == sorted(scores, reverse=True)
-        np.testing.assert_allclose(scores, sorted((float(by_file[:, f - 1].max()) for f in nearest), reverse=True), atol=1e-5)
+        brute = sorted((float(by_file[:, f - 1].max()) for f in nearest), reverse=True)
+        np.testing.assert_allclose(scores, brute, atol=1e-5)
 
 
 def test_a_region_counts_only_when_confirmed_without_mirroring():

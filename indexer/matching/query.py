@@ -99,8 +99,10 @@ def _quarter_turn_right(im: Image.Image) -> Image.Image:
 # added caption band or border, which resemble many files' regions more than the untouched part resembles its
 # original's. Re-scored on one trained store (benchmarks/rescore.py, 4,992 queries): each part's nearest file
 # (up to 9) took µAP 0.966 -> 0.968, recall at precision 0.99 0.938 -> 0.940, crops' recall@1 0.944 -> 0.951,
-# strong combinations' 0.938 -> 0.951, verdict recall 0.916 -> 0.918, no match-less query flagged, at no cost
-# measurable in benchmarks/bench_query.py; 6 such places gave nearly as much, the 3 best of them nothing.
+# strong combinations' 0.938 -> 0.951, no match-less query flagged, at no cost measurable in
+# benchmarks/bench_query.py; 6 such places gave nearly as much, the 3 best of them nothing. Recalibrated, the
+# query verdict's threshold rose 0.520 -> 0.527 (a few more negatives reach a look-alike through a part) and its
+# recall went 0.916 -> 0.908 (benchmarks/results/query-regions.md).
 QUERY_PART_PLACES = 3
 
 
@@ -381,7 +383,8 @@ class Searcher:
                     nearest[part[0][1]] = max(part[0][0], nearest.get(part[0][1], -np.inf))
             extra = sorted(((d, i) for i, d in nearest.items()), key=lambda t: -t[0])
             by_part = _better_of([], [t for part in lists for t in part])
-            extra += [(d, i) for d, _, i in by_part if i not in have and i not in nearest][:max(0, QUERY_PART_PLACES - len(extra))]
+            more = [(d, i) for d, _, i in by_part if i not in have and i not in nearest]
+            extra += more[:max(0, QUERY_PART_PLACES - len(extra))]
             out.append(head + extra + whole[self.verify_regions:])  # a file in both takes one place (`_with_regions`)
         return out, self.verify_regions + max(QUERY_PART_PLACES, cells)
 
