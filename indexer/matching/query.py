@@ -313,8 +313,8 @@ class Searcher:
         """The answers of queries whose best candidate did not verify among the first `verify_top`:
         candidates their other views find join the direct ones (`_better_of`), the mirrored query is
         tried too, the files whose region descriptors are nearest to the query (`xq`, its vectors) get
-        `verify_regions` places right after the first `verify_top` (and those nearest to its parts
-        QUERY_PART_PLACES more, `_with_query_regions`), and verification goes on to
+        `verify_regions` places right after the first `verify_top` (and each of its parts' nearest file one
+        more, `_with_query_regions`), and verification goes on to
         `verify_more` more (`keys`: the queries' kept keypoints and matches, so nothing matched in the
         first round is matched again)."""
         extra = [[] for _ in rows]
