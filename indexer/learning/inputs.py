@@ -74,8 +74,7 @@ def standardised(batch: np.ndarray) -> np.ndarray:
     out = np.empty((n, 3, h, w), np.float32)
 
     def fill(rows: slice) -> None:
-        part = np.ascontiguousarray(batch[rows])
-        planes = cv2.split(part.reshape(-1, w, 3))
+        planes = cv2.split(batch[rows].reshape(-1, w, 3))
         for c in range(3):
             out[rows, c] = cv2.LUT(planes[c], _TABLE[c]).reshape(-1, h, w)
 

@@ -379,7 +379,7 @@ def ratio_matches(query: Features, candidate: Features, ratio: float) -> np.ndar
     if n == 0 or m == 0:
         return np.zeros((0, 2), np.int64)
     first, second, nearest = nearest_two(query.descriptors, candidate.descriptors)
-    keep = first < ratio * second if m >= 2 else np.ones(n, bool)
+    keep = first < ratio * second  # with one candidate keypoint the second is inf: every match is kept
     qi = np.flatnonzero(keep)
     ci, d = nearest[qi].astype(np.int64), first[qi]
     # One query keypoint per candidate keypoint: the closest, ties to the lowest query index.
