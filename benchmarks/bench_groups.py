@@ -244,6 +244,7 @@ def run(args) -> dict:
         members = sorted(rel(m["path"]) for m in group["members"] if m["tier"] in DUPLICATE_TIERS)
         called |= {frozenset(p) for p in itertools.combinations(members, 2)}
     result = {"machine": machine(LIBRARIES), "args": {k: str(v) for k, v in vars(args).items()},
+              "set": list(getattr(args, "set", [])),
               "files": len(files), "copies": sum(1 for f in files.values() if f["family"]),
               "model": version, "index_s": round(index_s, 1), "stages": summary.get("stages"),
               "thresholds": thresholds, "groups": pair_figures(called, truth, files)}
@@ -299,7 +300,7 @@ def render(r: dict) -> list[str]:
         "# Groups on a collection of real photographs that holds copies", "",
         f"Machine: {r['machine']}", "",
         f"Command: `.venv/bin/python benchmarks/bench_groups.py --work {r['args']['work']} --per-transform "
-        f"{r['args']['per_transform']}` (the work folder of a bench_quality run; model {r['model']}, "
+        f"{r['args']['per_transform']}{''.join(' --set ' + x for x in r.get('set', []))}` (the work folder of a bench_quality run; model {r['model']}, "
         f"its store `{r['args']['store']}`).", "",
         f"{r['files']} files: bench_quality's collection and {r['copies']} planted copies of indexed tiles "
         f"({r['args']['per_transform']} per transform). {g['truth']} duplicate pairs by the truth (a tile and its "
@@ -359,7 +360,12 @@ def main() -> None:
     parser.add_argument("--per-transform", type=int, default=8, help="copies planted per transform")
     parser.add_argument("--seed", type=int, default=0)
     parser.add_argument("--out", type=Path, default=Path(__file__).parent / "results" / "groups-real.md")
+    parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
+                        help="a setting for the index run (e.g. shared_part=0), as `nearsight index --set` would")
     args = parser.parse_args()
+    from benchmarks import bench_quality
+
+    bench_quality.SETTINGS_OVERRIDES.update(dict(item.split("=", 1) for item in args.set))
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(name)s %(message)s")
     result = run(args)
     (args.work / "groups" / "results.json").write_text(json.dumps(result, indent=1, default=str))

@@ -12,7 +12,8 @@ from PIL import Image
 from nearsight.indexer.building.build import load_vectors
 from nearsight.indexer.matching.generations import require_current
 from nearsight.indexer.matching.groups import build_groups
-from nearsight.indexer.matching.pair_verify import complete_components, verified_pairs, verified_score
+from nearsight.indexer.matching.pair_verify import (
+    common_share, complete_components, shared_footprint_pairs, verified_pairs, verified_score)
 from nearsight.indexer.building.pipeline import run_index
 from nearsight.indexer.core.settings import load_settings
 from nearsight.indexer.storage.store import Store
@@ -73,6 +74,11 @@ def test_missing_pairs_of_a_small_component_are_verified(photo_store):
         pairs = (np.array([min(a_, s_), min(s_, c_), min(gl, gr)]), np.array([max(a_, s_), max(s_, c_), max(gl, gr)]),
                  np.array([0.95, 0.9, 0.7], np.float32))
         a, b, sims = complete_components(store, ids, xb, pairs, t_near=0.8)
+        # Confirmation through a third file changes nothing here: the crop verifies directly, and the
+        # grass tiles' component has two files.
+        shared = complete_components(store, ids, xb, pairs, t_near=0.8, shared_part=0.5)
+    for x, y in zip((a, b, sims), shared):
+        np.testing.assert_array_equal(x, y)
     found = {(int(x), int(y)): float(v) for x, y, v in zip(a, b, sims)}
     assert found[(min(a_, c_), max(a_, c_))] >= 0.8  # the crop verified against its original
     assert found[(min(gl, gr), max(gl, gr))] == pytest.approx(0.7)  # the neighbouring tile did not
@@ -101,3 +107,49 @@ def test_each_images_closest_neighbours_are_verified_from_the_index(photo_store)
                                                 ("astronaut.png", "astronaut-crop.jpg"),
                                                 ("astronaut-small.jpg", "astronaut-crop.jpg")]}
     assert all(names[int(x)] in astronauts for x in a) and (sims >= 1.0 - 1e-6).all()
+
+
+def test_common_share_is_the_overlap_coefficient_of_pixel_masks():
+    # The overlap coefficient (Szymkiewicz-Simpson: |A ∩ B| / min(|A|, |B|)) counted on NumPy pixel masks.
+    rng = np.random.default_rng(5)
+    for _ in range(300):
+        boxes = []
+        for _ in range(2):
+            x0, y0 = rng.integers(0, 40, 2)
+            w, h = rng.integers(0, 25, 2)
+            boxes.append((int(x0), int(y0), int(x0 + w), int(y0 + h)))
+        masks = []
+        for x0, y0, x1, y1 in boxes:
+            m = np.zeros((70, 70), bool)
+            m[y0:y1, x0:x1] = True
+            masks.append(m)
+        smaller = min(masks[0].sum(), masks[1].sum())
+        expected = (masks[0] & masks[1]).sum() / smaller if smaller else 0.0
+        assert common_share(*boxes) == pytest.approx(expected)
+
+
+def test_two_crops_showing_one_part_of_a_photo_are_confirmed_through_it_and_a_distant_crop_is_not():
+    """Real ORB footprints (opencv-python-headless) of three crops of scikit-image's astronaut in the photo: crops
+    A and B share 0.87 of the smaller's area, C shares no pixel with A and 0.05 of itself with B (hand computation
+    from the boxes below). Only A and B are confirmed through the photo, and no pair is confirmed without a leg."""
+    import skimage.data
+
+    from nearsight.indexer.matching.verify import verify_candidates
+
+    photo = Image.fromarray(skimage.data.astronaut()).convert("RGB")  # 512 x 512
+    crops = {"A": (0, 0, 300, 512), "B": (40, 40, 340, 480), "C": (330, 0, 512, 512)}
+    ids = {"photo": 0, "A": 1, "B": 2, "C": 3}
+    legs = {}
+    for name, box in crops.items():
+        (v,) = verify_candidates(photo.crop(box), [photo])
+        assert v.verified and v.inliers >= 24, (name, v)
+        # its footprint in the photo is the crop's box, to within 4 % of the photo's side
+        assert np.abs(np.subtract(v.box, box)).max() <= 0.04 * 512, (name, v.box)
+        legs[(ids[name], ids["photo"])] = v
+    members = [[0, 1, 2, 3]]
+    assert shared_footprint_pairs(members, legs, set(), share=0.5, strong=24) == [(1, 2)]
+    # Every pair already confirmed or verified: nothing to add. Legs under `strong` inliers: none serve.
+    assert shared_footprint_pairs(members, legs, {(1, 2)}, share=0.5, strong=24) == []
+    assert shared_footprint_pairs(members, legs, set(), share=0.5, strong=10_000) == []
+    # The share is a real bound: at 0.9 the A-B overlap (0.87) no longer confirms them.
+    assert shared_footprint_pairs(members, legs, set(), share=0.9, strong=24) == []

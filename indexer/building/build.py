@@ -147,11 +147,13 @@ def groups_from_pairs(store: Store, ids: np.ndarray, xb: np.ndarray, a, b, sims,
                       t_similar: float) -> list:
     """Groups that do not chain over the files `ids` (rows of `xb`) and their pairs. With verification on,
     the missing pairs of small components are verified first (pair_verify.complete_components), so that a
-    group of edited copies is not split for want of a score between two of them."""
+    group of edited copies is not split for want of a score between two of them, nor for want of one
+    between two edits of one original that each match it in a common part (settings.shared_part)."""
     if int(store.settings.verify_top) > 0:
         from ..matching.pair_verify import complete_components
 
-        a, b, sims = complete_components(store, ids, xb, (a, b, sims), t_near=t_near)
+        a, b, sims = complete_components(store, ids, xb, (a, b, sims), t_near=t_near,
+                                         shared_part=float(store.settings.shared_part))
     meta = store.catalog.image_meta(ids.tolist())
     _add_pixel_hashes(store, meta, a, b, sims, t_near)
     row = {int(i): n for n, i in enumerate(ids)}

@@ -113,6 +113,13 @@ def _fraction(value: Any) -> float:
     return number
 
 
+def _share(value: Any) -> float:
+    number = float(value)
+    if not 0.0 <= number <= 1.0:
+        raise ValueError(f"expected a share between 0 and 1 (0.5 = half), got {value!r}")
+    return number
+
+
 def _unit_float(value: Any) -> float:
     number = float(value)
     if not -1.0 <= number <= 1.0:
@@ -249,6 +256,16 @@ SETTINGS: tuple[Setting, ...] = (
         "(thumbs/ab/<hash>.kp, indexer/matching/keypoints.py), so that verifying a query's candidates reads them "
         "instead of finding them. Costs about 70 KiB an image on disk and 5 to 10 ms of one core an image "
         "while indexing; answers are the same either way.",
+    ),
+    Setting(
+        "shared_part",
+        0.5,
+        _share,
+        "Groups: two files that each match the same part of a third on strong keypoint evidence (twice the "
+        "inliers verification needs) count as a confirmed pair when their footprints in the third share at "
+        "least this much of the smaller one, so an original's fogged copy and its tight crop share its "
+        "group though ORB cannot match them with each other. Two halves of a photo share nothing and stay "
+        "apart. Only inside components small enough to verify whole; 0 turns it off.",
     ),
     Setting(
         "verify_regions",

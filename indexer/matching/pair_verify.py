@@ -26,11 +26,16 @@ import numpy as np
 from ..core.errors import ImageReadError
 from ..reading.images import read_image
 from . import index as faiss_index
+from .query_verdict import STRONG_INLIER_FACTOR
 from .rerank import VERIFY_SIDE, boosted, small_features
 
 log = logging.getLogger(__name__)
 
 CACHE_IMAGES = 512  # small copies kept decoded while walking the queries (~200 KB each)
+# A pair confirmed through a third file needs both files to match it on this many times the inliers
+# verification needs: look-alikes that verified matched on 12-18 inliers, real copies on 22 or more in 95 %
+# of cases (the measurement behind query_verdict.STRONG_INLIER_FACTOR).
+SHARED_INLIER_FACTOR = STRONG_INLIER_FACTOR
 
 
 def verified_score(d: float, t_near: float) -> np.float32:
@@ -121,8 +126,9 @@ def verified_pairs(store, index, q_ids: np.ndarray, xq: np.ndarray, *, top: int,
 
 
 def complete_components(store, ids: np.ndarray, xb: np.ndarray, pairs, *, t_near: float,
-                        max_size: int = 16) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """`pairs` joined by the verified ones among the other pairs of each small component.
+                        max_size: int = 16, shared_part: float = 0.0) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """`pairs` joined by the verified ones among the other pairs of each small component, and (with
+    `shared_part` > 0) by the pairs that a third file confirms (`shared_footprint_pairs`).
 
     A group needs every pair of its members to pass (groups.py), so three copies of one photo,
     each verified against one other, would still split. Inside each connected component of
@@ -135,7 +141,12 @@ def complete_components(store, ids: np.ndarray, xb: np.ndarray, pairs, *, t_near
     calibration's, 0.31 there) left those pairs unasked and split the photo's group in two. Without it,
     on the quality benchmark's photos with 832 planted copies, the groups' pair recall went from 0.763
     to 0.794 at precision 1.000, and on the demo archive from 0.973 to 0.994 with the same 5 wrong pairs
-    (benchmarks/bench_groups.py; at most max_size * (max_size - 1) / 2 checks a component)."""
+    (benchmarks/bench_groups.py; at most max_size * (max_size - 1) / 2 checks a component).
+
+    Two edits of one original (a fogged copy and a tight crop) often match the original but not each
+    other. With `shared_part`, the pairs a component already has are verified too (in components of
+    three or more with a pair missing), for their footprints, and a missing pair that still does not
+    verify is confirmed when both files match one third file strongly in a common part of it."""
     from scipy.sparse import coo_matrix
     from scipy.sparse.csgraph import connected_components
 
@@ -153,29 +164,80 @@ def complete_components(store, ids: np.ndarray, xb: np.ndarray, pairs, *, t_near
     have = {(int(x), int(y)) for x, y in zip(a[near], b[near])}
     sizes = np.bincount(labels, minlength=count)
     work: dict[int, list[tuple[int, float]]] = {}
+    components: list[list[int]] = []  # those whose pairs are all asked, for shared footprints
     for comp in np.flatnonzero((sizes > 1) & (sizes <= max_size)):
         members = sorted(int(i) for i in nodes[labels == comp] if int(i) in row)
-        for n, x in enumerate(members):
-            for y in members[n + 1:]:
-                d = float(xb[row[x]] @ xb[row[y]])
-                if (x, y) not in have:
-                    work.setdefault(x, []).append((y, d))
+        every = [(x, y) for n, x in enumerate(members) for y in members[n + 1:]]
+        whole = shared_part > 0 and len(members) >= 3 and any(p not in have for p in every)
+        if whole:
+            components.append(members)
+        for x, y in every:
+            if whole or (x, y) not in have:
+                work.setdefault(x, []).append((y, float(xb[row[x]] @ xb[row[y]])))
     if not work:
         return pairs
     images = _SmallCopies(store, np.unique(list(work) + [y for c in work.values() for y, _ in c]))
     config = VerifyConfig(max_side=VERIFY_SIDE)
     va, vb, vs = [], [], []
+    legs: dict[tuple[int, int], object] = {}  # (query, candidate) -> its Verification, verified
+    cosine: dict[tuple[int, int], float] = {}
     for x, candidates in work.items():
         query = images.get(x)
         todo = [(y, d, f) for y, d in candidates if (f := images.features(y)) is not None]
         if query is None or not todo:
             continue
         for (y, d, _im), v in zip(todo, verify_candidates(query, [im for _, _, im in todo], config=config)):
+            cosine[(x, y)] = d
             if v.verified:
-                va.append(x)
-                vb.append(y)
-                vs.append(verified_score(d, t_near))
-    log.info("verified %d of %d pairs inside %d small components", len(va),
-             sum(len(c) for c in work.values()), int(((sizes > 1) & (sizes <= max_size)).sum()))
+                legs[(x, y)] = v
+                if (x, y) not in have:
+                    va.append(x)
+                    vb.append(y)
+                    vs.append(verified_score(d, t_near))
+    verified = len(va)
+    if components:
+        for x, y in shared_footprint_pairs(components, legs, have, share=shared_part,
+                                           strong=SHARED_INLIER_FACTOR * config.min_inliers):
+            va.append(x)
+            vb.append(y)
+            vs.append(verified_score(cosine.get((x, y), -1.0), t_near))
+    log.info("verified %d of %d pairs inside %d small components; %d more pairs confirmed by a third file", verified,
+             sum(len(c) for c in work.values()), int(((sizes > 1) & (sizes <= max_size)).sum()), len(va) - verified)
     return faiss_index.canonical_pairs(np.r_[a, np.asarray(va, np.int64)], np.r_[b, np.asarray(vb, np.int64)],
                                        np.r_[sims, np.asarray(vs, np.float32)].astype(np.float32))
+
+
+def common_share(box_a, box_b) -> float:
+    """The area two boxes (x0, y0, x1, y1) have in common, as a share of the smaller one (0 when either is empty)."""
+    w = min(box_a[2], box_b[2]) - max(box_a[0], box_b[0])
+    h = min(box_a[3], box_b[3]) - max(box_a[1], box_b[1])
+    smaller = min((box_a[2] - box_a[0]) * (box_a[3] - box_a[1]), (box_b[2] - box_b[0]) * (box_b[3] - box_b[1]))
+    return float(w * h / smaller) if w > 0 and h > 0 and smaller > 0 else 0.0
+
+
+def shared_footprint_pairs(components: list[list[int]], legs: dict, have: set, *, share: float,
+                           strong: int) -> list[tuple[int, int]]:
+    """The pairs (x, y), x < y, of each component's members, neither already in `have` nor verified in
+    `legs`, that a third member c confirms: x and y each match c on at least `strong` inliers and their
+    footprints in c (the boxes verification found) share at least `share` of the smaller one.
+
+    `legs` maps (query, candidate) to a verified Verification: its `box` is the query's footprint in
+    the candidate, its `query_box` the candidate's footprint in the query. Only verified pairs serve as
+    legs, never a pair confirmed here, so nothing chains: x and y must show the same part of c."""
+    footprint: dict[tuple[int, int], tuple] = {}  # (file, third) -> the file's footprint in the third
+    for (q, c), v in legs.items():
+        if v.inliers >= strong and v.box is not None and v.query_box is not None:
+            footprint[(q, c)] = v.box
+            footprint[(c, q)] = v.query_box
+    out = []
+    for members in components:
+        for n, x in enumerate(members):
+            for y in members[n + 1:]:
+                if (x, y) in have or (x, y) in legs or (y, x) in legs:
+                    continue
+                for c in members:
+                    fx, fy = footprint.get((x, c)), footprint.get((y, c))
+                    if c not in (x, y) and fx is not None and fy is not None and common_share(fx, fy) >= share:
+                        out.append((x, y))
+                        break
+    return out
