@@ -206,6 +206,7 @@ class Searcher:
         self.score_norm = float(store.settings.score_norm)
         self.frame_views = bool(store.settings.frame_views)
         self.query_regions = bool(store.settings.query_regions)
+        self.haze_view = bool(store.settings.haze_view)
         self.mirror_view = str(store.settings.mirror_view)
         self.turned_views = bool(store.settings.turned_views)
         self.verify_more = int(store.settings.verify_more) if self.verify_top else 0
@@ -293,6 +294,8 @@ class Searcher:
                                           None if parts is None else [parts[q] for q in pending])
                 for q, results in zip(pending, again):
                     out[q] = results
+                if self.haze_view:
+                    out = self._with_dehazed(images, out, excludes, n, shifts, catalog)
         for results, kept, shift in zip(out, rows, shifts):
             _settle_views(results, dict((i, d) for d, i in kept), shift)
             del results[k:]
@@ -419,6 +422,38 @@ class Searcher:
             more = found[t * len(images) : (t + 1) * len(images)]
             best = [[(d, i) for d, _, i in _better_of(a, b)] for a, b in zip(best, more)]
         return best
+
+    def _with_dehazed(self, images, out: list[list[dict]], excludes, n: int, shifts, catalog) -> list[list[dict]]:
+        """`out` with the candidates that a hazy query (indexer/matching/haze.py) finds once dehazed, where
+        the dehazed image verifies them: for queries whose best answer is still unverified after every other
+        view. A fogged copy is far from its original for the encoder and for ORB; dehazed, it is near. The
+        dehazed image's first `verify_top` candidates are verified with it as the query, as given (not
+        mirrored; more candidates, the mirror and the fine check found no more fogged copies on the quality
+        benchmark). Only the confirmed ones join the answer, at their verified score."""
+        from ..core.cores import each_on_cores
+        from .haze import dehazed, looks_hazy
+        from .rerank import VERIFY_SIDE, rerank_all
+
+        unconfirmed = [q for q, results in enumerate(out)
+                       if not (results and (results[0].get("evidence") or {}).get("verified"))]
+        todo = [q for q, hazy in zip(unconfirmed, each_on_cores(looks_hazy, [images[q] for q in unconfirmed])) if hazy]
+        if not todo:
+            return out
+        side = max(VERIFY_SIDE, self.size)
+        views = each_on_cores(lambda image: dehazed(image, side), [images[q] for q in todo])
+        found = self._search(self.vectors_for_images(views), n, [excludes[q] for q in todo])
+        answers = self._answers([[(d, "haze", i) for d, i in more[:self.verify_top]] for more in found],
+                                [shifts[q] for q in todo], catalog)
+        out = list(out)
+        sources = catalog.pixel_sources({r["id"] for results in answers for r in results})
+        candidates = {i: str(self.store.pixels_path(row)) for i, row in sources.items()}
+        checked = rerank_all(views, answers, candidates, self.verify_top, mirrored=False)
+        for q, results in zip(todo, checked):
+            confirmed = [r for r in results if (r.get("evidence") or {}).get("verified")]
+            if confirmed:
+                ids = {r["id"] for r in confirmed}
+                out[q] = confirmed + [r for r in out[q] if r["id"] not in ids]
+        return out
 
     def _with_frame_views(self, images, extra: list[list[tuple[float, int]]], n: int,
                           excludes) -> list[list[tuple[float, int]]]:
