@@ -165,3 +165,31 @@ def test_the_catalog_expands_the_latest_verdict_to_every_file_of_each_content(tm
         seen.add(catalog.verdicts_version())
         (again,) = catalog.add_verdicts([{"file_a": 3, "file_b": 2, "verdict": "different"}], origin="api")
         assert again == 2 and catalog.verdicts_version() not in seen
+
+
+def test_a_different_keeps_the_verified_copies_of_the_group_it_splits():
+    """A tight crop (3) joined its original (1) and a blurred copy (2) on verified pairs, far above its cosines
+    (0.5); a look-alike (4) came in on a wrongly verified pair with the crop. A person calls 4 different from 1:
+    4 leaves, and the crop stays, because every pair of a published group was confirmed when it was built.
+    Checked by brute force with NumPy: each group left has every pair confirmed by the build's pair list or
+    its cosine, and none holds the pair called different."""
+    e = np.eye(16)
+    X = _unit([e[0], e[0] + 0.05 * e[3], 0.5 * e[0] + 0.866 * e[1], 0.92 * e[0] + 0.39 * e[2]])
+    ids = np.arange(1, 5)
+    meta = {int(i): ImageMeta(f"/photos/{i}.jpg", f"c{i}", 100, 100, 1000 - int(i), "JPEG", 0.0) for i in ids}
+    S = X.astype(np.float64) @ X.T.astype(np.float64)
+    verified = {(1, 3): 0.95, (2, 3): 0.95, (3, 4): 0.93}
+    i, j = np.triu_indices(4, 1)
+    a, b = ids[i], ids[j]
+    sims = np.array([max(S[x - 1, y - 1], verified.get((x, y), -1.0)) for x, y in zip(a.tolist(), b.tolist())])
+    groups = build_groups(a, b, sims, meta, t_near=T_NEAR, t_similar=T_SIMILAR, vectors=lambda q: X[np.asarray(q) - 1])
+    assert [sorted(m.id for m in g.members) for g in groups] == [[1, 2, 3, 4]]
+    out = apply_verdicts(groups, PairVerdicts.from_rows([{"verdict": "different", "file_a": 1, "file_b": 4}]),
+                         vectors=lambda q: {int(k): X[int(k) - 1] for k in q}, metas=lambda q: {int(k): meta[int(k)] for k in q},
+                         t_near=T_NEAR, t_similar=T_SIMILAR)
+    assert any({1, 2, 3} <= {m.id for m in g.members} for g in out)
+    confirmed = {(x, y) for x, y, s in zip(a.tolist(), b.tolist(), sims.tolist()) if s >= T_SIMILAR}
+    for g in out:
+        members = sorted(m.id for m in g.members)
+        assert not {1, 4} <= set(members)
+        assert all((x, y) in confirmed for n, x in enumerate(members) for y in members[n + 1:])

@@ -5,7 +5,8 @@ The published generation's groups.json is never rewritten for a verdict. Whoever
 latest verdict on each pair of contents to the groups it read, whatever the number of verdicts:
 
 - "different" between two members of one group: the group is split again by the grouping's own
-  rule (`groups.build_groups` on the members' exact cosines) with that pair kept
+  rule (`groups.build_groups` on the members' exact cosines, each pair raised to what the build
+  confirmed: `confirmed_floor`, so a copy that joined on verification stays) with that pair kept
   apart, so no group holds both and nothing chains them back together;
 - "same" between files not in one group: the files a person called the same picture (joined in
   verdict order, never across a "different") gather in the group already holding most of them
@@ -106,14 +107,15 @@ class _Regroup:
     t_near: float
     t_similar: float
 
-    def __call__(self, members: list[Member]) -> list[Group]:
+    def __call__(self, members: list[Member], tier: str = "similar") -> list[Group]:
+        """The split of `members` of one published group of tier `tier` (confirmed_floor)."""
         found = self.vectors([m.id for m in members])
         kept = [m for m in members if m.id in found]
         if len(kept) < 2:
             return []
         ids = np.array([m.id for m in kept], np.int64)
         X = np.stack([np.asarray(found[int(i)], np.float32) for i in ids])
-        S = X.astype(np.float64) @ X.T.astype(np.float64)
+        S = confirmed_floor(X.astype(np.float64) @ X.T.astype(np.float64), kept, tier, self.t_near, self.t_similar)
         i, j = np.triu_indices(len(ids), 1)
         inside = set(ids.tolist())
         apart = [(a, b) for a in ids.tolist() for b in self.verdicts.apart_from(a) if a < b and b in inside]
@@ -121,6 +123,27 @@ class _Regroup:
         return build_groups(ids[i], ids[j], S[i, j], _separable({m.id: m.meta for m in kept}, apart),
                             t_near=self.t_near, t_similar=self.t_similar,
                             vectors=lambda sub: X[[row[int(x)] for x in sub]], apart=apart)
+
+
+def confirmed_floor(S: np.ndarray, members: list[Member], tier: str, t_near: float, t_similar: float) -> np.ndarray:
+    """`S` (cosines between `members` of one published group of tier `tier`, keeper first when it is among
+    them) raised to what grouping confirmed when the group was built: every pair of a group passed (a
+    verified pair scores far above its cosine: a tight crop, a fogged copy), at `t_near` in a group of tier
+    near-duplicate or stronger (every pair >= t_near, groups.build_groups) and at `t_similar` otherwise, and
+    each member its recorded similarity to the keeper. A file a person joined ("person-same") was confirmed
+    with nobody, so its pairs keep their cosines. Without this, a "different" between two members re-split
+    the group on cosines alone and dropped its verified copies."""
+    S = S.copy()
+    built = [n for n, m in enumerate(members) if m.tier != PERSON]
+    if len(built) >= 2:
+        level = t_near if TIERS.index(tier) <= TIERS.index("near-duplicate") else t_similar
+        block = np.ix_(built, built)
+        S[block] = np.maximum(S[block], level)
+    if members and members[0].similarity >= 1.0 and members[0].tier != PERSON:  # the keeper
+        for n in built[1:] if built and built[0] == 0 else []:
+            S[0, n] = S[n, 0] = max(S[0, n], float(members[n].similarity))
+    np.fill_diagonal(S, 1.0)
+    return S
 
 
 def _separable(meta: dict[int, ImageMeta], apart: list[tuple[int, int]]) -> dict[int, ImageMeta]:
@@ -137,7 +160,7 @@ def _split(groups: list[Group], regroup: _Regroup) -> list[Group]:
                if a in where and where[a] == where.get(b)}
     out = [g for n, g in enumerate(groups) if n not in touched]
     for n in sorted(touched):
-        out += regroup(groups[n].members)
+        out += regroup(groups[n].members, groups[n].tier)
     return out
 
 
@@ -188,7 +211,7 @@ def _join(groups: list[Group], verdicts: PairVerdicts, regroup: _Regroup, metas:
     sources = {where[f] for f in leaving}
     out = [g for g in groups if g.gid not in sources]
     for gid in sorted(sources):
-        out += regroup([m for m in by_gid[gid].members if m.id not in leaving])
+        out += regroup([m for m in by_gid[gid].members if m.id not in leaving], by_gid[gid].tier)
     member_meta = {m.id: m.meta for g in groups for m in g.members}
     for anchors, movers in plans:
         out = _attach(out, anchors, movers, member_meta, regroup.vectors, metas)
