@@ -361,7 +361,7 @@ def main() -> None:
     parser.add_argument("--seed", type=int, default=0)
     parser.add_argument("--out", type=Path, default=Path(__file__).parent / "results" / "groups-real.md")
     parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
-                        help="a setting for the index run (e.g. shared_part=0), as `nearsight index --set` would")
+                        help="a setting for the index run (e.g. shared_part=0), as NEARSIGHT_SHARED_PART=0 gives `nearsight index`")
     args = parser.parse_args()
     from benchmarks import bench_quality
 

@@ -139,8 +139,8 @@ def confirmed_floor(S: np.ndarray, members: list[Member], tier: str, t_near: flo
         level = t_near if TIERS.index(tier) <= TIERS.index("near-duplicate") else t_similar
         block = np.ix_(built, built)
         S[block] = np.maximum(S[block], level)
-    if members and members[0].similarity >= 1.0 and members[0].tier != PERSON:  # the keeper
-        for n in built[1:] if built and built[0] == 0 else []:
+    if built and built[0] == 0 and members[0].similarity >= 1.0:  # the keeper, listed first
+        for n in built[1:]:
             S[0, n] = S[n, 0] = max(S[0, n], float(members[n].similarity))
     np.fill_diagonal(S, 1.0)
     return S
