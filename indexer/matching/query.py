@@ -279,14 +279,13 @@ class Searcher:
         reach = max(k, head + self.verify_more if verifying else 0) + head
         out = self._answers([_better_of(kept, [])[:reach] for kept in rows], shifts, catalog)
         if verifying:
-            from .rerank import query_features
+            from .rerank import best_verified, query_features
 
             keys = [query_features(im) for im in images]  # each query's keypoints and matches, kept for both rounds
             out = self._verified(keys, out, catalog, more=False)
             # The mirrored query's keypoints, the other views and the further candidates only for a query
             # whose best is not confirmed yet: a copy found as given (most queries) costs none of them.
-            pending = [q for q, results in enumerate(out)
-                       if not (results and (results[0].get("evidence") or {}).get("verified"))]
+            pending = [q for q, results in enumerate(out) if not best_verified(results)]
             if pending:
                 again = self._other_views(xq[pending], [images[q] for q in pending], [keys[q] for q in pending],
                                           [rows[q] for q in pending], n, [excludes[q] for q in pending], reach,
@@ -432,10 +431,9 @@ class Searcher:
         benchmark). Only the confirmed ones join the answer, at their verified score."""
         from ..core.cores import each_on_cores
         from .haze import dehazed, looks_hazy
-        from .rerank import VERIFY_SIDE, rerank_all
+        from .rerank import VERIFY_SIDE, best_verified, rerank_all
 
-        unconfirmed = [q for q, results in enumerate(out)
-                       if not (results and (results[0].get("evidence") or {}).get("verified"))]
+        unconfirmed = [q for q, results in enumerate(out) if not best_verified(results)]
         todo = [q for q, hazy in zip(unconfirmed, each_on_cores(looks_hazy, [images[q] for q in unconfirmed])) if hazy]
         if not todo:
             return out
@@ -444,10 +442,9 @@ class Searcher:
         found = self._search(self.vectors_for_images(views), n, [excludes[q] for q in todo])
         answers = self._answers([[(d, "haze", i) for d, i in more[:self.verify_top]] for more in found],
                                 [shifts[q] for q in todo], catalog)
+        checked = rerank_all(views, answers, self._small_copies(answers, self.verify_top, catalog), self.verify_top,
+                             mirrored=False)
         out = list(out)
-        sources = catalog.pixel_sources({r["id"] for results in answers for r in results})
-        candidates = {i: str(self.store.pixels_path(row)) for i, row in sources.items()}
-        checked = rerank_all(views, answers, candidates, self.verify_top, mirrored=False)
         for q, results in zip(todo, checked):
             confirmed = [r for r in results if (r.get("evidence") or {}).get("verified")]
             if confirmed:
@@ -498,11 +495,13 @@ class Searcher:
         from .rerank import rerank_all
 
         reach = self.verify_top + (self.verify_more + added if more else 0)
-        wanted = {r["id"] for results in answers for r in results[:reach]}
-        sources = catalog.pixel_sources(wanted)
-        candidates = {i: str(self.store.pixels_path(row)) for i, row in sources.items()}
-        return rerank_all(queries, answers, candidates, self.verify_top, more=self.verify_more + added if more else 0,
-                          mirrored=more, fine=self.verify_fine if more else 0)
+        return rerank_all(queries, answers, self._small_copies(answers, reach, catalog), self.verify_top,
+                          more=self.verify_more + added if more else 0, mirrored=more, fine=self.verify_fine if more else 0)
+
+    def _small_copies(self, answers: list[list[dict]], reach: int, catalog) -> dict[int, str]:
+        """The small copies' paths of the first `reach` results of each answer (what verification reads)."""
+        sources = catalog.pixel_sources({r["id"] for results in answers for r in results[:reach]})
+        return {i: str(self.store.pixels_path(row)) for i, row in sources.items()}
 
     def _own_image(self, file_id: int, catalog):
         """A catalogued image's pixels, from its small copy when there is one (None if unreadable)."""

@@ -232,7 +232,8 @@ def rerank_all(queries: Sequence, answers: list[list[dict]], candidates: dict[in
     return each_on_cores(one, list(zip(queries, answers)))
 
 
-def _best_verified(results: list[dict]) -> bool:
+def best_verified(results: list[dict]) -> bool:
+    """Whether the first of `results` is confirmed by verification."""
     return bool(results) and bool((results[0].get("evidence") or {}).get("verified"))
 
 
@@ -251,9 +252,9 @@ def rerank_more(query, results: list[dict], candidates: dict[int, str], top: int
     head = rerank(query, results[:top], candidates, top, threshold, mirrored=mirrored)
     rest = results[top:]
     results = sorted(head + rest, key=lambda r: -r["similarity"])
-    if more and results and not _best_verified(results):
+    if more and results and not best_verified(results):
         rest = rerank(query, rest, candidates, more, threshold, mirrored=mirrored)
         results = sorted(head + rest, key=lambda r: -r["similarity"])
-    if fine and results and not _best_verified(results):
+    if fine and results and not best_verified(results):
         results = rerank_fine(query, results, candidates, fine, threshold, mirrored=mirrored)
     return results
