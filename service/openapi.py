@@ -75,7 +75,7 @@ SCHEMAS = {
     },
     "Evidence": {
         "type": "object", "nullable": True,
-        "description": "geometric verification of this candidate (null when it was not checked)",
+        "description": "geometric verification of this candidate, by keypoints or by the same-frame check (null when it was not checked)",
         "required": ["verified", "inliers", "matches", "box", "query_box", "scale", "mirrored", "reason"],
         "properties": {"verified": {"type": "boolean"},
                        "inliers": {"type": "integer", "description": "keypoint matches that agree with one transform"},
@@ -87,7 +87,11 @@ SCHEMAS = {
                                      "description": "where the candidate lies in the query, as fractions of the "
                                                     "query's width and height"},
                        "scale": NULLABLE_NUMBER, "mirrored": {"type": "boolean"},
-                       "reason": {"type": "string"}},
+                       "reason": {"type": "string"},
+                       "correlation": {"type": "number", "nullable": True,
+                                       "description": "the same-frame check's band correlation, -1 to 1, when "
+                                                      "keypoints did not confirm the candidate and both frames have "
+                                                      "the same shape; from 0.75 it confirms the candidate"}},
     },
     "Neighbour": {
         "type": "object",

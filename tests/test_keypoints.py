@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from nearsight.indexer.matching import keypoints
+from nearsight.indexer.matching import aligned, keypoints
 from nearsight.indexer.matching import rerank
 from nearsight.indexer.matching.rerank import VERIFY_SIDE, fine_config, verify_config
 from nearsight.indexer.matching.verify import verify_candidates, working_grey
@@ -164,9 +164,13 @@ def test_an_index_run_keeps_every_small_copys_keypoints_unless_told_not_to(tmp_p
         summary = run_index(store, [photos], progress=False, train_config=TINY)
         small = sorted(store.thumbs_dir.rglob("*.jpg"))
         kept = sorted(store.thumbs_dir.rglob("*" + keypoints.SUFFIX))
+        frames = sorted(store.thumbs_dir.rglob("*" + aligned.SUFFIX))
     assert len(small) == 12
     if keep:
         assert [p.with_suffix(".jpg") for p in kept] == small and "keypoints" in summary["stages"]
         assert all(keypoints.load(p, 1) is not None for p in small)
+        # The same-frame check's band images are kept in the same pass (indexer/matching/aligned.py).
+        assert [p.with_suffix(".jpg") for p in frames] == small
+        assert all(aligned.load(p) is not None for p in small)
     else:
-        assert kept == [] and "keypoints" not in summary["stages"]
+        assert kept == [] and frames == [] and "keypoints" not in summary["stages"]

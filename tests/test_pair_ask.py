@@ -39,6 +39,14 @@ def test_strong_means_twice_the_inliers_verification_needs():
     assert not strongly_verified({"evidence": None}, strong)
 
 
+def test_a_same_frame_match_alone_never_joins_a_group():
+    # The same-frame check (indexer/matching/aligned.py) confirms query results, not group pairs: the same edit
+    # on two different photos (a white frame, a turned picture's filled corners) correlates like a copy.
+    strong = strong_inliers()
+    confirmed = {"evidence": {"verified": True, "inliers": 0, "correlation": 0.99}}
+    assert not strongly_verified(confirmed, strong)
+
+
 def test_every_file_asked_finds_its_mirrored_copy_and_crop_but_not_a_neighbouring_tile(asked_store):
     store_dir, folder = asked_store
     with Store.open(store_dir, settings=load_settings(environ={})) as store:

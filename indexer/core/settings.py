@@ -291,6 +291,15 @@ SETTINGS: tuple[Setting, ...] = (
         "inside it, and each candidate keeps the better score (indexer/matching/frames.py). false turns it off.",
     ),
     Setting(
+        "same_frame",
+        True,
+        _parse_bool,
+        "A candidate that keypoints do not confirm is compared with the query pixel for pixel where both "
+        "frames have the same shape: their band-passed 64 x 64 grey images must correlate at 0.75 or more "
+        "(indexer/matching/aligned.py). It confirms copies whose corners an edit wiped out (heavy JPEG, "
+        "noise, blur, fog, strong brightness). false turns it off.",
+    ),
+    Setting(
         "haze_view",
         False,
         _parse_bool,

@@ -109,15 +109,32 @@ def decode(data: bytes, small_copy_size: int | None = None) -> list | None:
     return out if at == len(body) else None
 
 
-def load(small_copy: str | os.PathLike, which: int) -> object | None:
-    """Set `which` (0: the check's, 1: the fine check's) kept beside a small copy, or None."""
+def read_beside(small_copy: str | os.PathLike, target: Path) -> tuple[int, bytes] | None:
+    """(the small copy's size, the bytes of its sidecar `target`), or None when it is not a store's small copy
+    or either cannot be read."""
     if not is_small_copy(small_copy):
         return None
     try:
-        size = os.stat(small_copy).st_size
-        data = sidecar(small_copy).read_bytes()
+        return os.stat(small_copy).st_size, target.read_bytes()
     except OSError:
         return None
+
+
+def begins_with(target: Path, expected: bytes) -> bool:
+    """Whether the file `target` is there and begins with `expected` (a sidecar's first line)."""
+    try:
+        with open(target, "rb") as fh:
+            return fh.read(len(expected)) == expected
+    except OSError:
+        return False
+
+
+def load(small_copy: str | os.PathLike, which: int) -> object | None:
+    """Set `which` (0: the check's, 1: the fine check's) kept beside a small copy, or None."""
+    read = read_beside(small_copy, sidecar(small_copy))
+    if read is None:
+        return None
+    size, data = read
     sets = decode(data, size)
     if sets is None:
         log.debug("kept keypoints of %s are not usable; finding them again", small_copy)
@@ -125,21 +142,22 @@ def load(small_copy: str | os.PathLike, which: int) -> object | None:
     return sets[which] if which < len(sets) else None
 
 
-def find(small_copy: str | os.PathLike) -> bytes:
-    """A sidecar's bytes for one small copy, both sets found as `rerank` finds them."""
+def find(small_copy: str | os.PathLike, image=None) -> bytes:
+    """A sidecar's bytes for one small copy, both sets found as `rerank` finds them (`image`: the small copy
+    read at rerank.VERIFY_SIDE, when the caller has it)."""
     from ..reading.images import read_image
     from .rerank import VERIFY_SIDE, fine_config, verify_config
     from .verify import features_or_reason
 
     size = os.stat(small_copy).st_size
-    image = read_image(small_copy, max_side=VERIFY_SIDE)[0]
+    image = image if image is not None else read_image(small_copy, max_side=VERIFY_SIDE)[0]
     return encode([features_or_reason(image, verify_config()), features_or_reason(image, fine_config())], size)
 
 
-def write(small_copy: str | os.PathLike, data: bytes) -> None:
-    """Put a sidecar in place atomically. A cache, so no fsync (as the small copy itself): a torn file
-    fails `decode` and is found again."""
-    target = sidecar(small_copy)
+def write(small_copy: str | os.PathLike, data: bytes, target: Path | None = None) -> None:
+    """Put a sidecar in place atomically (`target`: another sidecar's path than the keypoints'). A cache, so no
+    fsync (as the small copy itself): a torn file fails `decode` and is found again."""
+    target = sidecar(small_copy) if target is None else target
     tmp = target.with_name(f".{target.name}.{os.getpid()}.{secrets.token_hex(4)}.tmp")
     try:
         with open(tmp, "xb") as fh:
@@ -153,12 +171,7 @@ def write(small_copy: str | os.PathLike, data: bytes) -> None:
 
 def _current(small_copy: Path) -> bool:
     """Whether a small copy's sidecar is there and was made by these settings (its first line only)."""
-    expected = header()
-    try:
-        with open(sidecar(small_copy), "rb") as fh:
-            return fh.read(len(expected)) == expected
-    except OSError:
-        return False
+    return begins_with(sidecar(small_copy), header())
 
 
 def keep_missing(store) -> dict:
@@ -168,12 +181,21 @@ def keep_missing(store) -> dict:
     from ..core.cores import each_on_cores
     from ..core.errors import ImageReadError
 
+    from ..reading.images import read_image
+    from . import aligned
+    from .rerank import VERIFY_SIDE
+
     todo = [store.thumb_path(r["hash"]) for r in store.catalog.readable_contents() if r["thumb"]]
-    todo = [p for p in todo if not _current(p) and p.exists()]
+    todo = [p for p in todo if not (_current(p) and aligned.current(p)) and p.exists()]
 
     def one(path: Path) -> bool:
         try:
-            write(path, find(path))
+            image = read_image(path, max_side=VERIFY_SIDE)[0]
+            size = os.stat(path).st_size
+            if not _current(path):
+                write(path, find(path, image))
+            if not aligned.current(path):  # the same-frame check's band image (indexer/matching/aligned.py)
+                write(path, aligned.encode(aligned.Frame(image), size), aligned.sidecar(path))
             return True
         except (ImageReadError, OSError) as exc:
             log.debug("no keypoints kept for %s: %s", path, exc)

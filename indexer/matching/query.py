@@ -207,6 +207,7 @@ class Searcher:
         self.frame_views = bool(store.settings.frame_views)
         self.query_regions = bool(store.settings.query_regions)
         self.haze_view = bool(store.settings.haze_view)
+        self.same_frame = bool(store.settings.same_frame)
         self.mirror_view = str(store.settings.mirror_view)
         self.turned_views = bool(store.settings.turned_views)
         self.verify_more = int(store.settings.verify_more) if self.verify_top else 0
@@ -496,7 +497,8 @@ class Searcher:
 
         reach = self.verify_top + (self.verify_more + added if more else 0)
         return rerank_all(queries, answers, self._small_copies(answers, reach, catalog), self.verify_top,
-                          more=self.verify_more + added if more else 0, mirrored=more, fine=self.verify_fine if more else 0)
+                          more=self.verify_more + added if more else 0, mirrored=more, fine=self.verify_fine if more else 0,
+                          aligned=self.same_frame)
 
     def _small_copies(self, answers: list[list[dict]], reach: int, catalog) -> dict[int, str]:
         """The small copies' paths of the first `reach` results of each answer (what verification reads)."""

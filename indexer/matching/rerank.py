@@ -127,11 +127,11 @@ def _evidence(v) -> dict:
     return {"verified": bool(v.verified), "inliers": int(v.inliers), "matches": int(v.matches),
             "box": box, "query_box": query_box,
             "scale": None if v.scale is None else round(float(v.scale), 4),
-            "mirrored": bool(v.mirrored), "reason": v.reason}
+            "mirrored": bool(v.mirrored), "reason": v.reason, "correlation": None}
 
 
 def rerank(query, results: list[dict], candidates: dict[int, str], top: int,
-           threshold: float | None = None, *, mirrored: bool = True) -> list[dict]:
+           threshold: float | None = None, *, mirrored: bool = True, aligned: int = 0) -> list[dict]:
     """Verify the first `top` results (dicts with id and similarity, best first) against `query`
     (an image, or its verify.QueryFeatures at VERIFY_SIDE).
 
@@ -139,7 +139,8 @@ def rerank(query, results: list[dict], candidates: dict[int, str], top: int,
     result gets the boosted similarity, `descriptor_similarity` (the score before) and `evidence`;
     the list comes back sorted by the new scores. A verified result's `duplicate` is redone against
     `threshold` with its boosted descriptor score (thresholds are calibrated on that scale).
-    `mirrored=False` leaves out the mirrored query's try (verify.VerifyConfig.try_mirrored)."""
+    `mirrored=False` leaves out the mirrored query's try (verify.VerifyConfig.try_mirrored). The first `aligned`
+    of the results that keypoints do not confirm get the same-frame check (`_check_aligned`)."""
     from .verify import verify_candidates
 
     head = [r for r in results[:top] if r["id"] in candidates]
@@ -151,7 +152,32 @@ def rerank(query, results: list[dict], candidates: dict[int, str], top: int,
     # verify_candidates brings the query to VERIFY_SIDE itself.
     for r, v in zip(checked, verify_candidates(query, features, config=verify_config(mirrored))):
         _record(r, v, threshold)
+    if aligned:
+        _check_aligned(query_features(query), [r for r in checked if not r["evidence"]["verified"]][:aligned],
+                       candidates, threshold)
     return sorted(results, key=lambda r: -r["similarity"])
+
+
+def _check_aligned(query, results: list[dict], candidates: dict[int, str], threshold: float | None) -> None:
+    """The same-frame check (indexer/matching/aligned.py) of results that keypoints did not confirm: each gets its
+    band correlation in its evidence, and one that reaches MIN_CORRELATION is confirmed like a keypoint match
+    (the boosted score), its footprint the whole frame."""
+    from .aligned import MIN_CORRELATION, candidate_frames, correlation
+
+    if not results:
+        return
+    frames = candidate_frames({r["id"]: candidates[r["id"]] for r in results})
+    for r in results:
+        if r["id"] not in frames:
+            continue
+        c = correlation(query.frame, frames[r["id"]])
+        r["evidence"]["correlation"] = None if c is None else round(c, 4)
+        if c is not None and c >= MIN_CORRELATION:
+            r["evidence"].update(verified=True, box=[0.0, 0.0, 1.0, 1.0], query_box=[0.0, 0.0, 1.0, 1.0], scale=1.0,
+                                 mirrored=False, reason=f"the same frame: band correlation {c:.2f}")
+            r["similarity"] = round(boosted(r["similarity"]), 6)
+            if threshold is not None:
+                r["duplicate"] = bool(verdict_score(r) >= threshold)
 
 
 def _record(r: dict, v, threshold: float | None) -> None:
@@ -219,7 +245,8 @@ def query_features(query):
 
 
 def rerank_all(queries: Sequence, answers: list[list[dict]], candidates: dict[int, str], top: int,
-               threshold: float | None = None, more: int = 0, *, mirrored: bool = True, fine: int = 0) -> list[list[dict]]:
+               threshold: float | None = None, more: int = 0, *, mirrored: bool = True, fine: int = 0,
+               aligned: bool = True) -> list[list[dict]]:
     """`rerank` for each (query, results) pair; with `more`, a query whose best result is still not
     verified has its next `more` results verified too, and with `fine` then its first `fine` unconfirmed
     ones checked finely (`rerank_more`). A query is an image or its `query_features`. The queries are
@@ -227,7 +254,8 @@ def rerank_all(queries: Sequence, answers: list[list[dict]], candidates: dict[in
     from ..core.cores import each_on_cores
 
     def one(pair):
-        return rerank_more(pair[0], pair[1], candidates, top, more, threshold, mirrored=mirrored, fine=fine)
+        return rerank_more(pair[0], pair[1], candidates, top, more, threshold, mirrored=mirrored, fine=fine,
+                           aligned=aligned)
 
     return each_on_cores(one, list(zip(queries, answers)))
 
@@ -238,22 +266,23 @@ def best_verified(results: list[dict]) -> bool:
 
 
 def rerank_more(query, results: list[dict], candidates: dict[int, str], top: int, more: int,
-                threshold: float | None = None, *, mirrored: bool = True, fine: int = 0) -> list[dict]:
+                threshold: float | None = None, *, mirrored: bool = True, fine: int = 0, aligned: bool = True) -> list[dict]:
     """`rerank` of the first `top`; then, when the best result is not verified, of the next `more`; then,
     when it still is not, `rerank_fine` of the first `fine` results not confirmed.
 
     A hard crop often ranks its original a little below the first few candidates, and shows so small a
     part of it that only the fine check meets it at its scale; a query with no copy at all has nothing to
-    verify; a query whose best candidate verified stops at `top`."""
+    verify; a query whose best candidate verified stops at `top`. With `aligned`, the results of either round that
+    keypoints do not confirm get the same-frame check (`_check_aligned`)."""
     query = query_features(query)  # keypoints found once for every round
     # The head is verified first; the next `more` are taken in the order given, not re-sorted by the head's
     # new scores, so that candidates placed right after the head (another view's, a region's) are checked
     # whatever their score and however long the list is (the answer must not depend on k).
-    head = rerank(query, results[:top], candidates, top, threshold, mirrored=mirrored)
+    head = rerank(query, results[:top], candidates, top, threshold, mirrored=mirrored, aligned=top if aligned else 0)
     rest = results[top:]
     results = sorted(head + rest, key=lambda r: -r["similarity"])
     if more and results and not best_verified(results):
-        rest = rerank(query, rest, candidates, more, threshold, mirrored=mirrored)
+        rest = rerank(query, rest, candidates, more, threshold, mirrored=mirrored, aligned=more if aligned else 0)
         results = sorted(head + rest, key=lambda r: -r["similarity"])
     if fine and results and not best_verified(results):
         results = rerank_fine(query, results, candidates, fine, threshold, mirrored=mirrored)

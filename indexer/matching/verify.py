@@ -214,6 +214,7 @@ class QueryFeatures:
         self.image, self.config = image, config
         self._direct: Features | None = None
         self._mirrored: Features | None = None
+        self._frame = None
         self._matched: dict[tuple[int, bool], tuple[Features, Verification]] = {}
 
     @property
@@ -227,6 +228,15 @@ class QueryFeatures:
         if self._mirrored is None:
             self._mirrored = extract_features(self.image, self.config, mirror=True)
         return self._mirrored
+
+    @property
+    def frame(self):
+        """The query's band image for the same-frame check (indexer/matching/aligned.py), made on first need."""
+        if self._frame is None:
+            from .aligned import Frame
+
+            self._frame = Frame(self.image)
+        return self._frame
 
     def serves(self, config: VerifyConfig) -> bool:
         """Whether these keypoints were found as `config` would find them (try_mirrored aside)."""

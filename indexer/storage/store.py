@@ -8,6 +8,7 @@ Layout (later stages add their folders here and nowhere else)::
       lock                held (flock) by the one run allowed to write
       thumbs/ab/<hash>.jpg small cached copy of every readable content
       thumbs/ab/<hash>.kp  its ORB keypoints, found at index time (indexer/matching/keypoints.py)
+      thumbs/ab/<hash>.af  its band image for the same-frame check, made then too (indexer/matching/aligned.py)
       models/             trained encoders
       generations/        published index generations
       reports/            HTML reports, plots
