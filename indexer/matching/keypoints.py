@@ -176,11 +176,10 @@ def _current(small_copy: Path) -> bool:
 
 def keep_missing(store) -> dict:
     """Find and keep the keypoints of every readable content's small copy that has none kept, or one made by
-    other settings (another OpenCV, another verification side); both cores at once (ORB and decoding release
-    the GIL). A small copy that cannot be read is left for verification to report. Returns counts."""
+    other settings (another OpenCV, another verification side), and its same-frame band image (aligned.py) the
+    same way; both cores at once (ORB and decoding release the GIL). A small copy that cannot be read is left for verification to report. Returns counts."""
     from ..core.cores import each_on_cores
     from ..core.errors import ImageReadError
-
     from ..reading.images import read_image
     from . import aligned
     from .rerank import VERIFY_SIDE
