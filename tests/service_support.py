@@ -33,6 +33,18 @@ API_KEY = "test-key-0123456789abcdef"
 COPIED = ("astronaut", "coffee", "chelsea")
 
 
+def resized_copy_group(groups: list[dict]) -> tuple[dict, str]:
+    """(the first group that holds a photo of COPIED with its 75 % resize, that photo's name). Which of the three
+    photos it is depends on the machine: the 20-step tiny encoder's neighbours decide which pairs are verified, and
+    on one machine the astronaut's resize joined another photo's group while the coffee's stayed with it."""
+    for name in COPIED:
+        for group in groups:
+            names = {Path(m["path"]).name for m in group["members"]}
+            if {f"{name}.jpg", f"{name}-smaller.jpg"} <= names:
+                return group, name
+    raise AssertionError(f"no group holds a photo and its resize among {len(groups)} groups")
+
+
 def _train_config():
     from nearsight.indexer.learning.train import TrainConfig
 

@@ -16,7 +16,7 @@ import pytest
 
 from nearsight.indexer.storage.catalog import Catalog
 
-from .service_support import API_KEY, COPIED, ServerProcess, artifacts_dir, transformed
+from .service_support import API_KEY, COPIED, ServerProcess, artifacts_dir, resized_copy_group, transformed
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 CHROMEDRIVER = shutil.which("chromedriver") or ("/usr/bin/chromedriver" if Path("/usr/bin/chromedriver").exists() else None)
@@ -242,8 +242,8 @@ def test_a_group_shows_metadata_side_by_side_and_a_click_changes_the_keeper(brow
     driver = browser
     client = keeper_server.client()
     groups = client.get("/v1/groups?limit=200").json()["groups"]
-    group = next(g for g in groups if any(m["path"].endswith("/astronaut-smaller.jpg") for m in g["members"]))
-    smaller = next(m["id"] for m in group["members"] if m["path"].endswith("/astronaut-smaller.jpg"))
+    group, photo = resized_copy_group(groups)
+    smaller = next(m["id"] for m in group["members"] if m["path"].endswith(f"/{photo}-smaller.jpg"))
     reason = client.get(f"/v1/groups/{group['gid']}").json()["now"]["keeper_reason"]
     client.close()
 
@@ -256,9 +256,9 @@ def test_a_group_shows_metadata_side_by_side_and_a_click_changes_the_keeper(brow
     _no_overflow(driver, "group", "review-group")
 
     card = next(c for c in driver.find_elements("css selector", "#pair-list li.member")
-                if c.find_element("css selector", ".name").text == "astronaut-smaller.jpg")
+                if c.find_element("css selector", ".name").text == f"{photo}-smaller.jpg")
     card.find_element("css selector", "button.keep-this").click()
-    _wait(lambda: driver.find_element("css selector", "#pair-list li.keeper .name").text == "astronaut-smaller.jpg",
+    _wait(lambda: driver.find_element("css selector", "#pair-list li.keeper .name").text == f"{photo}-smaller.jpg",
           what="the picked file as the keeper")
     assert "chosen by a person" in driver.find_element("id", "group-facts").text
     with Catalog(keeper_server.store / "catalog.sqlite") as catalog:
@@ -267,7 +267,7 @@ def test_a_group_shows_metadata_side_by_side_and_a_click_changes_the_keeper(brow
 
     # The original beside its 75 % resize: verification outlines (nearly) the whole of both.
     card = next(c for c in driver.find_elements("css selector", "#pair-list li.member")
-                if c.find_element("css selector", ".name").text == "astronaut.jpg")
+                if c.find_element("css selector", ".name").text == f"{photo}.jpg")
     card.find_element("css selector", "button.compare").click()
     _wait(lambda: driver.find_element("id", "view-pair").is_displayed(), what="pair view")
     _wait(lambda: driver.execute_script(

@@ -15,7 +15,7 @@ from nearsight.indexer.acting.quarantine import apply_quarantine
 from nearsight.indexer.core.settings import load_settings
 from nearsight.indexer.storage.store import Store
 
-from .service_support import API_KEY, ServerProcess
+from .service_support import API_KEY, ServerProcess, resized_copy_group
 
 
 @pytest.fixture
@@ -109,7 +109,7 @@ def _iou(a, b):
 
 
 def test_a_keeper_chosen_on_the_review_page_reaches_the_plan_and_can_be_taken_back(server):
-    """`astronaut-smaller.jpg` is a 75 % resize of `astronaut.jpg` (tests/service_support.py): by the default
+    """`<photo>-smaller.jpg` is a 75 % resize of `<photo>.jpg` (tests/service_support.py): by the default
     rules the original (most pixels) is kept. A person picks the smaller copy; the plan of the service and
     the plan a `quarantine` would carry out (read from the same catalog) keep it, say why, and the group's
     page shows every member's metadata and the common region on both images: for a resize, the whole of
@@ -118,9 +118,9 @@ def test_a_keeper_chosen_on_the_review_page_reaches_the_plan_and_can_be_taken_ba
 
     client, writer = server.client(), server.client(API_KEY)
     groups = client.get("/v1/groups?limit=200").json()["groups"]
-    group = next(g for g in groups if any(m["path"].endswith("/astronaut-smaller.jpg") for m in g["members"]))
+    group, photo = resized_copy_group(groups)
     ids = {Path(m["path"]).name: m["id"] for m in group["members"]}
-    smaller, original = ids["astronaut-smaller.jpg"], ids["astronaut.jpg"]
+    smaller, original = ids[f"{photo}-smaller.jpg"], ids[f"{photo}.jpg"]
 
     before = client.get(f"/v1/groups/{group['gid']}").json()["now"]
     assert before["keeper"] != smaller and not before["picked"]
