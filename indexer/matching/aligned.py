@@ -126,8 +126,8 @@ def correlation(a: Frame, b: Frame) -> float | None:
 
 
 # -- kept beside the small copies ---------------------------------------------------------------------------
-# A candidate's Frame is made at index time and kept beside its small copy (`thumbs/ab/<hash>.af`, 8 KB, 16 KB when framed), as its
-# keypoints are (indexer/matching/keypoints.py): a query then reads 8 KB instead of decoding the small copy. The
+# A candidate's Frame is made at index time and kept beside its small copy (`thumbs/ab/<hash>.af`, 8 KB, 16 KB
+# when framed), as its keypoints are (indexer/matching/keypoints.py): a query reads it instead of decoding. The
 # first line names the settings that made it; a file made by others, torn or missing counts as missing, the
 # Frame is made from the small copy as before, and the next index run keeps it again.
 SUFFIX = ".af"
